@@ -1,0 +1,1 @@
+"""ionotrail test harness: channel model, emulators, runners, benchmarks and the CLI."""

@@ -1,0 +1,117 @@
+"""Benchmarks that print figures; speed is never asserted in tests.
+
+Each figure is measured side by side with a baseline in the same run, and
+reported as a ratio, because the machines this runs on are shared and noisy.
+"""
+
+from __future__ import annotations
+
+import platform
+import struct
+import time
+from collections.abc import Callable
+from typing import Any
+
+from terminal.crc import using_c_extension
+from terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus
+from terminal.wire.codec import decode, decode_with_construct, encode, encode_with_construct
+from terminal.wire.frames import Frame
+
+
+def _rate(fn: Callable[[], object], seconds: float, repeats: int = 3) -> float:
+    """Calls per second of ``fn``: the best of ``repeats`` timed batches."""
+    batch = 1
+    while True:  # size a batch to take about seconds / repeats
+        start = time.perf_counter()
+        for _ in range(batch):
+            fn()
+        elapsed = time.perf_counter() - start
+        if elapsed >= seconds / repeats / 4:
+            break
+        batch *= 4
+    batch = max(1, int(batch * (seconds / repeats) / elapsed))
+    best = float("inf")
+    for _ in range(repeats):
+        start = time.perf_counter()
+        for _ in range(batch):
+            fn()
+        best = min(best, time.perf_counter() - start)
+    return batch / best
+
+
+def _baseline(fmt: str, tail: int) -> tuple[Callable[[bytes], object], Callable[[tuple[Any, ...], bytes], bytes]]:
+    """Plain struct unpack/pack of a fixed layout followed by ``tail`` raw bytes."""
+    layout = struct.Struct(fmt)
+
+    def unpack(data: bytes) -> object:
+        return layout.unpack_from(data), data[layout.size : layout.size + tail]
+
+    def pack(values: tuple[Any, ...], rest: bytes) -> bytes:
+        return layout.pack(*values) + rest
+
+    return unpack, pack
+
+
+SAMPLE_PAYLOAD = bytes(range(64))
+
+# Representative frames, each with the plain struct layout of the same fields
+# (bit fields as whole bytes, CRC as a plain 16-bit integer).
+SAMPLES: dict[str, tuple[Frame, str, int]] = {
+    "fragment": (Fragment(0x0A31, 7, 1234, 128, SAMPLE_PAYLOAD, final=True), ">BHBHH", 64),
+    "probe": (
+        Probe(7, 4711, poll=0x0A31, ack=AckBlock(0x0A31, 1233, ((0, 120), (180, 240))), command=CommandBlock(9, 2, b"\x00\x3c")),
+        ">BBHBHHHBHHHHBBBH",
+        2,
+    ),
+    "ack": (Ack(7, AckBlock(0x0A31, 1234, ((0, 64), (128, 192), (256, 300)))), ">BBHHBHHHHHHH", 0),
+    "command": (Command(7, 0x0A31, CommandBlock(9, 2, b"\x00\x3c\x00\x10")), ">BBHBBB", 4),
+    "reply": (Reply(0x0A31, 7, 9, ReplyStatus.OK, b"\x01\x02\x03\x04"), ">BHBBBB", 4),
+}
+
+
+def codec_benchmark(seconds: float = 0.6, progress: Callable[[str], None] | None = None) -> dict[str, Any]:
+    """Frames per second of every codec path, with struct baselines and ratios."""
+    results: dict[str, Any] = {}
+    for name, (frame, fmt, tail) in SAMPLES.items():
+        if progress:
+            progress(name)
+        wire = encode(frame)
+        unpack, pack = _baseline(fmt, tail)
+        values = unpack(wire)[0]  # type: ignore[index]
+        rest = wire[struct.calcsize(fmt) : struct.calcsize(fmt) + tail]
+        row = {
+            "frame_bytes": len(wire),
+            "decode_fps": _rate(lambda: decode(wire), seconds),
+            "encode_fps": _rate(lambda: encode(frame), seconds),
+            "baseline_decode_fps": _rate(lambda: unpack(wire), seconds),
+            "baseline_encode_fps": _rate(lambda: pack(values, rest), seconds),
+            "construct_decode_fps": _rate(lambda: decode_with_construct(wire), seconds),
+            "construct_encode_fps": _rate(lambda: encode_with_construct(frame), seconds),
+            "path": "struct fast path" if isinstance(frame, Fragment) else "construct",
+        }
+        row["ratio_to_baseline"] = row["baseline_decode_fps"] / row["decode_fps"]
+        row["encode_ratio_to_baseline"] = row["baseline_encode_fps"] / row["encode_fps"]
+        results[name] = row
+    return {
+        "python": platform.python_version(),
+        "crcmod_c_extension": using_c_extension(),
+        "frame_types": results,
+    }
+
+
+def format_codec(report: dict[str, Any]) -> str:
+    """Human-readable table of :func:`codec_benchmark` output."""
+    head = (
+        f"{'frame':<9} {'bytes':>5} {'decode/s':>10} {'encode/s':>10} {'struct/s':>10} "
+        f"{'ratio':>6} {'construct/s':>11}  path"
+    )
+    lines = [head, "-" * len(head)]
+    for name, r in report["frame_types"].items():
+        lines.append(
+            f"{name:<9} {r['frame_bytes']:>5} {r['decode_fps']:>10,.0f} {r['encode_fps']:>10,.0f} "
+            f"{r['baseline_decode_fps']:>10,.0f} {r['ratio_to_baseline']:>5.1f}x {r['construct_decode_fps']:>11,.0f}  {r['path']}"
+        )
+    lines.append("")
+    lines.append("ratio = struct baseline decode rate / decode rate (1.0 would match a bare struct.unpack).")
+    lines.append(f"python {report['python']}, crcmod C extension: {report['crcmod_c_extension']}")
+    return "\n".join(lines)

@@ -1,0 +1,61 @@
+"""Hypothesis strategies for frames and hostile bytes, shared by the test suite
+and by conformance runs against other implementations."""
+
+from __future__ import annotations
+
+from hypothesis import strategies as st
+
+from terminal.limits import MAX_ACK_RANGES, MAX_COMMAND_BYTES, MAX_FRAGMENT_PAYLOAD, MAX_MESSAGE_STREAM
+from terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus
+
+u8 = st.integers(0, 0xFF)
+u16 = st.integers(0, 0xFFFF)
+
+
+@st.composite
+def byte_ranges(draw: st.DrawFn, max_count: int = MAX_ACK_RANGES) -> tuple[tuple[int, int], ...]:
+    """Ascending, disjoint, non-adjacent ranges inside the message space."""
+    count = draw(st.integers(0, max_count))
+    cuts = sorted(draw(st.sets(st.integers(0, MAX_MESSAGE_STREAM), min_size=2 * count, max_size=2 * count)))
+    ranges = [(cuts[i], cuts[i + 1]) for i in range(0, len(cuts), 2)]
+    # make neighbours non-adjacent by dropping any range that touches the previous one
+    kept: list[tuple[int, int]] = []
+    for start, end in ranges:
+        if kept and start <= kept[-1][1]:
+            continue
+        kept.append((start, end))
+    return tuple(kept)
+
+
+@st.composite
+def ack_blocks(draw: st.DrawFn) -> AckBlock:
+    complete = draw(st.booleans())
+    ranges = () if complete else draw(byte_ranges())
+    return AckBlock(draw(u16), draw(u16), ranges, complete, draw(st.booleans()))
+
+
+command_blocks = st.builds(CommandBlock, u8, u8, st.binary(max_size=MAX_COMMAND_BYTES))
+
+
+@st.composite
+def probes(draw: st.DrawFn) -> Probe:
+    poll = draw(st.none() | u16)
+    command = draw(st.none() | command_blocks) if poll is not None else None
+    return Probe(draw(u8), draw(u16), poll, draw(st.none() | ack_blocks()), command)
+
+
+@st.composite
+def fragments(draw: st.DrawFn) -> Fragment:
+    payload = draw(st.binary(min_size=1, max_size=MAX_FRAGMENT_PAYLOAD))
+    offset = draw(st.integers(0, MAX_MESSAGE_STREAM - len(payload)))
+    return Fragment(
+        draw(u16), draw(u8), draw(u16), offset, payload, draw(st.booleans()), draw(st.booleans()), draw(st.booleans())
+    )
+
+
+acks = st.builds(Ack, u8, ack_blocks())
+commands = st.builds(Command, u8, u16, command_blocks)
+replies = st.builds(Reply, u16, u8, u8, st.sampled_from(ReplyStatus), st.binary(max_size=MAX_COMMAND_BYTES))
+
+frames = st.one_of(probes(), fragments(), acks, commands, replies)
+"""Any valid frame representation."""

@@ -1,0 +1,105 @@
+"""Generate docs/wire.md's field tables from the construct declarations.
+
+The document keeps its prose by hand; each table sits between
+``<!-- generated: NAME -->`` and ``<!-- end generated -->`` and is rewritten
+from ``terminal.wire.formats``.  A test fails when the file is stale; run
+``ionotrail docs`` to refresh it.
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import construct as cs
+
+from terminal.wire import formats
+
+SECTIONS: dict[str, cs.Construct] = {
+    "probe": formats.PROBE,
+    "fragment": formats.FRAGMENT,
+    "ack": formats.ACK,
+    "command": formats.COMMAND,
+    "reply": formats.REPLY,
+    "ack-block": formats.ACK_BLOCK,
+    "command-block": formats.COMMAND_BLOCK,
+    "sealed-message": formats.SEALED_MESSAGE,
+}
+
+_BLOCK_NAMES = {id(formats.ACK_BLOCK): "ack block", id(formats.COMMAND_BLOCK): "command block"}
+_MARK = re.compile(r"(<!-- generated: ([a-z-]+) -->\n).*?(<!-- end generated -->)", re.S)
+
+
+def _unwrap(con: cs.Construct) -> tuple[cs.Construct, str]:
+    """Strip naming layers, keeping the innermost documentation string."""
+    docs = ""
+    while isinstance(con, cs.Renamed):
+        docs = con.docs or docs
+        con = con.subcon
+    return con, docs
+
+
+def _size(con: cs.Construct, unit: str) -> str:
+    try:
+        count = con.sizeof()
+    except cs.SizeofError:
+        return "variable"
+    return f"{count} {unit if count != 1 else unit.rstrip('s')}"
+
+
+def _rows(struct: cs.Struct, prefix: str, unit: str) -> list[tuple[str, str, str]]:
+    rows: list[tuple[str, str, str]] = []
+    for sub in struct.subcons:
+        inner, docs = _unwrap(sub)
+        name = f"{prefix}{sub.name}"
+        condition = ""
+        if isinstance(inner, cs.IfThenElse):
+            condition = " (present only if its flag is set)"
+            inner, _ = _unwrap(inner.thensubcon)
+        if isinstance(inner, (cs.Const, cs.Rebuild)):
+            inner = inner.subcon
+        if id(inner) in _BLOCK_NAMES:
+            rows.append((name, "variable", f"{docs}; see {_BLOCK_NAMES[id(inner)]}{condition}"))
+        elif isinstance(inner, cs.RawCopy):
+            rows.extend(_rows(inner.subcon, prefix, unit))
+        elif isinstance(inner, cs.Checksum):
+            rows.append((name, _size(inner.checksumfield, unit), docs))
+        elif isinstance(inner, cs.Transformed) and isinstance(inner.subcon, cs.Struct):  # BitStruct
+            rows.append((name, _size(inner, unit), docs + condition))
+            rows.extend(_rows(inner.subcon, f"{name}.", "bits"))
+        elif isinstance(inner, cs.Array):
+            element = _unwrap(inner.subcon)[0]
+            rows.append((f"{name}[]", f"count x {_size(element, unit)}", docs + condition))
+            rows.extend(_rows(element, f"{name}[].", unit))
+        else:
+            rows.append((name, _size(inner, unit), docs + condition))
+    return rows
+
+
+def table(con: cs.Construct) -> str:
+    """Markdown table of one declaration, fields in wire order."""
+    lines = ["| field | size | meaning |", "| --- | --- | --- |"]
+    for name, size, docs in _rows(con, "", "bytes"):
+        lines.append(f"| `{name}` | {size} | {docs} |")
+    return "\n".join(lines) + "\n"
+
+
+def render(text: str) -> str:
+    """The document with every generated table rewritten."""
+
+    def replace(match: re.Match[str]) -> str:
+        name = match.group(2)
+        if name not in SECTIONS:
+            raise KeyError(f"docs/wire.md names an unknown generated table {name!r}")
+        return match.group(1) + table(SECTIONS[name]) + match.group(3)
+
+    return _MARK.sub(replace, text)
+
+
+def refresh(path: Path) -> bool:
+    """Rewrite ``path`` in place; True when it changed."""
+    old = path.read_text(encoding="utf-8")
+    new = render(old)
+    if new != old:
+        path.write_text(new, encoding="utf-8")
+    return new != old

@@ -1,0 +1,1 @@
+"""ionotrail's reference remote-terminal protocol stack (sans-I/O core)."""

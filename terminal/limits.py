@@ -1,0 +1,100 @@
+"""Every bound of the stack, in one place.
+
+Two kinds of limit live here.  *Wire maxima* are fixed by the frame formats
+(a field's width caps them); no configuration can raise them.  *Link limits*
+are the budgets one deployment chooses, collected in :class:`Limits`; their
+defaults fit a small microcontroller (a few kilobytes of RAM for the whole
+stack).  Every value says why it is what it is.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+from terminal.errors import UsageError
+
+# --- wire maxima (fixed by the formats in terminal.wire.formats) -------------
+
+FORMAT_VERSION = 1
+"""Format version carried in the high nibble of every frame's first byte."""
+
+FRAME_CRC_BYTES = 2
+"""CRC-16/IBM-3740 trailer on every frame."""
+
+MESSAGE_CRC_BYTES = 4
+"""CRC-32C trailer on every reassembled message."""
+
+FRAGMENT_HEADER_BYTES = 8
+"""Data-fragment header; with the CRC the overhead is 10 bytes per fragment."""
+
+MAX_FRAGMENT_PAYLOAD = 256
+"""Largest fragment payload.  256 bytes take 0.26 s at 8 kbit/s, about one
+power-decay constant of a typical underdense trail; a longer frame would
+rarely survive the opening that carries it (common practice, no source)."""
+
+MAX_FRAME_BYTES = FRAGMENT_HEADER_BYTES + MAX_FRAGMENT_PAYLOAD + FRAME_CRC_BYTES
+"""Largest frame of any type (266).  Receivers refuse longer input before
+looking at it, so one receive buffer of this size serves every frame."""
+
+MIN_FRAME_BYTES = 1 + FRAME_CRC_BYTES
+"""Type byte plus CRC: nothing shorter can be a frame."""
+
+OFFSET_BITS = 13
+MAX_MESSAGE_STREAM = 1 << OFFSET_BITS
+"""Fragment offsets are 13 bits, so a sealed message (payload plus its
+CRC-32C) is at most 8192 bytes on the wire."""
+
+MAX_MESSAGE_PAYLOAD = MAX_MESSAGE_STREAM - MESSAGE_CRC_BYTES
+"""Largest application payload the format can carry (8188 bytes)."""
+
+MAX_ACK_RANGES = 15
+"""A 4-bit count: at most 15 held ranges per acknowledgement (65 bytes)."""
+
+MAX_COMMAND_BYTES = 64
+"""Downlink command arguments and reply results.  Commands set a reporting
+interval or a threshold; 64 bytes is ample and keeps a probe short."""
+
+MAX_SERIAL_PAYLOAD = MAX_FRAME_BYTES + 16
+"""A host-modem record: one air frame plus up to 16 bytes of modem metadata
+(timestamps, signal quality)."""
+
+
+def cobs_encoded_max(payload_len: int) -> int:
+    """Longest COBS encoding of ``payload_len`` bytes, without the delimiter.
+
+    COBS adds one code byte per started block of 254 data bytes
+    (Cheshire and Baker, IEEE/ACM Trans. Networking 7(2), 1999).
+    """
+    return payload_len + payload_len // 254 + 1
+
+
+MAX_SERIAL_RECORD = cobs_encoded_max(MAX_SERIAL_PAYLOAD)
+"""The serial deframer never buffers more than this many bytes."""
+
+
+# --- link limits (per deployment, overridable) --------------------------------
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class Limits:
+    """Budgets one link chooses.  Construct with keyword overrides;
+    values outside what the wire can carry raise :class:`UsageError`."""
+
+    max_message_payload: int = 4096
+    """Largest message an application may queue.  4 KiB is a day of 15-minute
+    readings from a dozen sensors; the wire allows up to 8188."""
+
+    max_fragment_payload: int = MAX_FRAGMENT_PAYLOAD
+    """Largest payload the sender puts in one fragment."""
+
+    def __post_init__(self) -> None:
+        _within("max_message_payload", self.max_message_payload, 1, MAX_MESSAGE_PAYLOAD)
+        _within("max_fragment_payload", self.max_fragment_payload, 1, MAX_FRAGMENT_PAYLOAD)
+
+
+def _within(name: str, value: int, low: int, high: int) -> None:
+    if not isinstance(value, int) or isinstance(value, bool) or not low <= value <= high:
+        raise UsageError(f"limit {name}={value!r} must be an integer from {low} to {high}")
+
+
+DEFAULT_LIMITS = Limits()

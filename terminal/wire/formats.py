@@ -1,0 +1,220 @@
+"""Declarations of every over-the-air format: the single source of truth.
+
+Each frame is ``fields`` followed by a CRC-16/IBM-3740 of those fields.  The
+first byte of every frame is the *head*: format version in the high nibble,
+frame type in the low nibble.  Field documentation is attached to each
+declaration with construct's ``*`` operator; docs/wire.md's tables are
+generated from these objects (``ionotrail docs``), so edit here, not there.
+
+construct's *compiled* parsers skip checks and must never see untrusted bytes;
+only the interpreted declarations below are used on received data.
+"""
+
+from __future__ import annotations
+
+import enum
+
+from construct import (
+    BitsInteger,
+    BitStruct,
+    Bytes,
+    Checksum,
+    Const,
+    Construct,
+    Flag,
+    If,
+    Int8ub,
+    Int16ub,
+    Int32ub,
+    RawCopy,
+    Rebuild,
+    Struct,
+    len_,
+    stream_read,
+    stream_seek,
+    stream_tell,
+    stream_write,
+    this,
+)
+from construct.core import StreamError
+
+from terminal.crc import crc16, crc32c
+from terminal.limits import FRAME_CRC_BYTES, MESSAGE_CRC_BYTES, OFFSET_BITS
+
+
+class FrameType(enum.IntEnum):
+    """Low nibble of the head byte.  0 and 6-15 are unassigned."""
+
+    PROBE = 1
+    FRAGMENT = 2
+    ACK = 3
+    COMMAND = 4
+    REPLY = 5
+
+
+class ReplyStatus(enum.IntEnum):
+    """Outcome of a downlink command, as reported by the terminal."""
+
+    OK = 0
+    UNKNOWN_OPCODE = 1
+    BAD_ARGUMENTS = 2
+    REFUSED = 3
+
+
+class Remainder(Construct):  # type: ignore[misc]
+    """All remaining bytes except the last ``reserve`` (the trailing CRC).
+
+    Lets a payload run to the end of a frame whose length the link layer
+    already delimits, without spending a length byte on the air.
+    """
+
+    def __init__(self, reserve: int) -> None:
+        super().__init__()
+        self.reserve = reserve
+
+    def _parse(self, stream, context, path):  # type: ignore[no-untyped-def]
+        here = stream_tell(stream, path)
+        end = stream_seek(stream, 0, 2, path)
+        stream_seek(stream, here, 0, path)
+        count = end - here - self.reserve
+        if count < 0:
+            raise StreamError(f"frame ends {-count} bytes early", path=path)
+        return stream_read(stream, count, path)
+
+    def _build(self, obj, stream, context, path):  # type: ignore[no-untyped-def]
+        data = bytes(obj)
+        stream_write(stream, data, len(data), path)
+        return data
+
+    def _sizeof(self, context, path):  # type: ignore[no-untyped-def]
+        from construct import SizeofError
+
+        raise SizeofError("variable: runs to the end of the frame", path=path)
+
+
+def _framed(*fields: Construct) -> Struct:
+    """A frame: the given fields, then CRC-16/IBM-3740 over all of them."""
+    return Struct(
+        "fields" / RawCopy(Struct(*fields)),
+        "crc" / Checksum(Int16ub, crc16, this.fields.data) * "CRC-16/IBM-3740 of every preceding byte",
+    )
+
+
+HEAD = "head" / BitStruct(
+    "version" / BitsInteger(4) * "format version (this document: 1)",
+    "type" / BitsInteger(4) * "frame type",
+) * "version and type"
+
+MASTER = Int8ub * "master-station id"
+TERMINAL = Int16ub * "terminal address"
+
+ACK_BLOCK = Struct(
+    "terminal" / TERMINAL,
+    "message_id" / Int16ub * "message being acknowledged",
+    "status"
+    / BitStruct(
+        "complete" / Flag * "whole message delivered; ranges are empty",
+        "downlink" / Flag * "acknowledges a master-to-terminal message",
+        "reserved" / Const(0, BitsInteger(2)) * "zero",
+        "count" / Rebuild(BitsInteger(4), len_(this._.ranges)) * "number of held ranges",
+    )
+    * "flags and range count",
+    "ranges"
+    / Struct(
+        "start" / Int16ub * "first held byte of the sealed message",
+        "end" / Int16ub * "one past the last held byte",
+    )[this.status.count]
+    * "held byte ranges, ascending, disjoint, non-adjacent",
+)
+"""Selective acknowledgement of one message: which byte ranges the receiver
+holds, so that the sender resends only the holes."""
+
+COMMAND_BLOCK = Struct(
+    "command_id" / Int8ub * "echoed by the reply; repeats are not re-executed",
+    "opcode" / Int8ub * "what to do (application defined)",
+    "length" / Rebuild(Int8ub, len_(this.arguments)) * "argument bytes that follow",
+    "arguments" / Bytes(this.length) * "opcode arguments",
+)
+"""A downlink command for one terminal."""
+
+PROBE = _framed(
+    HEAD,
+    "master" / MASTER,
+    "sequence" / Int16ub * "probe counter; lets a terminal report which probe it heard",
+    "flags"
+    / BitStruct(
+        "poll" / Flag * "a poll address follows",
+        "ack" / Flag * "an acknowledgement block follows",
+        "command" / Flag * "a command block for the polled terminal follows",
+        "reserved" / Const(0, BitsInteger(5)) * "zero",
+    )
+    * "which optional parts follow",
+    "poll" / If(this.flags.poll, TERMINAL) * "terminal asked to reply first",
+    "ack" / If(this.flags.ack, ACK_BLOCK) * "acknowledgement for any terminal",
+    "command" / If(this.flags.command, COMMAND_BLOCK) * "command for the polled terminal",
+)
+"""Sent by the master continuously.  A terminal that decodes one knows the
+trail is open now, in both directions, for a short while."""
+
+FRAGMENT = _framed(
+    HEAD,
+    "terminal" / TERMINAL,
+    "master" / MASTER,
+    "message_id" / Int16ub * "per-direction message counter of the sender",
+    "position"
+    / BitStruct(
+        "final" / Flag * "this fragment ends the message",
+        "urgent" / Flag * "alarm priority",
+        "downlink" / Flag * "master to terminal (else terminal to master)",
+        "offset" / BitsInteger(OFFSET_BITS) * "byte offset of the payload in the sealed message",
+    )
+    * "flags and offset",
+    "payload" / Remainder(FRAME_CRC_BYTES) * "bytes of the sealed message; the frame length gives the count",
+)
+"""A piece of a sealed message.  Offset plus final flag lets the fragment size
+change from one opening to the next: any byte range can be sent alone."""
+
+ACK = _framed(
+    HEAD,
+    "master" / MASTER,
+    "ack" / ACK_BLOCK * "the acknowledgement",
+)
+"""A stand-alone acknowledgement, master to terminal or terminal to master."""
+
+COMMAND = _framed(
+    HEAD,
+    "master" / MASTER,
+    "terminal" / TERMINAL,
+    "command" / COMMAND_BLOCK * "the command",
+)
+"""A stand-alone downlink command (when it does not ride in a probe)."""
+
+REPLY = _framed(
+    HEAD,
+    "terminal" / TERMINAL,
+    "master" / MASTER,
+    "command_id" / Int8ub * "the command answered",
+    "status" / Int8ub * "0 ok, 1 unknown opcode, 2 bad arguments, 3 refused",
+    "length" / Rebuild(Int8ub, len_(this.result)) * "result bytes that follow",
+    "result" / Bytes(this.length) * "opcode result",
+)
+"""A terminal's answer to a command."""
+
+SEALED_MESSAGE = Struct(
+    "body" / Remainder(MESSAGE_CRC_BYTES) * "application payload",
+    "crc" / Checksum(Int32ub, crc32c, this.body) * "CRC-32C of the payload",
+)
+"""An application message as fragmented: payload then CRC-32C.  Reassembly
+is complete only when this CRC verifies."""
+
+FRAME_FORMATS: dict[FrameType, Struct] = {
+    FrameType.PROBE: PROBE,
+    FrameType.FRAGMENT: FRAGMENT,
+    FrameType.ACK: ACK,
+    FrameType.COMMAND: COMMAND,
+    FrameType.REPLY: REPLY,
+}
+"""Frame type to declaration; the decoder dispatches on this table."""
+
+BLOCK_FORMATS: dict[str, Struct] = {"ack block": ACK_BLOCK, "command block": COMMAND_BLOCK}
+"""Blocks nested inside frames, documented on their own."""

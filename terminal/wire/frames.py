@@ -1,0 +1,270 @@
+"""Frozen, always-valid representations of every frame.
+
+Each frame is an immutable tuple subclass whose constructor checks every
+field against what the wire can carry, raising :class:`UsageError` for a
+value no encoder could send.  Decoders build them only from bytes that passed
+the same rules, so holding a ``Fragment`` means holding a valid fragment.
+(Tuples rather than dataclasses: the data-fragment decoder must run at a few
+microseconds a frame, and a frozen dataclass costs twice a tuple to build.)
+"""
+
+from __future__ import annotations
+
+from typing import NamedTuple
+
+from terminal.errors import UsageError
+from terminal.limits import (
+    MAX_ACK_RANGES,
+    MAX_COMMAND_BYTES,
+    MAX_FRAGMENT_PAYLOAD,
+    MAX_MESSAGE_STREAM,
+)
+from terminal.wire.formats import FrameType, ReplyStatus
+
+ByteRange = tuple[int, int]
+"""Half-open ``(start, end)`` range of bytes in a sealed message."""
+
+
+def _uint(name: str, value: object, bits: int) -> int:
+    if not isinstance(value, int) or isinstance(value, bool) or not 0 <= value < (1 << bits):
+        raise UsageError(f"{name}={value!r} must be an integer from 0 to {(1 << bits) - 1}")
+    return value
+
+
+def _bytes(name: str, value: object, most: int) -> bytes:
+    if not isinstance(value, (bytes, bytearray, memoryview)):
+        raise UsageError(f"{name} must be bytes, not {type(value).__name__}")
+    data = bytes(value)
+    if len(data) > most:
+        raise UsageError(f"{name} is {len(data)} bytes; at most {most} fit")
+    return data
+
+
+def check_ranges(ranges: object) -> tuple[ByteRange, ...]:
+    """Validate held ranges: ascending, disjoint, non-adjacent, non-empty."""
+    if not isinstance(ranges, (tuple, list)):
+        raise UsageError(f"ranges must be a sequence of (start, end), not {type(ranges).__name__}")
+    if len(ranges) > MAX_ACK_RANGES:
+        raise UsageError(f"{len(ranges)} ranges; an acknowledgement holds at most {MAX_ACK_RANGES}")
+    out: list[ByteRange] = []
+    previous_end = -1
+    for item in ranges:
+        if not isinstance(item, (tuple, list)) or len(item) != 2:
+            raise UsageError(f"range {item!r} must be a (start, end) pair")
+        start, end = _uint("range start", item[0], 16), _uint("range end", item[1], 16)
+        if not start < end <= MAX_MESSAGE_STREAM:
+            raise UsageError(f"range ({start}, {end}) must satisfy start < end <= {MAX_MESSAGE_STREAM}")
+        if start <= previous_end:
+            raise UsageError(f"range ({start}, {end}) overlaps or touches the one before; merge them")
+        out.append((start, end))
+        previous_end = end
+    return tuple(out)
+
+
+class _AckBlockFields(NamedTuple):
+    terminal: int
+    message_id: int
+    ranges: tuple[ByteRange, ...]
+    complete: bool
+    downlink: bool
+
+
+class AckBlock(_AckBlockFields):
+    """Which bytes of one message the receiver holds (or that it has it all)."""
+
+    __slots__ = ()
+
+    def __new__(
+        cls,
+        terminal: int,
+        message_id: int,
+        ranges: tuple[ByteRange, ...] = (),
+        complete: bool = False,
+        downlink: bool = False,
+    ) -> AckBlock:
+        checked = check_ranges(ranges)
+        if complete and checked:
+            raise UsageError("a complete acknowledgement carries no ranges")
+        return super().__new__(
+            cls, _uint("terminal", terminal, 16), _uint("message_id", message_id, 16), checked, bool(complete), bool(downlink)
+        )
+
+
+class _CommandBlockFields(NamedTuple):
+    command_id: int
+    opcode: int
+    arguments: bytes
+
+
+class CommandBlock(_CommandBlockFields):
+    """One downlink command: an id the reply echoes, an opcode, its arguments."""
+
+    __slots__ = ()
+
+    def __new__(cls, command_id: int, opcode: int, arguments: bytes = b"") -> CommandBlock:
+        return super().__new__(
+            cls,
+            _uint("command_id", command_id, 8),
+            _uint("opcode", opcode, 8),
+            _bytes("arguments", arguments, MAX_COMMAND_BYTES),
+        )
+
+
+class _ProbeFields(NamedTuple):
+    master: int
+    sequence: int
+    poll: int | None
+    ack: AckBlock | None
+    command: CommandBlock | None
+
+
+class Probe(_ProbeFields):
+    """The master's beacon, optionally polling a terminal, acknowledging a
+    message and carrying a command for the polled terminal."""
+
+    __slots__ = ()
+    frame_type = FrameType.PROBE
+
+    def __new__(
+        cls,
+        master: int,
+        sequence: int,
+        poll: int | None = None,
+        ack: AckBlock | None = None,
+        command: CommandBlock | None = None,
+    ) -> Probe:
+        if poll is not None:
+            _uint("poll", poll, 16)
+        if ack is not None and not isinstance(ack, AckBlock):
+            raise UsageError(f"ack must be an AckBlock, not {type(ack).__name__}")
+        if command is not None:
+            if not isinstance(command, CommandBlock):
+                raise UsageError(f"command must be a CommandBlock, not {type(command).__name__}")
+            if poll is None:
+                raise UsageError("a probe carries a command only for the terminal it polls; set poll")
+        return super().__new__(cls, _uint("master", master, 8), _uint("sequence", sequence, 16), poll, ack, command)
+
+
+class _FragmentFields(NamedTuple):
+    terminal: int
+    master: int
+    message_id: int
+    offset: int
+    payload: bytes
+    final: bool
+    urgent: bool
+    downlink: bool
+
+
+class Fragment(_FragmentFields):
+    """Bytes ``[offset, offset + len(payload))`` of a sealed message between a
+    terminal and a master; ``downlink`` says which way it travels."""
+
+    __slots__ = ()
+    frame_type = FrameType.FRAGMENT
+
+    def __new__(
+        cls,
+        terminal: int,
+        master: int,
+        message_id: int,
+        offset: int,
+        payload: bytes,
+        final: bool = False,
+        urgent: bool = False,
+        downlink: bool = False,
+    ) -> Fragment:
+        data = _bytes("payload", payload, MAX_FRAGMENT_PAYLOAD)
+        check_fragment_span(_uint("offset", offset, 13), len(data))
+        return super().__new__(
+            cls,
+            _uint("terminal", terminal, 16),
+            _uint("master", master, 8),
+            _uint("message_id", message_id, 16),
+            offset,
+            data,
+            bool(final),
+            bool(urgent),
+            bool(downlink),
+        )
+
+    @property
+    def end(self) -> int:
+        """One past the last message byte this fragment carries."""
+        return self.offset + len(self.payload)
+
+
+def check_fragment_span(offset: int, length: int) -> None:
+    """A fragment carries at least one byte and stays inside the message space."""
+    if length == 0:
+        raise UsageError("a fragment carries at least one payload byte")
+    if offset + length > MAX_MESSAGE_STREAM:
+        raise UsageError(f"fragment [{offset}, {offset + length}) runs past the {MAX_MESSAGE_STREAM}-byte message limit")
+
+
+class _AckFields(NamedTuple):
+    master: int
+    ack: AckBlock
+
+
+class Ack(_AckFields):
+    """A stand-alone acknowledgement frame."""
+
+    __slots__ = ()
+    frame_type = FrameType.ACK
+
+    def __new__(cls, master: int, ack: AckBlock) -> Ack:
+        if not isinstance(ack, AckBlock):
+            raise UsageError(f"ack must be an AckBlock, not {type(ack).__name__}")
+        return super().__new__(cls, _uint("master", master, 8), ack)
+
+
+class _CommandFields(NamedTuple):
+    master: int
+    terminal: int
+    command: CommandBlock
+
+
+class Command(_CommandFields):
+    """A stand-alone downlink command frame."""
+
+    __slots__ = ()
+    frame_type = FrameType.COMMAND
+
+    def __new__(cls, master: int, terminal: int, command: CommandBlock) -> Command:
+        if not isinstance(command, CommandBlock):
+            raise UsageError(f"command must be a CommandBlock, not {type(command).__name__}")
+        return super().__new__(cls, _uint("master", master, 8), _uint("terminal", terminal, 16), command)
+
+
+class _ReplyFields(NamedTuple):
+    terminal: int
+    master: int
+    command_id: int
+    status: ReplyStatus
+    result: bytes
+
+
+class Reply(_ReplyFields):
+    """A terminal's answer to a downlink command."""
+
+    __slots__ = ()
+    frame_type = FrameType.REPLY
+
+    def __new__(cls, terminal: int, master: int, command_id: int, status: ReplyStatus, result: bytes = b"") -> Reply:
+        try:
+            checked_status = ReplyStatus(status)
+        except ValueError:
+            raise UsageError(f"status={status!r} is not one of {[s.value for s in ReplyStatus]}") from None
+        return super().__new__(
+            cls,
+            _uint("terminal", terminal, 16),
+            _uint("master", master, 8),
+            _uint("command_id", command_id, 8),
+            checked_status,
+            _bytes("result", result, MAX_COMMAND_BYTES),
+        )
+
+
+Frame = Probe | Fragment | Ack | Command | Reply
+"""Any frame representation."""

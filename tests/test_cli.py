@@ -1,0 +1,86 @@
+"""The command line: decode, bench and docs, as a user would run them."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import pytest
+
+from harness.cli import _demo_capture, main
+from terminal.wire import Fragment, decode, encode, unseal_message
+from terminal.serial_framing import encode_record
+
+
+def run(*args: str) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "harness.cli", *args], capture_output=True, text=True, timeout=120)
+
+
+def test_decode_demo_prints_fields() -> None:
+    result = run("decode", "--demo")
+    assert result.returncode == 0, result.stderr
+    assert "fragment frame, 50 bytes, CRC-16 ok" in result.stdout
+    assert "terminal    0x0a31 (2609)" in result.stdout
+    assert '"HC1 2026-11-30T06:15Z' in result.stdout
+
+
+def test_demo_fragments_reassemble_to_a_sealed_message() -> None:
+    frames = [decode(bytes.fromhex(line)) for line in _demo_capture().splitlines() if line and not line.startswith("#")]
+    pieces = sorted((f for f in frames if isinstance(f, Fragment)), key=lambda f: f.offset)
+    assert pieces[-1].final and all(a.end == b.offset for a, b in zip(pieces, pieces[1:]))
+    assert unseal_message(b"".join(p.payload for p in pieces)).startswith(b"HC1 ")
+
+
+def test_decode_json_one_object_per_frame() -> None:
+    result = run("decode", "--demo", "--json")
+    records = [json.loads(line) for line in result.stdout.splitlines()]
+    assert [r["type"] for r in records] == ["probe", "fragment", "fragment", "probe", "reply", "ack"]
+    assert records[1]["fields"]["terminal"] == 0x0A31 and records[1]["crc"] == "ok"
+
+
+def test_bad_input_is_one_line_and_non_zero() -> None:
+    good = encode(Fragment(1, 2, 3, 0, b"ok")).hex()
+    bad_crc = good[:-2] + ("00" if good[-2:] != "00" else "01")
+    result = run("decode", good, bad_crc, "zz", "12")
+    assert result.returncode == 1
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 3, result.stderr
+    assert "bad_crc" in lines[0] and "computed 0x" in lines[0]
+    assert "not a hexadecimal frame" in lines[1]
+    assert "truncated" in lines[2]
+    assert "Traceback" not in result.stderr
+
+
+def test_missing_file_is_a_usage_error() -> None:
+    result = run("decode", "--file", "/nonexistent/capture.hex")
+    assert result.returncode == 2
+    assert result.stderr.count("\n") == 1 and "cannot read" in result.stderr
+
+
+def test_decode_cobs_capture(tmp_path: object, capsys: pytest.CaptureFixture[str]) -> None:
+    capture = tmp_path / "line.bin"  # type: ignore[operator]
+    capture.write_bytes(b"\x00" + encode_record(encode(Fragment(1, 2, 3, 0, b"ok"))))
+    assert main(["decode", "--cobs", "--file", str(capture)]) == 0
+    assert "fragment frame" in capsys.readouterr().out
+
+
+def test_help_carries_the_safety_note() -> None:
+    for args in (["--help"], ["decode", "--help"]):
+        result = run(*args)
+        assert result.returncode == 0
+        assert "authorisation" in result.stdout and "lightning" in result.stdout
+
+
+def test_bench_codec_json_keys(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["bench", "codec", "--json", "--seconds", "0.02"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    for name in ("probe", "fragment", "ack", "command", "reply"):
+        row = report["frame_types"][name]
+        for key in ("decode_fps", "encode_fps", "baseline_decode_fps", "ratio_to_baseline"):
+            assert row[key] > 0
+
+
+def test_no_command_prints_help() -> None:
+    result = run()
+    assert result.returncode == 2 and "decode" in result.stdout

@@ -1,0 +1,147 @@
+"""Frame representations and their codec: round trips, layout, validation."""
+
+from __future__ import annotations
+
+import pytest
+from hypothesis import given
+
+from harness import strategies
+from terminal.errors import BadField, BadLength, TruncatedFrame, UsageError
+from terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MAX_FRAME_BYTES, MAX_MESSAGE_STREAM
+from terminal.crc import crc16
+from terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus, decode, encode
+from terminal.wire.codec import decode_with_construct, encode_with_construct, seal_message, unseal_message
+from terminal.errors import MessageCrcMismatch
+
+
+def _with_crc(body: bytes) -> bytes:
+    return body + crc16(body).to_bytes(2, "big")
+
+
+@pytest.mark.property
+@pytest.mark.parametrize(
+    "strategy",
+    [strategies.probes(), strategies.fragments(), strategies.acks, strategies.commands, strategies.replies],
+    ids=["probe", "fragment", "ack", "command", "reply"],
+)
+@given(data=strategies.st.data())
+def test_round_trip_every_frame_type(strategy: object, data: strategies.st.DataObject) -> None:
+    frame = data.draw(strategy)  # type: ignore[arg-type]
+    wire = encode(frame)
+    assert len(wire) <= MAX_FRAME_BYTES
+    assert decode(wire) == frame
+    assert type(decode(wire)) is type(frame)
+    assert decode_with_construct(wire) == frame
+    assert encode_with_construct(frame) == wire
+
+
+def test_fragment_overhead_is_ten_bytes() -> None:
+    # The design budget: header plus CRC at most 10 bytes (docs/wire.md).
+    wire = encode(Fragment(1, 2, 3, 0, b"x"))
+    assert FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES == 10
+    assert len(wire) == 10 + 1
+
+
+def test_fragment_layout_by_hand() -> None:
+    # Worked by hand from docs/wire.md: head 0x12 (version 1, type 2), terminal
+    # 0x0A31, master 7, message 1234 = 0x04D2, position final|offset 40 = 0x8028.
+    wire = encode(Fragment(0x0A31, 7, 1234, 40, b"AB", final=True))
+    assert wire[:-2] == bytes.fromhex("120a310704d280284142")
+    assert wire[-2:] == crc16(wire[:-2]).to_bytes(2, "big")
+
+
+def test_probe_layout_by_hand() -> None:
+    # head 0x11, master 7, sequence 4711 = 0x1267, flags: poll only = 0x80, poll 0x0A31.
+    assert encode(Probe(7, 4711, poll=0x0A31))[:-2] == bytes.fromhex("11071267800a31")
+
+
+def test_ack_layout_by_hand() -> None:
+    # head 0x13, master 7, terminal 0x0A31, message 0x04D3, status count 1 = 0x01, range 0..40.
+    block = AckBlock(0x0A31, 1235, ((0, 40),))
+    assert encode(Ack(7, block))[:-2] == bytes.fromhex("13070a3104d30100000028")
+
+
+@pytest.mark.parametrize(
+    ("build", "message"),
+    [
+        (lambda: Fragment(70000, 1, 1, 0, b"x"), "terminal=70000"),
+        (lambda: Fragment(1, 256, 1, 0, b"x"), "master=256"),
+        (lambda: Fragment(1, 1, 1, 0, b""), "at least one payload byte"),
+        (lambda: Fragment(1, 1, 1, MAX_MESSAGE_STREAM - 1, b"xy"), "runs past"),
+        (lambda: Fragment(1, 1, 1, 0, bytes(257)), "at most 256"),
+        (lambda: AckBlock(1, 1, ((5, 5),)), "start < end"),
+        (lambda: AckBlock(1, 1, ((0, 5), (5, 9))), "overlaps or touches"),
+        (lambda: AckBlock(1, 1, ((0, 5),), complete=True), "no ranges"),
+        (lambda: AckBlock(1, 1, tuple((2 * i, 2 * i + 1) for i in range(16))), "at most 15"),
+        (lambda: Probe(1, 1, command=CommandBlock(1, 1)), "set poll"),
+        (lambda: Reply(1, 1, 1, 99), "status=99"),
+        (lambda: CommandBlock(1, 1, bytes(65)), "at most 64"),
+        (lambda: Fragment(True, 1, 1, 0, b"x"), "terminal=True"),
+    ],
+)
+def test_constructors_refuse_what_the_wire_cannot_carry(build: object, message: str) -> None:
+    with pytest.raises(UsageError, match=message.replace("(", r"\(")):
+        build()  # type: ignore[operator]
+
+
+def test_encode_refuses_a_non_frame() -> None:
+    with pytest.raises(UsageError):
+        encode(("not", "a", "frame"))  # type: ignore[arg-type]
+
+
+def test_reserved_bits_are_refused() -> None:
+    probe = bytearray(encode(Probe(7, 1))[:-2])
+    probe[4] |= 0x01  # a reserved flag bit
+    with pytest.raises(BadField):
+        decode(_with_crc(bytes(probe)))
+
+
+def test_bytes_between_last_field_and_crc_are_refused() -> None:
+    reply = encode(Reply(1, 2, 3, ReplyStatus.OK, b"ab"))[:-2]
+    with pytest.raises(BadLength, match="2 bytes between"):
+        decode(_with_crc(reply + b"zz"))
+
+
+def test_a_field_cut_short_is_truncation() -> None:
+    command = encode(Command(7, 9, CommandBlock(1, 2, b"abcdef")))[:-2]
+    with pytest.raises(TruncatedFrame):
+        decode(_with_crc(command[:-3]))
+
+
+def test_unordered_ranges_from_the_air_are_a_field_error() -> None:
+    body = bytes.fromhex("13070a3104d302") + bytes.fromhex("0010 0020 0000 0005".replace(" ", ""))
+    with pytest.raises(BadField, match="overlaps or touches"):
+        decode(_with_crc(body))
+
+
+def test_every_prefix_of_a_frame_is_refused() -> None:
+    # Fed short, a decoder must refuse, never return a partial frame.
+    for frame in (Probe(7, 1, poll=3, ack=AckBlock(3, 4, ((0, 9),))), Fragment(3, 7, 4, 0, b"data")):
+        wire = encode(frame)
+        for cut in range(len(wire)):
+            with pytest.raises(Exception) as info:
+                decode(wire[:cut])
+            assert info.type.__module__ == "terminal.errors"
+
+
+def test_sealed_message_round_trip_and_corruption() -> None:
+    sealed = seal_message(b"stage=1.84m")
+    assert len(sealed) == len(b"stage=1.84m") + 4
+    assert unseal_message(sealed) == b"stage=1.84m"
+    damaged = bytes([sealed[0] ^ 1]) + sealed[1:]
+    with pytest.raises(MessageCrcMismatch):
+        unseal_message(damaged)
+    with pytest.raises(TruncatedFrame):
+        unseal_message(b"\x01\x02")
+    with pytest.raises(UsageError):
+        seal_message(bytes(MAX_MESSAGE_STREAM))
+
+
+def test_decode_accepts_bytearray_and_memoryview() -> None:
+    wire = encode(Fragment(1, 2, 3, 0, b"abc"))
+    assert decode(bytearray(wire)) == decode(memoryview(wire)) == decode(wire)
+
+
+def test_decode_refuses_text_as_caller_misuse() -> None:
+    with pytest.raises(UsageError):
+        decode("12ab")  # type: ignore[arg-type]
