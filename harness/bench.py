@@ -18,25 +18,34 @@ from terminal.wire.codec import decode, decode_with_construct, encode, encode_wi
 from terminal.wire.frames import Frame
 
 
-def _rate(fn: Callable[[], object], seconds: float, repeats: int = 3) -> float:
-    """Calls per second of ``fn``: the best of ``repeats`` timed batches."""
+def _batch_size(fn: Callable[[], object], seconds: float) -> int:
+    """Calls of ``fn`` that take about ``seconds``."""
     batch = 1
-    while True:  # size a batch to take about seconds / repeats
+    while True:
         start = time.perf_counter()
         for _ in range(batch):
             fn()
         elapsed = time.perf_counter() - start
-        if elapsed >= seconds / repeats / 4:
-            break
+        if elapsed >= seconds / 4:
+            return max(1, int(batch * seconds / elapsed))
         batch *= 4
-    batch = max(1, int(batch * (seconds / repeats) / elapsed))
-    best = float("inf")
-    for _ in range(repeats):
-        start = time.perf_counter()
-        for _ in range(batch):
-            fn()
-        best = min(best, time.perf_counter() - start)
-    return batch / best
+
+
+def _rates(fns: dict[str, Callable[[], object]], seconds: float, rounds: int = 5) -> dict[str, float]:
+    """Calls per second of each function, best of ``rounds``.
+
+    The functions are timed in turn within each round, so a compared pair
+    sees the same machine load; ``seconds`` is the time per function.
+    """
+    batches = {name: _batch_size(fn, seconds / rounds) for name, fn in fns.items()}
+    best = {name: float("inf") for name in fns}
+    for _ in range(rounds):
+        for name, fn in fns.items():
+            start = time.perf_counter()
+            for _ in range(batches[name]):
+                fn()
+            best[name] = min(best[name], time.perf_counter() - start)
+    return {name: batches[name] / best[name] for name in fns}
 
 
 def _baseline(fmt: str, tail: int) -> tuple[Callable[[bytes], object], Callable[[tuple[Any, ...], bytes], bytes]]:
@@ -79,16 +88,21 @@ def codec_benchmark(seconds: float = 0.6, progress: Callable[[str], None] | None
         unpack, pack = _baseline(fmt, tail)
         values = unpack(wire)[0]  # type: ignore[index]
         rest = wire[struct.calcsize(fmt) : struct.calcsize(fmt) + tail]
-        row = {
-            "frame_bytes": len(wire),
-            "decode_fps": _rate(lambda: decode(wire), seconds),
-            "encode_fps": _rate(lambda: encode(frame), seconds),
-            "baseline_decode_fps": _rate(lambda: unpack(wire), seconds),
-            "baseline_encode_fps": _rate(lambda: pack(values, rest), seconds),
-            "construct_decode_fps": _rate(lambda: decode_with_construct(wire), seconds),
-            "construct_encode_fps": _rate(lambda: encode_with_construct(frame), seconds),
-            "path": "struct fast path" if isinstance(frame, Fragment) else "construct",
-        }
+        row: dict[str, Any] = {"frame_bytes": len(wire)}
+        row.update(
+            _rates(
+                {
+                    "decode_fps": lambda: decode(wire),
+                    "baseline_decode_fps": lambda: unpack(wire),
+                    "encode_fps": lambda: encode(frame),
+                    "baseline_encode_fps": lambda: pack(values, rest),
+                    "construct_decode_fps": lambda: decode_with_construct(wire),
+                    "construct_encode_fps": lambda: encode_with_construct(frame),
+                },
+                seconds,
+            )
+        )
+        row["path"] = "struct fast path" if isinstance(frame, Fragment) else "construct"
         row["ratio_to_baseline"] = row["baseline_decode_fps"] / row["decode_fps"]
         row["encode_ratio_to_baseline"] = row["baseline_encode_fps"] / row["encode_fps"]
         results[name] = row

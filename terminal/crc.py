@@ -14,7 +14,9 @@ from collections.abc import Callable
 import crcmod.predefined
 
 crc16: Callable[[bytes], int] = crcmod.predefined.mkPredefinedCrcFun("crc-ccitt-false")
-"""CRC-16/IBM-3740 of a byte string."""
+"""CRC-16/IBM-3740 of a byte string.  It has no reflection and no final XOR,
+so the CRC of a frame *with* its CRC appended big-endian is 0: receivers check
+a frame in one pass without slicing off the trailer."""
 
 crc32c: Callable[[bytes], int] = crcmod.predefined.mkPredefinedCrcFun("crc-32c")
 """CRC-32C of a byte string."""

@@ -82,3 +82,11 @@ def _crc32c_bitwise(data: bytes) -> int:
 @given(st.binary(max_size=300))
 def test_crc32c_matches_parameter_definition(data: bytes) -> None:
     assert crc32c(data) == _crc32c_bitwise(data)
+
+
+@pytest.mark.property
+@given(st.binary(max_size=300))
+def test_crc16_residue_of_a_closed_frame_is_zero(data: bytes) -> None:
+    # No reflection and no final XOR: appending the CRC big-endian leaves a
+    # zero remainder (the receiver's one-pass check relies on it).
+    assert crc16(data + crc16(data).to_bytes(2, "big")) == 0

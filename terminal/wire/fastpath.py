@@ -66,7 +66,7 @@ def decode_fragment(data: bytes) -> Fragment:
         raise FrameTooLong(f"frame of {size} bytes exceeds the {MAX_FRAME_BYTES}-byte maximum")
     if size < MIN_FRAME_BYTES:
         raise TruncatedFrame(f"{size} bytes cannot hold a type byte and a CRC")
-    if crc16(data[:-FRAME_CRC_BYTES]) != (data[-2] << 8 | data[-1]):
+    if crc16(data):  # CRC-16/IBM-3740 of a frame with its CRC appended is 0
         raise CrcMismatch("frame CRC-16 does not match: corrupted on the air or misframed")
     if size < _OVERHEAD:
         raise TruncatedFrame(f"fragment of {size} bytes is shorter than its {_OVERHEAD}-byte header and CRC")
@@ -85,8 +85,8 @@ def decode_fragment(data: bytes) -> Fragment:
             message_id,
             offset,
             data[FRAGMENT_HEADER_BYTES:-FRAME_CRC_BYTES],
-            bool(position & _FINAL),
-            bool(position & _URGENT),
-            bool(position & _DOWNLINK),
+            position & _FINAL != 0,
+            position & _URGENT != 0,
+            position & _DOWNLINK != 0,
         ),
     )

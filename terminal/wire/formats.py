@@ -28,6 +28,7 @@ from construct import (
     Int32ub,
     RawCopy,
     Rebuild,
+    SizeofError,
     Struct,
     len_,
     stream_read,
@@ -87,8 +88,6 @@ class Remainder(Construct):  # type: ignore[misc]
         return data
 
     def _sizeof(self, context, path):  # type: ignore[no-untyped-def]
-        from construct import SizeofError
-
         raise SizeofError("variable: runs to the end of the frame", path=path)
 
 
