@@ -29,9 +29,9 @@ def byte_ranges(draw: st.DrawFn, max_count: int = MAX_ACK_RANGES) -> tuple[tuple
 
 @st.composite
 def ack_blocks(draw: st.DrawFn) -> AckBlock:
-    complete = draw(st.booleans())
-    ranges = () if complete else draw(byte_ranges())
-    return AckBlock(draw(u16), draw(u16), ranges, complete, draw(st.booleans()))
+    outcome = draw(st.sampled_from(["partial", "complete", "refused"]))
+    ranges = draw(byte_ranges()) if outcome == "partial" else ()
+    return AckBlock(draw(u16), draw(u16), ranges, outcome == "complete", draw(st.booleans()), outcome == "refused")
 
 
 command_blocks = st.builds(CommandBlock, u8, u8, st.binary(max_size=MAX_COMMAND_BYTES))

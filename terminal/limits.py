@@ -54,6 +54,13 @@ MAX_COMMAND_BYTES = 64
 """Downlink command arguments and reply results.  Commands set a reporting
 interval or a threshold; 64 bytes is ample and keeps a probe short."""
 
+MESSAGE_ID_BITS = 16
+MAX_ID_SPAN = 1 << (MESSAGE_ID_BITS - 1)
+"""Ids in flight from one sender must span less than half the 16-bit id
+space, or a receiver cannot tell old from new after wrap-around (the
+selective-repeat bound, window <= 2^(n-1); from memory of any data-link
+textbook)."""
+
 MAX_SERIAL_PAYLOAD = MAX_FRAME_BYTES + 16
 """A host-modem record: one air frame plus up to 16 bytes of modem metadata
 (timestamps, signal quality)."""
@@ -87,9 +94,61 @@ class Limits:
     max_fragment_payload: int = MAX_FRAGMENT_PAYLOAD
     """Largest payload the sender puts in one fragment."""
 
+    max_queued_messages: int = 32
+    """Messages a sender holds until acknowledged: a day of hourly reports
+    with room for alarms; 32 x 4 KiB is the worst case a durable outbox holds."""
+
+    duplicate_window: int = 64
+    """Completed message ids remembered per source, RFC 4303 style (s3.4.3:
+    32 must be supported, 64 is the usual default).  A sender never has ids
+    in flight that span more than this, so any retransmission, however late,
+    lands inside the receiver's window."""
+
+    max_duplicate_sources: int = 64
+    """Sources with a remembered window.  A terminal hears a few masters; a
+    master serving thousands of terminals raises this (8 bytes each)."""
+
+    max_partials_per_source: int = 4
+    """Messages one source may have half-reassembled at once."""
+
+    max_partials_total: int = 16
+    """Half-reassembled messages across all sources."""
+
+    max_bytes_per_source: int = 8 * 1024
+    """Reassembly buffer per source: two default-size messages."""
+
+    max_bytes_total: int = 16 * 1024
+    """Reassembly buffer across all sources: affordable on a 64 KiB part."""
+
+    max_ranges_per_message: int = MAX_ACK_RANGES
+    """Held ranges (islands between holes) per message; an acknowledgement
+    must describe them all, so at most the 15 an ack block carries."""
+
+    reassembly_lifetime: float = 4 * 3600.0
+    """Seconds from a message's first fragment until an incomplete message is
+    dropped (not restarted by later fragments, as RFC 8200 s4.5 has it).
+    Openings come a few times a minute but a large message may need dozens,
+    with nights of low meteor rates between; four hours spans that."""
+
     def __post_init__(self) -> None:
         _within("max_message_payload", self.max_message_payload, 1, MAX_MESSAGE_PAYLOAD)
         _within("max_fragment_payload", self.max_fragment_payload, 1, MAX_FRAGMENT_PAYLOAD)
+        _within("max_queued_messages", self.max_queued_messages, 1, MAX_ID_SPAN)
+        _within("duplicate_window", self.duplicate_window, 1, MAX_ID_SPAN)
+        _within("max_duplicate_sources", self.max_duplicate_sources, 1, 1 << 20)
+        _within("max_partials_per_source", self.max_partials_per_source, 1, 1 << 16)
+        _within("max_partials_total", self.max_partials_total, self.max_partials_per_source, 1 << 20)
+        sealed = self.max_message_payload + MESSAGE_CRC_BYTES
+        _within("max_bytes_per_source", self.max_bytes_per_source, sealed, 1 << 30)
+        _within("max_bytes_total", self.max_bytes_total, self.max_bytes_per_source, 1 << 32)
+        _within("max_ranges_per_message", self.max_ranges_per_message, 1, MAX_ACK_RANGES)
+        if not isinstance(self.reassembly_lifetime, (int, float)) or not self.reassembly_lifetime > 0:
+            raise UsageError(f"limit reassembly_lifetime={self.reassembly_lifetime!r} must be a positive number of seconds")
+
+    @property
+    def max_sealed_message(self) -> int:
+        """Largest sealed message (payload plus CRC-32C) this link accepts."""
+        return self.max_message_payload + MESSAGE_CRC_BYTES
 
 
 def _within(name: str, value: int, low: int, high: int) -> None:

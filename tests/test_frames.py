@@ -72,6 +72,7 @@ def test_ack_layout_by_hand() -> None:
         (lambda: AckBlock(1, 1, ((5, 5),)), "start < end"),
         (lambda: AckBlock(1, 1, ((0, 5), (5, 9))), "overlaps or touches"),
         (lambda: AckBlock(1, 1, ((0, 5),), complete=True), "no ranges"),
+        (lambda: AckBlock(1, 1, refused=True, complete=True), "not both"),
         (lambda: AckBlock(1, 1, tuple((2 * i, 2 * i + 1) for i in range(16))), "at most 15"),
         (lambda: Probe(1, 1, command=CommandBlock(1, 1)), "set poll"),
         (lambda: Reply(1, 1, 1, 99), "status=99"),

@@ -118,6 +118,7 @@ def _ack_block(c: Container) -> AckBlock:
         tuple((r.start, r.end) for r in c.ranges),
         c.status.complete,
         c.status.downlink,
+        c.status.refused,
     )
 
 
@@ -166,7 +167,7 @@ def _ack_value(block: AckBlock) -> dict[str, Any]:
     return {
         "terminal": block.terminal,
         "message_id": block.message_id,
-        "status": {"complete": block.complete, "downlink": block.downlink},
+        "status": {"complete": block.complete, "downlink": block.downlink, "refused": block.refused},
         "ranges": [{"start": s, "end": e} for s, e in block.ranges],
     }
 

@@ -114,7 +114,8 @@ ACK_BLOCK = Struct(
     / BitStruct(
         "complete" / Flag * "whole message delivered; ranges are empty",
         "downlink" / Flag * "acknowledges a master-to-terminal message",
-        "reserved" / Const(0, BitsInteger(2)) * "zero",
+        "refused" / Flag * "the receiver will never deliver this message; ranges are empty",
+        "reserved" / Const(0, BitsInteger(1)) * "zero",
         "count" / Rebuild(BitsInteger(4), len_(this._.ranges)) * "number of held ranges",
     )
     * "flags and range count",

@@ -67,10 +67,14 @@ class _AckBlockFields(NamedTuple):
     ranges: tuple[ByteRange, ...]
     complete: bool
     downlink: bool
+    refused: bool
 
 
 class AckBlock(_AckBlockFields):
-    """Which bytes of one message the receiver holds (or that it has it all)."""
+    """Which bytes of one message the receiver holds, or that it has it all
+    (``complete``), or that it will never deliver it (``refused``: its id is
+    older than the receiver's duplicate window, or it is larger than the
+    receiver accepts)."""
 
     __slots__ = ()
 
@@ -81,12 +85,21 @@ class AckBlock(_AckBlockFields):
         ranges: tuple[ByteRange, ...] = (),
         complete: bool = False,
         downlink: bool = False,
+        refused: bool = False,
     ) -> AckBlock:
         checked = check_ranges(ranges)
-        if complete and checked:
-            raise UsageError("a complete acknowledgement carries no ranges")
+        if (complete or refused) and checked:
+            raise UsageError("a complete or refused acknowledgement carries no ranges")
+        if complete and refused:
+            raise UsageError("an acknowledgement is complete or refused, not both")
         return super().__new__(
-            cls, _uint("terminal", terminal, 16), _uint("message_id", message_id, 16), checked, bool(complete), bool(downlink)
+            cls,
+            _uint("terminal", terminal, 16),
+            _uint("message_id", message_id, 16),
+            checked,
+            bool(complete),
+            bool(downlink),
+            bool(refused),
         )
 
 

@@ -1,0 +1,221 @@
+"""The sending side: cut queued messages into fragments that fill each opening.
+
+A meteor trail gives a few hundred bytes at most, at a moment nobody can
+predict.  The sender keeps each queued message as a sealed byte stream
+(payload plus CRC-32C) and a record of which bytes the receiver has said it
+holds.  When an opening comes, :meth:`Sender.fill` spends the byte budget on
+the messages that matter most (alarms before routine, then oldest first):
+within a message, bytes never sent before go first, then bytes sent but not
+acknowledged.  Fragment boundaries are chosen afresh at every opening, so a
+shorter or longer trail never causes an acknowledged byte to be resent.
+
+Acknowledgements *replace* the sender's record rather than add to it: the
+receiver's word is the truth, so when it drops a half-built message (expiry,
+eviction, a bad CRC-32C) its next acknowledgement shows fewer bytes and the
+sender sends them again.  A message whose bytes are all acknowledged but not
+yet reported complete gets a one-byte final fragment at the next opening, to
+solicit a fresh verdict.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import enum
+
+from terminal.errors import UsageError
+from terminal.limits import DEFAULT_LIMITS, FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MESSAGE_ID_BITS, Limits
+from terminal.rangeset import RangeSet
+from terminal.wire.codec import seal_message
+from terminal.wire.frames import AckBlock, Fragment
+
+FRAGMENT_OVERHEAD = FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES
+
+
+class Priority(enum.IntEnum):
+    """Lower values are served first."""
+
+    ALARM = 0
+    ROUTINE = 1
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class MessageAcknowledged:
+    """The receiver reported the message complete: it was delivered."""
+
+    message_id: int
+    created: float
+    acknowledged: float
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class MessageRefused:
+    """The receiver will never deliver the message; it is dropped."""
+
+    message_id: int
+    created: float
+    refused: float
+
+
+SenderEvent = MessageAcknowledged | MessageRefused
+
+
+@dataclasses.dataclass(slots=True)
+class _Outgoing:
+    seq: int  # unwrapped id; the wire carries the low 16 bits
+    sealed: bytes
+    priority: Priority
+    created: float
+    acked: RangeSet = dataclasses.field(default_factory=RangeSet)
+    sent: RangeSet = dataclasses.field(default_factory=RangeSet)  # since it was last acknowledged
+
+    @property
+    def wire_id(self) -> int:
+        return self.seq & ((1 << MESSAGE_ID_BITS) - 1)
+
+
+@dataclasses.dataclass(slots=True)
+class SenderCounters:
+    queued: int = 0
+    acknowledged: int = 0
+    refused: int = 0
+    fragments: int = 0
+    payload_bytes: int = 0
+    air_bytes: int = 0
+    solicitations: int = 0
+    stray_acks: int = 0
+
+
+class Sender:
+    """Outgoing messages of one stream (one terminal to one master, or the reverse)."""
+
+    def __init__(
+        self,
+        terminal: int,
+        master: int,
+        *,
+        downlink: bool = False,
+        limits: Limits = DEFAULT_LIMITS,
+        first_id: int = 0,
+    ) -> None:
+        # Validate the addresses once, through the frame constructor.
+        Fragment(terminal, master, 0, 0, b"\x00", downlink=downlink)
+        self.terminal, self.master, self.downlink = terminal, master, downlink
+        self.limits = limits
+        self.counters = SenderCounters()
+        self._next_seq = first_id
+        self._queue: dict[int, _Outgoing] = {}  # by unwrapped id, in id order
+
+    # --- the application's side ------------------------------------------------
+
+    def can_queue(self) -> bool:
+        return len(self._queue) < self.limits.max_queued_messages
+
+    def queue(self, payload: bytes, now: float, priority: Priority = Priority.ROUTINE) -> int:
+        """Queue a message; returns its 16-bit message id."""
+        if len(payload) > self.limits.max_message_payload:
+            raise UsageError(f"message of {len(payload)} bytes exceeds this link's {self.limits.max_message_payload}-byte limit")
+        if not payload:
+            raise UsageError("a message carries at least one byte")
+        if not self.can_queue():
+            raise UsageError(f"sender already holds {self.limits.max_queued_messages} messages; check can_queue() first")
+        message = _Outgoing(self._next_seq, seal_message(payload), Priority(priority), now)
+        self._queue[message.seq] = message
+        self._next_seq += 1
+        self.counters.queued += 1
+        return message.wire_id
+
+    @property
+    def pending(self) -> int:
+        """Messages queued and not yet acknowledged or refused."""
+        return len(self._queue)
+
+    @property
+    def next_id(self) -> int:
+        """The 16-bit id the next queued message will get (to store durably)."""
+        return self._next_seq & ((1 << MESSAGE_ID_BITS) - 1)
+
+    # --- the link's side ---------------------------------------------------------
+
+    def _eligible(self) -> list[_Outgoing]:
+        """Messages that may be sent now, most important first.
+
+        Only ids within ``duplicate_window`` of the oldest unfinished one may be
+        in flight, so every retransmission stays inside the receiver's window.
+        """
+        if not self._queue:
+            return []
+        oldest = next(iter(self._queue))
+        span = self.limits.duplicate_window
+        ready = [m for m in self._queue.values() if m.seq - oldest < span]
+        ready.sort(key=lambda m: (m.priority, m.created, m.seq))
+        return ready
+
+    def fill(self, budget: int, now: float) -> list[Fragment]:
+        """Fragments for an opening that can carry ``budget`` bytes of frames."""
+        fragments: list[Fragment] = []
+        for message in self._eligible():
+            if budget <= FRAGMENT_OVERHEAD:
+                break
+            budget = self._fill_message(message, budget, fragments)
+        self.counters.fragments += len(fragments)
+        return fragments
+
+    def _fill_message(self, message: _Outgoing, budget: int, out: list[Fragment]) -> int:
+        size = len(message.sealed)
+        unacked = list(message.acked.gaps(0, size))
+        if not unacked:  # all held, no verdict yet: ask again with one byte
+            unacked = [(size - 1, size)]
+            self.counters.solicitations += 1
+        fresh = [gap for start, end in unacked for gap in message.sent.gaps(start, end)]
+        resend = [part for start, end in unacked for part in message.sent.overlapping(start, end)]
+        for start, end in fresh + resend:
+            while start < end and budget > FRAGMENT_OVERHEAD:
+                take = min(end - start, budget - FRAGMENT_OVERHEAD, self.limits.max_fragment_payload)
+                out.append(
+                    Fragment(
+                        self.terminal,
+                        self.master,
+                        message.wire_id,
+                        start,
+                        message.sealed[start : start + take],
+                        final=start + take == size,
+                        urgent=message.priority is Priority.ALARM,
+                        downlink=self.downlink,
+                    )
+                )
+                message.sent.add(start, start + take)
+                budget -= take + FRAGMENT_OVERHEAD
+                self.counters.payload_bytes += take
+                self.counters.air_bytes += take + FRAGMENT_OVERHEAD
+                start += take
+        return budget
+
+    def on_ack(self, block: AckBlock, now: float) -> list[SenderEvent]:
+        """Apply an acknowledgement from the receiver; returns what finished."""
+        if block.terminal != self.terminal or block.downlink != self.downlink:
+            self.counters.stray_acks += 1
+            return []
+        message = self._find(block.message_id)
+        if message is None:  # late copy for a message already finished
+            self.counters.stray_acks += 1
+            return []
+        if block.complete:
+            del self._queue[message.seq]
+            self.counters.acknowledged += 1
+            return [MessageAcknowledged(message.wire_id, message.created, now)]
+        if block.refused:
+            del self._queue[message.seq]
+            self.counters.refused += 1
+            return [MessageRefused(message.wire_id, message.created, now)]
+        size = len(message.sealed)
+        message.acked = RangeSet((s, min(e, size)) for s, e in block.ranges if s < size)
+        for start, end in message.acked:  # acknowledged bytes are no longer "sent, unconfirmed"
+            message.sent.discard(start, end)
+        return []
+
+    def _find(self, wire_id: int) -> _Outgoing | None:
+        for message in self._queue.values():
+            if message.wire_id == wire_id:
+                return message
+        return None
+

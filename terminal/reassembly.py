@@ -1,0 +1,314 @@
+"""The receiving side: rebuild messages from fragments, deliver each once.
+
+Used by the master for uplink and by the terminal for downlink.  Partial
+messages are keyed by (direction, source, message id) and held in a buffer
+with a range set of the bytes present.  A message completes when every byte
+up to the end given by its final fragment is present *and* its CRC-32C
+verifies; it is then delivered once and its id entered in the source's
+completed-id window, so later copies are acknowledged again and dropped.
+
+Hostile or broken input is contained, and every containment is counted:
+
+* a fragment that disagrees with bytes already held, a fragment beyond the
+  end a final fragment declared, or two different ends abandon the message
+  (RFC 5722: no overlap is trusted unless it is identical);
+* a fragment that would split the held bytes into more ranges than an
+  acknowledgement can describe is dropped (the sender will send it again);
+* the count and byte caps per source and in total are checked on every
+  fragment, evicting the oldest partial message first;
+* a partial message dies ``reassembly_lifetime`` after its first fragment.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Iterator
+
+from terminal.duplicates import DuplicateFilter, Verdict
+from terminal.errors import DecodeError
+from terminal.limits import DEFAULT_LIMITS, Limits
+from terminal.rangeset import RangeSet
+from terminal.wire.codec import unseal_message
+from terminal.wire.frames import AckBlock, Fragment
+
+Source = tuple[bool, int]
+"""(downlink, sender address): a terminal for uplink, a master for downlink."""
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class Delivery:
+    """A message delivered to the application, exactly once."""
+
+    downlink: bool
+    terminal: int
+    master: int
+    message_id: int
+    payload: bytes
+    urgent: bool
+    first_fragment: float
+    completed: float
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class Reception:
+    """What one received fragment produced: the acknowledgement to send back
+    (it always describes the receiver's whole state for that message) and,
+    when the fragment completed a message, its delivery."""
+
+    ack: AckBlock
+    delivery: Delivery | None = None
+
+
+@dataclasses.dataclass(slots=True)
+class ReassemblyCounters:
+    """Every outcome, for reports; names are stable."""
+
+    fragments: int = 0
+    delivered: int = 0
+    duplicate_fragments: int = 0
+    stale_fragments: int = 0
+    too_long: int = 0
+    abandoned_overlap: int = 0
+    abandoned_length: int = 0
+    abandoned_message_crc: int = 0
+    expired: int = 0
+    evicted_count: int = 0
+    evicted_bytes: int = 0
+    hole_cap_drops: int = 0
+    windows_evicted: int = 0
+
+
+@dataclasses.dataclass(slots=True)
+class _Partial:
+    source: Source
+    message_id: int
+    seq: int
+    first_fragment: float
+    buffer: bytearray = dataclasses.field(default_factory=bytearray)
+    held: RangeSet = dataclasses.field(default_factory=RangeSet)
+    end: int | None = None  # known once the final fragment arrived
+    urgent: bool = False
+
+    @property
+    def key(self) -> tuple[Source, int]:
+        return self.source, self.message_id
+
+
+class Reassembler:
+    """Reassembly, duplicate rejection and acknowledgement for one receiver."""
+
+    def __init__(self, limits: Limits = DEFAULT_LIMITS, *, duplicate_window: bool = True) -> None:
+        self.limits = limits
+        self.counters = ReassemblyCounters()
+        self.completed = DuplicateFilter(limits.duplicate_window, limits.max_duplicate_sources)
+        self._check_duplicates = duplicate_window  # off only to prove tests catch duplicates
+        self._partials: dict[tuple[Source, int], _Partial] = {}  # oldest first
+        self._bytes_by_source: dict[Source, int] = {}
+        self._count_by_source: dict[Source, int] = {}
+        self._bytes = 0
+
+    # --- state, for reports and invariants --------------------------------------
+
+    @property
+    def buffered_bytes(self) -> int:
+        return self._bytes
+
+    @property
+    def partial_count(self) -> int:
+        return len(self._partials)
+
+    def buffered_bytes_of(self, source: Source) -> int:
+        return self._bytes_by_source.get(source, 0)
+
+    def partial_count_of(self, source: Source) -> int:
+        return self._count_by_source.get(source, 0)
+
+    def held(self, source: Source, message_id: int) -> tuple[tuple[int, int], ...]:
+        partial = self._partials.get((source, message_id))
+        return () if partial is None else partial.held.ranges()
+
+    def held_bytes(self, source: Source, message_id: int, start: int, end: int) -> bytes:
+        partial = self._partials[(source, message_id)]
+        return bytes(partial.buffer[start:end])
+
+    def partials(self) -> Iterator[tuple[Source, int]]:
+        return iter(list(self._partials))
+
+    # --- timers -----------------------------------------------------------------
+
+    def next_deadline(self) -> float | None:
+        """When the oldest partial message expires (None: nothing to expire)."""
+        if not self._partials:
+            return None
+        return min(p.first_fragment for p in self._partials.values()) + self.limits.reassembly_lifetime
+
+    def expire(self, now: float) -> None:
+        """Drop partial messages whose lifetime has run out."""
+        lifetime = self.limits.reassembly_lifetime
+        for partial in [p for p in self._partials.values() if now - p.first_fragment >= lifetime]:
+            self._drop(partial)
+            self.counters.expired += 1
+
+    # --- receiving ----------------------------------------------------------------
+
+    def receive(self, fragment: Fragment, now: float) -> Reception:
+        """Take one fragment (already CRC-checked by the decoder)."""
+        self.counters.fragments += 1
+        self.expire(now)
+        source: Source = (fragment.downlink, fragment.master if fragment.downlink else fragment.terminal)
+        verdict, seq = self.completed.classify(source, fragment.message_id)
+        if not self._check_duplicates:
+            verdict = Verdict.NEW
+        if verdict is Verdict.DUPLICATE:
+            self.counters.duplicate_fragments += 1
+            return Reception(self._ack(fragment, complete=True))
+        if verdict is Verdict.STALE:
+            self.counters.stale_fragments += 1
+            return Reception(self._ack(fragment, refused=True))
+        if fragment.end > self.limits.max_sealed_message:
+            self.counters.too_long += 1
+            partial = self._partials.get((source, fragment.message_id))
+            if partial is not None:
+                self._drop(partial)
+            return Reception(self._ack(fragment, refused=True))
+
+        partial = self._partials.get((source, fragment.message_id))
+        if partial is None:
+            partial = self._start(source, fragment, seq, now)
+        if not self._consistent(partial, fragment):
+            self._drop(partial)
+            return Reception(self._ack(fragment))
+        if not self._store(partial, fragment):
+            return Reception(self._ack(fragment, held=partial.held.ranges() if partial.key in self._partials else ()))
+        if partial.end is not None and partial.held.contains(0, partial.end):
+            return self._complete(partial, fragment, now)
+        return Reception(self._ack(fragment, held=partial.held.ranges()))
+
+    def _start(self, source: Source, fragment: Fragment, seq: int, now: float) -> _Partial:
+        while self._count_by_source.get(source, 0) >= self.limits.max_partials_per_source and self._evict_oldest(source):
+            self.counters.evicted_count += 1
+        while len(self._partials) >= self.limits.max_partials_total and self._evict_oldest(None):
+            self.counters.evicted_count += 1
+        partial = _Partial(source, fragment.message_id, seq, now)
+        self._partials[partial.key] = partial
+        self._count_by_source[source] = self._count_by_source.get(source, 0) + 1
+        return partial
+
+    def _consistent(self, partial: _Partial, fragment: Fragment) -> bool:
+        """Does the fragment agree with everything held for its message?"""
+        if fragment.final:
+            if partial.end is not None and partial.end != fragment.end:
+                self.counters.abandoned_length += 1
+                return False
+            if partial.held.maximum() > fragment.end:
+                self.counters.abandoned_length += 1
+                return False
+        elif partial.end is not None and fragment.end > partial.end:
+            self.counters.abandoned_length += 1
+            return False
+        for start, end in partial.held.overlapping(fragment.offset, fragment.end):
+            lo = start - fragment.offset
+            if partial.buffer[start:end] != fragment.payload[lo : lo + end - start]:
+                self.counters.abandoned_overlap += 1
+                return False
+        return True
+
+    def _store(self, partial: _Partial, fragment: Fragment) -> bool:
+        """Copy the fragment in, within every cap; False if it was not kept."""
+        if partial.held.contains(fragment.offset, fragment.end):
+            if fragment.final:
+                partial.end = fragment.end
+            return True
+        if partial.held.ranges_after_add(fragment.offset, fragment.end) > self.limits.max_ranges_per_message:
+            self.counters.hole_cap_drops += 1
+            return False
+        growth = max(0, fragment.end - len(partial.buffer))
+        if not self._make_room(partial, growth):
+            return False
+        if growth:
+            partial.buffer.extend(bytes(growth))
+            self._account(partial.source, growth)
+        partial.buffer[fragment.offset : fragment.end] = fragment.payload
+        partial.held.add(fragment.offset, fragment.end)
+        if fragment.final:
+            partial.end = fragment.end
+        partial.urgent = partial.urgent or fragment.urgent
+        return True
+
+    def _make_room(self, partial: _Partial, growth: int) -> bool:
+        """Evict other partial messages, oldest first, until ``growth`` fits."""
+        source = partial.source
+        limits = self.limits
+        while self._bytes_by_source.get(source, 0) + growth > limits.max_bytes_per_source and self._evict_oldest(
+            source, sparing=partial
+        ):
+            self.counters.evicted_bytes += 1
+        while self._bytes + growth > limits.max_bytes_total and self._evict_oldest(None, sparing=partial):
+            self.counters.evicted_bytes += 1
+        if self._bytes_by_source.get(source, 0) + growth > limits.max_bytes_per_source or self._bytes + growth > limits.max_bytes_total:
+            # Unreachable with validated limits (a source's cap holds the largest
+            # message), but the caps are never overshot whatever happens.
+            self._drop(partial)
+            self.counters.evicted_bytes += 1
+            return False
+        return True
+
+    def _evict_oldest(self, source: Source | None, sparing: _Partial | None = None) -> bool:
+        """Drop the oldest partial message (of ``source``, if given)."""
+        for partial in self._partials.values():
+            if partial is not sparing and (source is None or partial.source == source):
+                self._drop(partial)
+                return True
+        return False
+
+    def _complete(self, partial: _Partial, fragment: Fragment, now: float) -> Reception:
+        assert partial.end is not None
+        sealed = bytes(partial.buffer[: partial.end])
+        self._drop(partial)
+        try:
+            payload = unseal_message(sealed)
+        except DecodeError:
+            self.counters.abandoned_message_crc += 1
+            return Reception(self._ack(fragment))
+        before = self.completed.evicted
+        self.completed.complete(partial.source, partial.seq)
+        self.counters.windows_evicted += self.completed.evicted - before
+        self.counters.delivered += 1
+        delivery = Delivery(
+            fragment.downlink,
+            fragment.terminal,
+            fragment.master,
+            fragment.message_id,
+            payload,
+            partial.urgent,
+            partial.first_fragment,
+            now,
+        )
+        return Reception(self._ack(fragment, complete=True), delivery)
+
+    # --- bookkeeping ----------------------------------------------------------------
+
+    def _account(self, source: Source, delta: int) -> None:
+        self._bytes += delta
+        self._bytes_by_source[source] = self._bytes_by_source.get(source, 0) + delta
+        if not self._bytes_by_source[source]:
+            del self._bytes_by_source[source]
+
+    def _drop(self, partial: _Partial) -> None:
+        if self._partials.pop(partial.key, None) is None:
+            return
+        if partial.buffer:
+            self._account(partial.source, -len(partial.buffer))
+        self._count_by_source[partial.source] -= 1
+        if not self._count_by_source[partial.source]:
+            del self._count_by_source[partial.source]
+
+    @staticmethod
+    def _ack(
+        fragment: Fragment,
+        *,
+        held: tuple[tuple[int, int], ...] = (),
+        complete: bool = False,
+        refused: bool = False,
+    ) -> AckBlock:
+        return AckBlock(fragment.terminal, fragment.message_id, held, complete, fragment.downlink, refused)
