@@ -3,7 +3,13 @@ and by conformance runs against other implementations."""
 
 from __future__ import annotations
 
+import random
+
 from hypothesis import strategies as st
+
+from harness.faults import FaultSchedule
+from terminal.fragmentation import Priority
+from terminal.limits import DEFAULT_LIMITS
 
 from terminal.limits import MAX_ACK_RANGES, MAX_COMMAND_BYTES, MAX_FRAGMENT_PAYLOAD, MAX_MESSAGE_STREAM
 from terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus
@@ -59,3 +65,40 @@ replies = st.builds(Reply, u16, u8, u8, st.sampled_from(ReplyStatus), st.binary(
 
 frames = st.one_of(probes(), fragments(), acks, commands, replies)
 """Any valid frame representation."""
+
+
+# --- workloads and channel fault schedules ------------------------------------------
+
+@st.composite
+def message_payloads(draw: st.DrawFn, max_size: int = DEFAULT_LIMITS.max_message_payload) -> bytes:
+    """Mostly sensor-report sizes, sometimes the extremes: 1 byte and the maximum."""
+    size = draw(st.one_of(st.integers(1, 120), st.integers(121, max_size), st.sampled_from([1, max_size])))
+    if size <= 256:
+        return draw(st.binary(min_size=size, max_size=size))
+    return random.Random(draw(st.integers(0, 2**32))).randbytes(size)  # large: seeded filler
+
+
+@st.composite
+def workloads(draw: st.DrawFn, max_messages: int = 12) -> list[tuple[bytes, Priority, float]]:
+    """(payload, priority, arrival time in seconds) per message, by arrival."""
+    count = draw(st.integers(1, max_messages))
+    times = sorted(draw(st.lists(st.floats(0, 24 * 3600, allow_nan=False), min_size=count, max_size=count)))
+    return [(draw(message_payloads()), draw(st.sampled_from(Priority)), t) for t in times]
+
+
+@st.composite
+def fault_schedules(draw: st.DrawFn) -> FaultSchedule:
+    """A channel's misbehaviour: independent and bursty loss, duplication,
+    reordering, corruption caught by the CRC, truncation, opening budgets."""
+    budgets = draw(st.lists(st.integers(5, 400), min_size=1, max_size=8))
+    return FaultSchedule(
+        loss=draw(st.floats(0, 0.5)),
+        burst_enter=draw(st.floats(0, 0.3)),
+        burst_leave=draw(st.floats(0.05, 1)),
+        burst_loss=draw(st.floats(0.5, 1)),
+        duplicate=draw(st.floats(0, 0.3)),
+        reorder=draw(st.floats(0, 0.5)),
+        corrupt=draw(st.floats(0, 0.2)),
+        truncate=draw(st.floats(0, 0.1)),
+        budgets=tuple(budgets),
+    )

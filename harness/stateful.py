@@ -1,0 +1,226 @@
+"""Stateful property test of exactly-once delivery through a hostile channel.
+
+Hypothesis drives a terminal's sender and a master's reassembler through
+rules that are the channel's misbehaviours: frames lost, duplicated,
+delivered out of order, corrupted, truncated, acknowledgements lost, long
+silences.  After every step the invariants hold; at the end the channel turns
+fair and every queued message must arrive exactly once.
+
+Subclass :class:`ExactlyOnceMachine` to point it at another receiver or
+sender (the conformance runner does); ``tests/test_exactly_once.py`` runs it.
+"""
+
+from __future__ import annotations
+
+from hypothesis import event
+from hypothesis import strategies as st
+from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, precondition, rule
+
+from harness import strategies
+from harness.pair import MASTER, TERMINAL
+from terminal.errors import DecodeError
+from terminal.fragmentation import MessageRefused, Priority, Sender
+from terminal.limits import Limits
+from terminal.reassembly import Reassembler
+from terminal.wire import Ack, Fragment, decode, encode, seal_message
+
+SOURCE = (False, TERMINAL)
+MAX_IN_FLIGHT = 64  # frames the simulated air holds before the oldest is lost
+
+
+class ExactlyOnceMachine(RuleBasedStateMachine):
+    # Tight limits, so that caps, evictions and the hole cap are exercised.
+    limits: Limits = Limits(
+        max_message_payload=1024,
+        max_queued_messages=8,
+        reassembly_lifetime=3600.0,
+        max_partials_per_source=2,
+        max_partials_total=3,
+        max_bytes_per_source=2048,
+        max_bytes_total=3072,
+        max_ranges_per_message=4,
+    )
+    duplicate_window: bool = True
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.now = 0.0
+        self.uplink: list[bytes] = []
+        self.downlink: list[bytes] = []
+        self.queued: dict[int, bytes] = {}  # queue order -> payload
+        self.order_of_id: dict[int, int] = {}  # wire id -> queue order, while pending
+        self.delivered: dict[int, int] = {}  # queue order -> times delivered
+        self.refused: set[int] = set()
+        self.sender: Sender
+        self.receiver: Reassembler
+
+    # --- set-up ----------------------------------------------------------------------
+
+    @initialize(
+        first_id=st.one_of(st.integers(0, 0xFFFF), st.integers(0xFFF0, 0xFFFF)),
+        backlog=st.lists(strategies.message_payloads(max_size=1024), max_size=4),
+    )
+    def start(self, first_id: int, backlog: list[bytes]) -> None:
+        """A fresh link (ids from anywhere, near wrap-around too) with a backlog."""
+        self.sender = Sender(TERMINAL, MASTER, limits=self.limits, first_id=first_id)
+        self.receiver = Reassembler(self.limits, duplicate_window=self.duplicate_window)
+        for payload in backlog:
+            self.queue_message(payload, Priority.ROUTINE)
+
+    # --- the application -------------------------------------------------------------
+
+    @rule(payload=strategies.message_payloads(max_size=1024), priority=st.sampled_from(Priority))
+    def queue_message(self, payload: bytes, priority: Priority) -> None:
+        if not self.sender.can_queue():
+            return
+        wire_id = self.sender.queue(payload, self.now, priority)
+        order = len(self.queued)
+        self.queued[order] = payload
+        self.order_of_id[wire_id] = order
+
+    # --- the channel -----------------------------------------------------------------
+
+    @rule(budget=st.integers(1, 400))
+    def open_trail(self, budget: int) -> None:
+        self.uplink += [encode(f) for f in self.sender.fill(budget, self.now)]
+        del self.uplink[:-MAX_IN_FLIGHT]
+
+    @precondition(lambda self: self.uplink)
+    @rule(pick=st.integers(0, 1 << 16), keep_copy=st.booleans())
+    def deliver_fragment(self, pick: int, keep_copy: bool) -> None:
+        """Deliver any fragment in flight (reordering); maybe leave a copy (duplication)."""
+        index = pick % len(self.uplink)
+        frame = self.uplink[index] if keep_copy else self.uplink.pop(index)
+        self._receive(frame)
+
+    @precondition(lambda self: self.uplink)
+    @rule(pick=st.integers(0, 1 << 16))
+    def lose_fragment(self, pick: int) -> None:
+        self.uplink.pop(pick % len(self.uplink))
+
+    @precondition(lambda self: self.uplink)
+    @rule(pick=st.integers(0, 1 << 16), bit=st.integers(0, 8 * 300), cut=st.booleans())
+    def damage_fragment(self, pick: int, bit: int, cut: bool) -> None:
+        """Flip one bit or cut the frame short: the CRC must catch it."""
+        frame = bytearray(self.uplink.pop(pick % len(self.uplink)))
+        if cut:
+            del frame[bit % len(frame) :]
+        else:
+            frame[(bit // 8) % len(frame)] ^= 1 << (bit % 8)
+        self._receive(bytes(frame))
+
+    @precondition(lambda self: self.downlink)
+    @rule(pick=st.integers(0, 1 << 16), keep_copy=st.booleans())
+    def deliver_ack(self, pick: int, keep_copy: bool) -> None:
+        index = pick % len(self.downlink)
+        frame = self.downlink[index] if keep_copy else self.downlink.pop(index)
+        self._acknowledge(frame)
+
+    @precondition(lambda self: self.downlink)
+    @rule(pick=st.integers(0, 1 << 16))
+    def lose_ack(self, pick: int) -> None:
+        self.downlink.pop(pick % len(self.downlink))
+
+    @rule(seconds=st.one_of(st.floats(0.05, 60), st.floats(60, 6 * 3600)))
+    def silence(self, seconds: float) -> None:
+        """Time passes with no trail: seconds to hours."""
+        self.now += seconds
+        self.receiver.expire(self.now)
+
+    # --- plumbing with checks --------------------------------------------------------
+
+    def _receive(self, frame: bytes) -> None:
+        try:
+            fragment = decode(frame)
+        except DecodeError:
+            return
+        assert isinstance(fragment, Fragment)
+        reception = self.receiver.receive(fragment, self.now)
+        ack = reception.ack
+        if reception.delivery is not None:
+            order = self.order_of_id[reception.delivery.message_id]
+            assert reception.delivery.payload == self.queued[order], "delivered bytes differ from queued bytes"
+            self.delivered[order] = self.delivered.get(order, 0) + 1
+            assert self.delivered[order] == 1, f"message {order} delivered twice"
+        if ack.complete:
+            order = self.order_of_id.get(ack.message_id)
+            assert order is None or self.delivered.get(order), "complete acknowledgement for an undelivered message"
+        elif not ack.refused:
+            self._check_claims(ack.message_id, ack.ranges)
+        self.downlink.append(encode(Ack(MASTER, ack)))
+        del self.downlink[:-MAX_IN_FLIGHT]
+
+    def _check_claims(self, wire_id: int, ranges: tuple[tuple[int, int], ...]) -> None:
+        """An acknowledgement claims only bytes the receiver holds, and holds correctly."""
+        assert ranges == self.receiver.held(SOURCE, wire_id), "acknowledgement differs from what is held"
+        order = self.order_of_id.get(wire_id)
+        if order is None:
+            return
+        sealed = seal_message(self.queued[order])
+        for start, end in ranges:
+            assert self.receiver.held_bytes(SOURCE, wire_id, start, end) == sealed[start:end]
+
+    def _acknowledge(self, frame: bytes) -> None:
+        ack = decode(frame)
+        assert isinstance(ack, Ack)
+        for event in self.sender.on_ack(ack.ack, self.now):
+            order = self.order_of_id.pop(event.message_id)
+            if isinstance(event, MessageRefused):
+                self.refused.add(order)
+
+    # --- invariants ------------------------------------------------------------------
+
+    @invariant()
+    def buffers_within_caps(self) -> None:
+        if not hasattr(self, "receiver"):
+            return
+        limits = self.limits
+        assert self.receiver.buffered_bytes <= limits.max_bytes_total
+        assert self.receiver.buffered_bytes_of(SOURCE) <= limits.max_bytes_per_source
+        assert self.receiver.partial_count <= limits.max_partials_total
+        assert self.receiver.partial_count_of(SOURCE) <= limits.max_partials_per_source
+        assert len(self.receiver.completed) <= limits.max_duplicate_sources
+
+    @invariant()
+    def nothing_delivered_twice(self) -> None:
+        assert all(count == 1 for count in self.delivered.values())
+
+    def teardown(self) -> None:
+        """The channel turns fair: everything queued must now arrive exactly once."""
+        if not hasattr(self, "sender"):
+            return
+        for frame in self.uplink:
+            self._receive(frame)
+        for frame in self.downlink:
+            self._acknowledge(frame)
+        self.uplink, self.downlink = [], []
+        for _ in range(2000):
+            if not self.sender.pending:
+                break
+            self.open_trail(400)
+            frames, self.uplink = self.uplink, []
+            for frame in frames:
+                self._receive(frame)
+            acks, self.downlink = self.downlink, []
+            for frame in acks:
+                self._acknowledge(frame)
+            self.now += 5.0
+        counters = self.receiver.counters
+        for name in counters.__slots__:  # type: ignore[attr-defined]
+            if getattr(counters, name):
+                event(f"receiver {name}")
+        if self.sender.counters.solicitations:
+            event("sender solicited a verdict")
+        assert not self.sender.pending, "a fair channel did not deliver every message"
+        assert not self.refused, f"messages refused on a fair channel: {sorted(self.refused)}"
+        twice = [order for order in self.queued if self.delivered.get(order, 0) > 1]
+        assert not twice, f"messages delivered twice: {twice}"
+        missing = [order for order in self.queued if not self.delivered.get(order)]
+        assert not missing, f"messages never delivered: {missing}"
+
+
+class WithoutDuplicateWindow(ExactlyOnceMachine):
+    """The same machine with the receiver's completed-id window switched off."""
+
+    duplicate_window = False
+
