@@ -177,8 +177,13 @@ def cmd_bench(args: argparse.Namespace) -> int:
     from harness import bench
 
     progress = None if args.json else (lambda name: print(f"measuring {name} ...", file=sys.stderr, flush=True))
-    report = bench.codec_benchmark(seconds=args.seconds, progress=progress)
-    print(json.dumps(report, indent=2) if args.json else bench.format_codec(report))
+    if args.what == "codec":
+        report = bench.codec_benchmark(seconds=args.seconds, progress=progress)
+        text = bench.format_codec(report)
+    else:
+        report = bench.reassembly_benchmark(seconds=args.seconds, progress=progress)
+        text = bench.format_reassembly(report)
+    print(json.dumps(report, indent=2) if args.json else text)
     return 0
 
 
@@ -239,11 +244,13 @@ def build_parser() -> argparse.ArgumentParser:
             "Benchmarks print figures measured side by side in one run.\n"
             "  codec   encode/decode frames per second of every frame type, next to a\n"
             "          bare struct pack/unpack of the same field layout; ratio = how many\n"
-            "          times slower than the baseline."
+            "          times slower than the baseline.\n"
+            "  reassembly  fragments per second through sender and receiver (with encode and\n"
+            "          decode) and framing efficiency, for 16-256 byte fragment payloads."
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("what", choices=["codec"], help="which benchmark")
+    p.add_argument("what", choices=["codec", "reassembly"], help="which benchmark")
     p.add_argument("--json", action="store_true", help="print the figures as JSON")
     p.add_argument("--seconds", type=float, default=0.6, help="time per measurement (default 0.6)")
     p.set_defaults(handler=cmd_bench)

@@ -46,6 +46,10 @@ class LinkPair:
         self.decode_errors = 0
         self.openings = 0
 
+    def set_schedule(self, schedule: FaultSchedule) -> None:
+        """Change how both directions misbehave from now on (e.g. turn fair)."""
+        self.schedule = self.uplink.schedule = self.downlink.schedule = schedule
+
     def queue(self, payload: bytes, priority: Priority = Priority.ROUTINE) -> int:
         return self.sender.queue(payload, self.now, priority)
 

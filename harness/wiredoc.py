@@ -61,7 +61,8 @@ def _rows(struct: cs.Struct, prefix: str, unit: str) -> list[tuple[str, str, str
         if id(inner) in _BLOCK_NAMES:
             rows.append((name, "variable", f"{docs}; see {_BLOCK_NAMES[id(inner)]}{condition}"))
         elif isinstance(inner, cs.RawCopy):
-            rows.extend(_rows(inner.subcon, prefix, unit))
+            body = inner.subcon
+            rows.extend(_rows(body.subcon if isinstance(body, formats.Body) else body, prefix, unit))
         elif isinstance(inner, cs.Checksum):
             rows.append((name, _size(inner.checksumfield, unit), docs))
         elif isinstance(inner, cs.Transformed) and isinstance(inner.subcon, cs.Struct):  # BitStruct

@@ -8,11 +8,10 @@ or raises a :class:`~terminal.errors.DecodeError` subclass.
 
 from __future__ import annotations
 
-import io
 from collections.abc import Callable
 from typing import Any
 
-from construct import ConstructError, Container, StreamError
+from construct import ChecksumError, ConstructError, Container, StreamError
 
 from terminal.crc import crc16, crc32c
 from terminal.errors import (
@@ -36,7 +35,7 @@ from terminal.limits import (
     MIN_FRAME_BYTES,
 )
 from terminal.wire import fastpath
-from terminal.wire.formats import FRAME_FORMATS, FrameType
+from terminal.wire.formats import FRAME_FORMATS, FrameType, LeftoverBytes
 from terminal.wire.frames import Ack, AckBlock, Command, CommandBlock, Fragment, Frame, Probe, Reply
 
 _FRAME_CLASSES: dict[FrameType, type] = {
@@ -64,12 +63,20 @@ def _as_bytes(data: object) -> bytes:
 def decode(data: bytes | bytearray | memoryview) -> Frame:
     """Decode one received frame (its length delimited by the link layer)."""
     raw = data if type(data) is bytes else _as_bytes(data)
-    if raw and raw[0] == _FRAGMENT_HEAD:
-        return fastpath.decode_fragment(raw)
-    return decode_with_construct(raw)
+    fast = _FAST_DECODERS.get(raw[0]) if raw else None
+    return fast(raw) if fast is not None else decode_with_construct(raw)
 
 
-_FRAGMENT_HEAD = fastpath.HEAD_BYTE
+_FAST_DECODERS: dict[int, Callable[[bytes], Frame]] = {
+    fastpath.HEAD_BYTE: fastpath.decode_fragment,
+    fastpath.PROBE_HEAD: fastpath.decode_probe,
+    fastpath.ACK_HEAD: fastpath.decode_ack,
+}
+_FAST_ENCODERS: dict[type, Callable[[Any], bytes]] = {
+    Fragment: fastpath.encode_fragment,
+    Probe: fastpath.encode_probe,
+    Ack: fastpath.encode_ack,
+}
 
 
 def decode_with_construct(data: bytes | bytearray | memoryview) -> Frame:
@@ -89,26 +96,33 @@ def decode_with_construct(data: bytes | bytearray | memoryview) -> Frame:
         frame_type = FrameType(type_code)
     except ValueError:
         raise UnknownFrameType(f"frame type {type_code} is not assigned in format version {version}") from None
-    fields = FRAME_FORMATS[frame_type].subcons[0].subcon.subcon  # "fields" / RawCopy(Struct(...))
-    stream = io.BytesIO(raw)
     name = frame_type.name.lower()
     try:
-        parsed = fields.parse_stream(stream)
+        parsed = FRAME_FORMATS[frame_type].parse(raw).fields.value
     except StreamError:
         raise TruncatedFrame(f"{name} frame of {size} bytes ends inside a field") from None
+    except LeftoverBytes as exc:
+        raise BadLength(f"{name} frame: {_explain(exc)}") from None
+    except ChecksumError:  # checked above; kept so the mapping is total
+        raise CrcMismatch("frame CRC-16 does not match: corrupted on the air or misframed") from None
     except ConstructError as exc:
-        raise BadField(f"{name} frame: {_first_line(exc)}") from None
-    leftover = size - FRAME_CRC_BYTES - stream.tell()
-    if leftover:
-        raise BadLength(f"{name} frame has {leftover} bytes between its last field and its CRC")
+        raise BadField(f"{name} frame: {_explain(exc)}") from None
     try:
         return _CONVERTERS[frame_type](parsed)
     except UsageError as exc:
         raise BadField(f"{name} frame: {exc}") from None
 
 
-def _first_line(exc: Exception) -> str:
-    return str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+def _explain(exc: ConstructError) -> str:
+    """construct's message with its path as a dotted field name."""
+    lines = str(exc).splitlines()
+    message = lines[-1] if lines else type(exc).__name__
+    steps: list[str] = []
+    for step in (getattr(exc, "path", None) or "").split(" -> "):
+        step = step.strip()
+        if step and not step.startswith("(") and step not in ("fields", "value") and (not steps or steps[-1] != step):
+            steps.append(step)
+    return f"{'.'.join(steps)}: {message}" if steps else message
 
 
 def _ack_block(c: Container) -> AckBlock:
@@ -148,9 +162,8 @@ _CONVERTERS: dict[FrameType, Callable[[Container], Frame]] = {
 
 def encode(frame: Frame) -> bytes:
     """Bytes on the air for a frame representation."""
-    if type(frame) is Fragment:
-        return fastpath.encode_fragment(frame)
-    return encode_with_construct(frame)
+    fast = _FAST_ENCODERS.get(type(frame))
+    return fast(frame) if fast is not None else encode_with_construct(frame)
 
 
 def encode_with_construct(frame: Frame) -> bytes:

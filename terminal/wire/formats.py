@@ -13,6 +13,7 @@ only the interpreted declarations below are used on received data.
 from __future__ import annotations
 
 import enum
+import io
 
 from construct import (
     BitsInteger,
@@ -21,7 +22,9 @@ from construct import (
     Checksum,
     Const,
     Construct,
+    ConstructError,
     Flag,
+    GreedyBytes,
     If,
     Int8ub,
     Int16ub,
@@ -34,7 +37,7 @@ from construct import (
     stream_read,
     stream_seek,
     stream_tell,
-    stream_write,
+    Subconstruct,
     this,
 )
 from construct.core import StreamError
@@ -62,39 +65,48 @@ class ReplyStatus(enum.IntEnum):
     REFUSED = 3
 
 
-class Remainder(Construct):  # type: ignore[misc]
-    """All remaining bytes except the last ``reserve`` (the trailing CRC).
+class LeftoverBytes(ConstructError):  # type: ignore[misc]
+    """A frame's fields ended before its trailer began."""
 
-    Lets a payload run to the end of a frame whose length the link layer
-    already delimits, without spending a length byte on the air.
+
+class Body(Subconstruct):  # type: ignore[misc]
+    """Everything between here and a fixed-size trailer, parsed by ``subcon``.
+
+    The link layer delimits frames, so a frame's fields run up to its CRC: the
+    body is the stream less the trailer.  Fields that end early leave bytes
+    over, which is an error (:class:`LeftoverBytes`); fields that need more
+    than the body holds are truncated, never read from the trailer.
     """
 
-    def __init__(self, reserve: int) -> None:
-        super().__init__()
-        self.reserve = reserve
+    def __init__(self, subcon: Construct, trailer: int) -> None:
+        super().__init__(subcon)
+        self.trailer = trailer
 
     def _parse(self, stream, context, path):  # type: ignore[no-untyped-def]
         here = stream_tell(stream, path)
         end = stream_seek(stream, 0, 2, path)
         stream_seek(stream, here, 0, path)
-        count = end - here - self.reserve
+        count = end - here - self.trailer
         if count < 0:
-            raise StreamError(f"frame ends {-count} bytes early", path=path)
-        return stream_read(stream, count, path)
+            raise StreamError(f"frame ends {-count} bytes before its trailer", path=path)
+        inner = io.BytesIO(stream_read(stream, count, path))
+        obj = self.subcon._parsereport(inner, context, path)
+        extra = count - inner.tell()
+        if extra:
+            raise LeftoverBytes(f"{extra} bytes between the last field and the trailer", path=path)
+        return obj
 
     def _build(self, obj, stream, context, path):  # type: ignore[no-untyped-def]
-        data = bytes(obj)
-        stream_write(stream, data, len(data), path)
-        return data
+        return self.subcon._build(obj, stream, context, path)
 
     def _sizeof(self, context, path):  # type: ignore[no-untyped-def]
-        raise SizeofError("variable: runs to the end of the frame", path=path)
+        raise SizeofError("variable: runs to the trailer", path=path)
 
 
 def _framed(*fields: Construct) -> Struct:
     """A frame: the given fields, then CRC-16/IBM-3740 over all of them."""
     return Struct(
-        "fields" / RawCopy(Struct(*fields)),
+        "fields" / RawCopy(Body(Struct(*fields), FRAME_CRC_BYTES)),
         "crc" / Checksum(Int16ub, crc16, this.fields.data) * "CRC-16/IBM-3740 of every preceding byte",
     )
 
@@ -169,7 +181,7 @@ FRAGMENT = _framed(
         "offset" / BitsInteger(OFFSET_BITS) * "byte offset of the payload in the sealed message",
     )
     * "flags and offset",
-    "payload" / Remainder(FRAME_CRC_BYTES) * "bytes of the sealed message; the frame length gives the count",
+    "payload" / GreedyBytes * "bytes of the sealed message; the frame length gives the count",
 )
 """A piece of a sealed message.  Offset plus final flag lets the fragment size
 change from one opening to the next: any byte range can be sent alone."""
@@ -201,7 +213,7 @@ REPLY = _framed(
 """A terminal's answer to a command."""
 
 SEALED_MESSAGE = Struct(
-    "body" / Remainder(MESSAGE_CRC_BYTES) * "application payload",
+    "body" / Body(GreedyBytes, MESSAGE_CRC_BYTES) * "application payload",
     "crc" / Checksum(Int32ub, crc32c, this.body) * "CRC-32C of the payload",
 )
 """An application message as fragmented: payload then CRC-32C.  Reassembly

@@ -1,0 +1,286 @@
+"""Corner cases of fragmentation, reassembly and exactly-once delivery."""
+
+from __future__ import annotations
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from harness.faults import FaultSchedule
+from harness.pair import MASTER, TERMINAL, LinkPair
+from harness.strategies import fault_schedules, workloads
+from terminal.errors import UsageError
+from terminal.fragmentation import FRAGMENT_OVERHEAD, MessageAcknowledged, MessageRefused, Priority, Sender
+from terminal.limits import DEFAULT_LIMITS, MAX_ACK_RANGES, Limits
+from terminal.reassembly import Reassembler
+from terminal.wire import AckBlock, Fragment, seal_message
+
+SOURCE = (False, TERMINAL)
+
+
+def _fragment(message_id: int, offset: int, payload: bytes, final: bool = False, terminal: int = TERMINAL) -> Fragment:
+    return Fragment(terminal, MASTER, message_id, offset, payload, final=final)
+
+
+# --- sizes and budgets -------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("size", [1, DEFAULT_LIMITS.max_message_payload])
+def test_smallest_and_largest_message(size: int) -> None:
+    pair = LinkPair(FaultSchedule(budgets=(300,)))
+    payload = bytes(i % 251 for i in range(size))
+    pair.queue(payload)
+    assert pair.run_until_done(max_openings=100)
+    assert [d.payload for d in pair.deliveries] == [payload]
+
+
+def test_message_over_the_limit_is_refused_at_the_door() -> None:
+    sender = Sender(TERMINAL, MASTER)
+    with pytest.raises(UsageError, match="4096-byte limit"):
+        sender.queue(bytes(4097), 0.0)
+    with pytest.raises(UsageError):
+        sender.queue(b"", 0.0)
+
+
+def test_queue_is_bounded() -> None:
+    sender = Sender(TERMINAL, MASTER, limits=Limits(max_queued_messages=2))
+    sender.queue(b"a", 0.0)
+    sender.queue(b"b", 0.0)
+    assert not sender.can_queue()
+    with pytest.raises(UsageError, match="can_queue"):
+        sender.queue(b"c", 0.0)
+
+
+def test_budget_smaller_than_a_header_sends_nothing() -> None:
+    sender = Sender(TERMINAL, MASTER)
+    sender.queue(b"reading", 0.0)
+    assert sender.fill(FRAGMENT_OVERHEAD, 0.0) == []
+    assert sender.fill(3, 0.0) == []
+    (one,) = sender.fill(FRAGMENT_OVERHEAD + 1, 0.0)
+    assert len(one.payload) == 1 and one.offset == 0
+
+
+def test_fragment_size_follows_each_opening_and_acknowledged_bytes_are_never_resent() -> None:
+    sender = Sender(TERMINAL, MASTER)
+    sender.queue(bytes(300), 0.0)  # sealed: 304 bytes
+    first = sender.fill(40, 0.0)  # one fragment of 30 bytes
+    assert [(f.offset, len(f.payload)) for f in first] == [(0, 30)]
+    sender.on_ack(AckBlock(TERMINAL, first[0].message_id, ((0, 30),)), 1.0)
+    second = sender.fill(500, 2.0)
+    assert [(f.offset, len(f.payload)) for f in second] == [(30, 256), (286, 18)]
+    assert second[-1].final
+
+
+def test_fresh_bytes_go_before_retransmissions() -> None:
+    sender = Sender(TERMINAL, MASTER)
+    sender.queue(bytes(100), 0.0)  # sealed 104
+    sender.fill(40, 0.0)  # sends [0, 30), not acknowledged
+    nxt = sender.fill(60, 1.0)
+    assert [(f.offset, len(f.payload)) for f in nxt] == [(30, 50)]
+    rest = sender.fill(200, 2.0)
+    assert [(f.offset, f.end) for f in rest] == [(80, 104), (0, 80)]  # fresh tail, then the oldest unconfirmed bytes
+
+
+def test_alarms_go_first_then_oldest() -> None:
+    sender = Sender(TERMINAL, MASTER)
+    routine_old = sender.queue(b"r1", 0.0)
+    routine_new = sender.queue(b"r2", 5.0)
+    alarm = sender.queue(b"flood", 10.0, Priority.ALARM)
+    order = [f.message_id for f in sender.fill(300, 11.0)]
+    assert order == [alarm, routine_old, routine_new]
+    assert [f.urgent for f in sender.fill(300, 12.0)][0] is True
+
+
+def test_ids_in_flight_never_span_more_than_the_window() -> None:
+    sender = Sender(TERMINAL, MASTER, limits=Limits(duplicate_window=4))
+    ids = [sender.queue(b"x", 0.0) for _ in range(8)]
+    assert sorted({f.message_id for f in sender.fill(1000, 0.0)}) == ids[:4]
+    sender.on_ack(AckBlock(TERMINAL, ids[0], complete=True), 1.0)
+    assert sorted({f.message_id for f in sender.fill(1000, 2.0)}) == ids[1:5]
+
+
+def test_all_bytes_held_but_no_verdict_solicits_one() -> None:
+    sender = Sender(TERMINAL, MASTER)
+    wire_id = sender.queue(b"abc", 0.0)  # sealed: 7 bytes
+    sender.fill(100, 0.0)
+    sender.on_ack(AckBlock(TERMINAL, wire_id, ((0, 7),)), 1.0)  # held, but the CRC-32C check failed at the master
+    (poke,) = sender.fill(100, 2.0)
+    assert (poke.offset, poke.payload, poke.final) == (6, seal_message(b"abc")[6:], True)
+    assert sender.counters.solicitations == 1
+
+
+# --- identifiers ---------------------------------------------------------------------------
+
+
+def test_id_wrap_around_delivers_every_message_once() -> None:
+    pair = LinkPair(FaultSchedule(loss=0.2, duplicate=0.2, reorder=0.5, budgets=(60, 200)), seed=5, first_id=65530)
+    payloads = [f"report {i}".encode() * 5 for i in range(20)]
+    for p in payloads:
+        pair.queue(p)
+    assert pair.run_until_done(max_openings=2000)
+    assert sorted(d.payload for d in pair.deliveries) == sorted(payloads)
+    assert {d.message_id for d in pair.deliveries} >= {65535, 0, 1}
+
+
+def test_retransmission_after_the_window_moved_on_is_refused_not_delivered() -> None:
+    # Documented behaviour: an id more than duplicate_window behind the newest
+    # completed id cannot be told from a delivered message, so the receiver
+    # refuses it (acknowledgement with the refused flag) and never delivers it.
+    receiver = Reassembler(Limits(duplicate_window=32))
+    for wire_id in range(1, 101):
+        assert receiver.receive(_fragment(wire_id, 0, seal_message(b"m"), final=True), 0.0).delivery
+    late = receiver.receive(_fragment(50, 0, seal_message(b"m"), final=True), 1.0)
+    assert late.delivery is None and late.ack.refused
+    assert receiver.counters.stale_fragments == 1
+    recent = receiver.receive(_fragment(90, 0, seal_message(b"m"), final=True), 1.0)
+    assert recent.delivery is None and recent.ack.complete  # inside the window: a duplicate
+    sender = Sender(TERMINAL, MASTER)
+    wire_id = sender.queue(b"m", 0.0)
+    assert sender.on_ack(AckBlock(TERMINAL, wire_id, refused=True), 2.0) == [MessageRefused(wire_id, 0.0, 2.0)]
+    assert sender.pending == 0
+
+
+def test_lost_complete_ack_is_acknowledged_again_not_delivered_again() -> None:
+    receiver = Reassembler()
+    sealed = seal_message(b"stage=1.84m")
+    first = receiver.receive(_fragment(9, 0, sealed, final=True), 0.0)
+    again = receiver.receive(_fragment(9, 0, sealed, final=True), 600.0)
+    assert first.delivery is not None and again.delivery is None
+    assert again.ack.complete and receiver.counters.duplicate_fragments == 1
+
+
+def test_window_state_restored_after_reboot_still_rejects() -> None:
+    before = Reassembler()
+    sealed = seal_message(b"x")
+    before.receive(_fragment(3, 0, sealed, final=True), 0.0)
+    after = Reassembler()
+    after.completed.restore(before.completed.snapshot())
+    assert after.receive(_fragment(3, 0, sealed, final=True), 1.0).delivery is None
+
+
+# --- hostile fragments ---------------------------------------------------------------------
+
+
+def test_identical_overlap_is_accepted() -> None:
+    receiver = Reassembler()
+    sealed = seal_message(bytes(range(40)))
+    receiver.receive(_fragment(1, 0, sealed[:20]), 0.0)
+    receiver.receive(_fragment(1, 10, sealed[10:30]), 0.0)
+    receiver.receive(_fragment(1, 12, sealed[12:14]), 0.0)  # inside an earlier one
+    done = receiver.receive(_fragment(1, 25, sealed[25:], final=True), 0.0)
+    assert done.delivery is not None and done.delivery.payload == bytes(range(40))
+
+
+def test_conflicting_overlap_abandons_the_message() -> None:
+    # RFC 5722: overlapping fragments that disagree abandon the whole message.
+    receiver = Reassembler()
+    receiver.receive(_fragment(1, 0, b"A" * 20), 0.0)
+    reception = receiver.receive(_fragment(1, 10, b"B" * 20), 0.0)
+    assert reception.ack.ranges == () and receiver.partial_count == 0
+    assert receiver.counters.abandoned_overlap == 1 and receiver.buffered_bytes == 0
+
+
+def test_fragment_beyond_the_declared_end_abandons() -> None:
+    receiver = Reassembler()
+    receiver.receive(_fragment(1, 10, b"end", final=True), 0.0)
+    receiver.receive(_fragment(1, 12, b"xyz"), 0.0)
+    assert receiver.counters.abandoned_length == 1 and receiver.partial_count == 0
+
+
+def test_two_different_ends_abandon() -> None:
+    receiver = Reassembler()
+    receiver.receive(_fragment(1, 10, b"abc", final=True), 0.0)
+    receiver.receive(_fragment(1, 10, b"abcd", final=True), 0.0)
+    assert receiver.counters.abandoned_length == 1
+
+
+def test_final_fragment_before_held_bytes_abandons() -> None:
+    receiver = Reassembler()
+    receiver.receive(_fragment(1, 50, b"late"), 0.0)
+    receiver.receive(_fragment(1, 0, b"early", final=True), 0.0)
+    assert receiver.counters.abandoned_length == 1
+
+
+def test_message_failing_its_crc32c_is_abandoned_then_resent_whole() -> None:
+    pair = LinkPair()
+    wire_id = pair.queue(b"river stage report")
+    forged = bytearray(seal_message(b"river stage report"))
+    forged[0] ^= 0xFF  # passes every frame CRC, fails the message CRC
+    pair.receiver.receive(_fragment(wire_id, 0, bytes(forged), final=True), 0.0)
+    assert pair.receiver.counters.abandoned_message_crc == 1
+    assert pair.run_until_done(max_openings=10)
+    assert [d.payload for d in pair.deliveries] == [b"river stage report"]
+
+
+def test_message_larger_than_this_receiver_accepts_is_refused() -> None:
+    receiver = Reassembler(Limits(max_message_payload=100, max_bytes_per_source=1024))
+    reception = receiver.receive(_fragment(1, 200, b"x"), 0.0)
+    assert reception.ack.refused and receiver.counters.too_long == 1 and receiver.buffered_bytes == 0
+
+
+def test_hole_cap_drops_the_fragment_that_would_exceed_it() -> None:
+    receiver = Reassembler()
+    for i in range(MAX_ACK_RANGES + 3):
+        reception = receiver.receive(_fragment(1, 10 * i, b"x"), 0.0)
+    assert len(reception.ack.ranges) == MAX_ACK_RANGES
+    assert receiver.counters.hole_cap_drops == 3
+    receiver.receive(_fragment(1, 1, b"y"), 0.0)  # touching an island: still fine
+    assert len(receiver.held(SOURCE, 1)) == MAX_ACK_RANGES
+
+
+def test_lifetime_runs_from_the_first_fragment() -> None:
+    # RFC 8200 s4.5: the reassembly timer is not restarted by later fragments.
+    limits = Limits(reassembly_lifetime=100.0)
+    receiver = Reassembler(limits)
+    receiver.receive(_fragment(1, 0, b"a"), 0.0)
+    receiver.receive(_fragment(1, 1, b"b"), 99.0)
+    assert receiver.next_deadline() == 100.0
+    receiver.expire(100.0)
+    assert receiver.partial_count == 0 and receiver.counters.expired == 1
+    assert receiver.next_deadline() is None
+
+
+def test_many_sources_cannot_exhaust_memory() -> None:
+    limits = DEFAULT_LIMITS
+    receiver = Reassembler(limits)
+    for terminal in range(10_000):
+        receiver.receive(_fragment(1, 0, bytes(256), terminal=terminal), float(terminal))
+        assert receiver.buffered_bytes <= limits.max_bytes_total
+        assert receiver.partial_count <= limits.max_partials_total
+    assert receiver.counters.evicted_count + receiver.counters.evicted_bytes >= 10_000 - limits.max_partials_total
+
+
+def test_one_source_cannot_take_more_than_its_share() -> None:
+    limits = DEFAULT_LIMITS
+    receiver = Reassembler(limits)
+    for message_id in range(50):
+        receiver.receive(_fragment(message_id, 4000, bytes(96)), 0.0)  # each claims a 4 KiB buffer
+        assert receiver.buffered_bytes_of(SOURCE) <= limits.max_bytes_per_source
+        assert receiver.partial_count_of(SOURCE) <= limits.max_partials_per_source
+
+
+# --- end to end through faulty channels -----------------------------------------------------
+
+
+@pytest.mark.property
+@settings(max_examples=40)
+@given(workloads(max_messages=8), fault_schedules(), st.integers(0, 2**32))
+def test_fault_schedules_then_fair_channel_deliver_exactly_once(
+    workload: list[tuple[bytes, Priority, float]], schedule: FaultSchedule, seed: int
+) -> None:
+    pair = LinkPair(schedule, seed=seed, limits=Limits(max_queued_messages=16))
+    acknowledged: list[int] = []
+    for payload, priority, arrival in workload:
+        while pair.now < arrival / 100:  # compress the day: openings every 10 s
+            pair.open_trail()
+            pair.wait(10.0)
+        pair.queue(payload, priority)
+    for _ in range(50):  # the hostile phase
+        pair.open_trail()
+        pair.wait(10.0)
+    fair = FaultSchedule(budgets=tuple(max(b, FRAGMENT_OVERHEAD + 1) for b in schedule.budgets))
+    pair.set_schedule(fair)
+    assert pair.run_until_done(max_openings=5000)
+    acknowledged = [e.message_id for e in pair.sender_events if isinstance(e, MessageAcknowledged)]
+    assert sorted(d.payload for d in pair.deliveries) == sorted(p for p, _, _ in workload)
+    assert len(acknowledged) == len(workload)
