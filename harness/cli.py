@@ -190,19 +190,27 @@ def cmd_bench(args: argparse.Namespace) -> int:
 # --- docs --------------------------------------------------------------------------
 
 
+DOCUMENTS = ("docs/wire.md", "docs/delivery.md")
+
+
 def cmd_docs(args: argparse.Namespace) -> int:
     from harness import wiredoc
 
-    path = Path(args.path)
-    if not path.is_file():
-        raise UserError(f"{path} not found: run from the repository root or give --path")
-    if args.check:
-        stale = wiredoc.render(path.read_text(encoding="utf-8")) != path.read_text(encoding="utf-8")
-        print(f"{path}: {'stale, run: ionotrail docs' if stale else 'up to date'}")
-        return 1 if stale else 0
-    changed = wiredoc.refresh(path)
-    print(f"{path}: {'rewritten' if changed else 'already up to date'}")
-    return 0
+    stale = 0
+    for name in args.path or DOCUMENTS:
+        path = Path(name)
+        if not path.is_file():
+            raise UserError(f"{path} not found: run from the repository root or give --path")
+        text = path.read_text(encoding="utf-8")
+        fresh = wiredoc.render(text)
+        if args.check:
+            stale += fresh != text
+            print(f"{path}: {'stale, run: ionotrail docs' if fresh != text else 'up to date'}")
+        else:
+            if fresh != text:
+                path.write_text(fresh, encoding="utf-8")
+            print(f"{path}: {'rewritten' if fresh != text else 'already up to date'}")
+    return 1 if stale else 0
 
 
 # --- parser ------------------------------------------------------------------------
@@ -257,10 +265,14 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = commands.add_parser(
         "docs",
-        help="regenerate the frame tables in docs/wire.md",
-        description="Rewrite the generated field tables of docs/wire.md from the format declarations.",
+        help="regenerate the generated tables in docs/",
+        description=(
+            "Rewrite the generated tables of docs/wire.md (frame layouts, from the format\n"
+            "declarations) and docs/delivery.md (link limits, from terminal/limits.py)."
+        ),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--path", default="docs/wire.md", help="document to refresh (default docs/wire.md)")
+    p.add_argument("--path", action="append", help="a document to refresh (repeatable; default: both)")
     p.add_argument("--check", action="store_true", help="only report whether the document is stale (exit 1 if so)")
     p.set_defaults(handler=cmd_docs)
     return parser

@@ -1,18 +1,22 @@
-"""Generate docs/wire.md's field tables from the construct declarations.
+"""Generate the tables in docs/ from the code that defines them.
 
-The document keeps its prose by hand; each table sits between
+Documents keep their prose by hand; each table sits between
 ``<!-- generated: NAME -->`` and ``<!-- end generated -->`` and is rewritten
-from ``terminal.wire.formats``.  A test fails when the file is stale; run
-``ionotrail docs`` to refresh it.
+from ``terminal.wire.formats`` (frame layouts) or ``terminal.limits`` (link
+limits and the reasons for their defaults).  A test fails when a document is
+stale; run ``ionotrail docs`` to refresh them.
 """
 
 from __future__ import annotations
 
+import ast
+import dataclasses
+import inspect
 import re
-from pathlib import Path
 
 import construct as cs
 
+from terminal import limits
 from terminal.wire import formats
 
 SECTIONS: dict[str, cs.Construct] = {
@@ -85,22 +89,30 @@ def table(con: cs.Construct) -> str:
     return "\n".join(lines) + "\n"
 
 
+def limits_table() -> str:
+    """Markdown table of every link limit: name, default, and why (its docstring)."""
+    tree = ast.parse(inspect.getsource(limits.Limits))
+    body = tree.body[0].body  # type: ignore[attr-defined]
+    reasons: dict[str, str] = {}
+    for node, after in zip(body, body[1:]):
+        if isinstance(node, ast.AnnAssign) and isinstance(after, ast.Expr) and isinstance(after.value, ast.Constant):
+            reasons[node.target.id] = " ".join(str(after.value.value).split())  # type: ignore[attr-defined]
+    lines = ["| limit | default | why |", "| --- | --- | --- |"]
+    for field in dataclasses.fields(limits.Limits):
+        lines.append(f"| `{field.name}` | {field.default} | {reasons.get(field.name, '')} |")
+    return "\n".join(lines) + "\n"
+
+
+GENERATORS = {name: (lambda con=con: table(con)) for name, con in SECTIONS.items()} | {"limits": limits_table}
+
+
 def render(text: str) -> str:
     """The document with every generated table rewritten."""
 
     def replace(match: re.Match[str]) -> str:
         name = match.group(2)
-        if name not in SECTIONS:
-            raise KeyError(f"docs/wire.md names an unknown generated table {name!r}")
-        return match.group(1) + table(SECTIONS[name]) + match.group(3)
+        if name not in GENERATORS:
+            raise KeyError(f"unknown generated table {name!r}")
+        return match.group(1) + GENERATORS[name]() + match.group(3)
 
     return _MARK.sub(replace, text)
-
-
-def refresh(path: Path) -> bool:
-    """Rewrite ``path`` in place; True when it changed."""
-    old = path.read_text(encoding="utf-8")
-    new = render(old)
-    if new != old:
-        path.write_text(new, encoding="utf-8")
-    return new != old

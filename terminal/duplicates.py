@@ -63,8 +63,9 @@ class CompletedWindow:
         elif seq > self.top:
             self.bitmap = (self.bitmap << (seq - self.top) | 1) & ((1 << self.size) - 1)
             self.top = seq
-        else:
+        elif self.top - seq < self.size:
             self.bitmap |= 1 << (self.top - seq)
+        # else: older than the window; nothing to remember, the bitmap stays bounded
 
 
 class DuplicateFilter:

@@ -82,7 +82,6 @@ class ReassemblyCounters:
 class _Partial:
     source: Source
     message_id: int
-    seq: int
     first_fragment: float
     buffer: bytearray = dataclasses.field(default_factory=bytearray)
     held: RangeSet = dataclasses.field(default_factory=RangeSet)
@@ -156,7 +155,7 @@ class Reassembler:
         self.counters.fragments += 1
         self.expire(now)
         source: Source = (fragment.downlink, fragment.master if fragment.downlink else fragment.terminal)
-        verdict, seq = self.completed.classify(source, fragment.message_id)
+        verdict, _ = self.completed.classify(source, fragment.message_id)
         if not self._check_duplicates:
             verdict = Verdict.NEW
         if verdict is Verdict.DUPLICATE:
@@ -174,7 +173,7 @@ class Reassembler:
 
         partial = self._partials.get((source, fragment.message_id))
         if partial is None:
-            partial = self._start(source, fragment, seq, now)
+            partial = self._start(source, fragment, now)
         if not self._consistent(partial, fragment):
             self._drop(partial)
             return Reception(self._ack(fragment))
@@ -184,12 +183,12 @@ class Reassembler:
             return self._complete(partial, fragment, now)
         return Reception(self._ack(fragment, held=partial.held.ranges()))
 
-    def _start(self, source: Source, fragment: Fragment, seq: int, now: float) -> _Partial:
+    def _start(self, source: Source, fragment: Fragment, now: float) -> _Partial:
         while self._count_by_source.get(source, 0) >= self.limits.max_partials_per_source and self._evict_oldest(source):
             self.counters.evicted_count += 1
         while len(self._partials) >= self.limits.max_partials_total and self._evict_oldest(None):
             self.counters.evicted_count += 1
-        partial = _Partial(source, fragment.message_id, seq, now)
+        partial = _Partial(source, fragment.message_id, now)
         self._partials[partial.key] = partial
         self._count_by_source[source] = self._count_by_source.get(source, 0) + 1
         return partial
@@ -270,8 +269,11 @@ class Reassembler:
         except DecodeError:
             self.counters.abandoned_message_crc += 1
             return Reception(self._ack(fragment))
+        # Unwrap the id now, against the window as it stands at completion: other
+        # messages may have completed (and moved the window) since this one began.
+        _, seq = self.completed.classify(partial.source, partial.message_id)
         before = self.completed.evicted
-        self.completed.complete(partial.source, partial.seq)
+        self.completed.complete(partial.source, seq)
         self.counters.windows_evicted += self.completed.evicted - before
         self.counters.delivered += 1
         delivery = Delivery(
