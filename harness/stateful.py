@@ -211,7 +211,12 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
                 event(f"receiver {name}")
         if self.sender.counters.solicitations:
             event("sender solicited a verdict")
-        assert not self.sender.pending, "a fair channel did not deliver every message"
+        assert not self.sender.pending, (
+            "a fair channel did not deliver every message: "
+            f"sender {self.sender.counters}, receiver {self.receiver.counters}, "
+            f"pending {[(m.wire_id, len(m.sealed), m.acked, m.sent) for m in self.sender._queue.values()]}, "
+            f"partials {[(k, self.receiver.held(*k)) for k in self.receiver.partials()]}"
+        )
         assert not self.refused, f"messages refused on a fair channel: {sorted(self.refused)}"
         twice = [order for order in self.queued if self.delivered.get(order, 0) > 1]
         assert not twice, f"messages delivered twice: {twice}"

@@ -7,7 +7,9 @@ holds.  When an opening comes, :meth:`Sender.fill` spends the byte budget on
 the messages that matter most (alarms before routine, then oldest first):
 within a message, bytes never sent before go first, then bytes sent but not
 acknowledged.  Fragment boundaries are chosen afresh at every opening, so a
-shorter or longer trail never causes an acknowledged byte to be resent.
+shorter or longer trail never causes an acknowledged byte to be resent.  No
+more messages are worked on at once than the receiver keeps half-built for
+one source (``max_partials_per_source``).
 
 Acknowledgements *replace* the sender's record rather than add to it: the
 receiver's word is the truth, so when it drops a half-built message (expiry,
@@ -139,8 +141,13 @@ class Sender:
     def _eligible(self) -> list[_Outgoing]:
         """Messages that may be sent now, most important first.
 
-        Only ids within ``duplicate_window`` of the oldest unfinished one may be
-        in flight, so every retransmission stays inside the receiver's window.
+        Two bounds keep the receiver able to follow.  Only ids within
+        ``duplicate_window`` of the oldest unfinished one may be in flight, so
+        every retransmission stays inside the receiver's completed-id window.
+        And only the first ``max_partials_per_source`` messages in order are
+        worked on at once, the number of half-built messages the receiver
+        keeps for one source: sending more would make it evict one and undo
+        the work of earlier openings.
         """
         if not self._queue:
             return []
@@ -148,7 +155,7 @@ class Sender:
         span = self.limits.duplicate_window
         ready = [m for m in self._queue.values() if m.seq - oldest < span]
         ready.sort(key=lambda m: (m.priority, m.created, m.seq))
-        return ready
+        return ready[: self.limits.max_partials_per_source]
 
     def fill(self, budget: int, now: float) -> list[Fragment]:
         """Fragments for an opening that can carry ``budget`` bytes of frames."""

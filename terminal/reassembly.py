@@ -15,7 +15,9 @@ Hostile or broken input is contained, and every containment is counted:
 * a fragment that would split the held bytes into more ranges than an
   acknowledgement can describe is dropped (the sender will send it again);
 * the count and byte caps per source and in total are checked on every
-  fragment, evicting the oldest partial message first;
+  fragment; over a cap, the partial message that has gone longest without a
+  fragment is evicted first (for a message nobody is completing, that is
+  the oldest), so a message being worked on is not evicted by a stale one;
 * a partial message dies ``reassembly_lifetime`` after its first fragment.
 """
 
@@ -101,7 +103,7 @@ class Reassembler:
         self.counters = ReassemblyCounters()
         self.completed = DuplicateFilter(limits.duplicate_window, limits.max_duplicate_sources)
         self._check_duplicates = duplicate_window  # off only to prove tests catch duplicates
-        self._partials: dict[tuple[Source, int], _Partial] = {}  # oldest first
+        self._partials: dict[tuple[Source, int], _Partial] = {}  # least recently fed first
         self._bytes_by_source: dict[Source, int] = {}
         self._count_by_source: dict[Source, int] = {}
         self._bytes = 0
@@ -171,9 +173,11 @@ class Reassembler:
                 self._drop(partial)
             return Reception(self._ack(fragment, refused=True))
 
-        partial = self._partials.get((source, fragment.message_id))
+        partial = self._partials.pop((source, fragment.message_id), None)
         if partial is None:
             partial = self._start(source, fragment, now)
+        else:
+            self._partials[partial.key] = partial  # now the most recently fed
         if not self._consistent(partial, fragment):
             self._drop(partial)
             return Reception(self._ack(fragment))
@@ -253,7 +257,7 @@ class Reassembler:
         return True
 
     def _evict_oldest(self, source: Source | None, sparing: _Partial | None = None) -> bool:
-        """Drop the oldest partial message (of ``source``, if given)."""
+        """Drop the least recently fed partial message (of ``source``, if given)."""
         for partial in self._partials.values():
             if partial is not sparing and (source is None or partial.source == source):
                 self._drop(partial)

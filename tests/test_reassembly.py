@@ -99,6 +99,24 @@ def test_ids_in_flight_never_span_more_than_the_window() -> None:
     assert sorted({f.message_id for f in sender.fill(1000, 2.0)}) == ids[1:5]
 
 
+def test_no_more_messages_in_progress_than_the_receiver_keeps() -> None:
+    # Found by the thorough stateful run: working on more messages than the
+    # receiver keeps half-built made it evict one per opening, and the sender,
+    # resending only what the last acknowledgement lacked, never caught up.
+    sender = Sender(TERMINAL, MASTER, limits=Limits(max_partials_per_source=2))
+    ids = [sender.queue(bytes(100), float(i)) for i in range(5)]
+    assert sorted({f.message_id for f in sender.fill(10_000, 10.0)}) == ids[:2]
+
+
+def test_a_message_being_fed_is_not_evicted_for_a_stale_one() -> None:
+    receiver = Reassembler(Limits(max_partials_per_source=2))
+    receiver.receive(_fragment(1, 0, b"stale"), 0.0)
+    receiver.receive(_fragment(2, 0, b"busy"), 1.0)
+    receiver.receive(_fragment(1, 5, b"fed again"), 2.0)  # 1 is now the most recently fed
+    receiver.receive(_fragment(3, 0, b"new"), 3.0)  # evicts 2, not 1
+    assert receiver.held(SOURCE, 1) == ((0, 14),) and receiver.held(SOURCE, 2) == ()
+
+
 def test_all_bytes_held_but_no_verdict_solicits_one() -> None:
     sender = Sender(TERMINAL, MASTER)
     wire_id = sender.queue(b"abc", 0.0)  # sealed: 7 bytes
