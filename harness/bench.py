@@ -78,6 +78,25 @@ SAMPLES: dict[str, tuple[Frame, str, int]] = {
 }
 
 
+def _codec_paths(
+    frame: Frame,
+    wire: bytes,
+    unpack: Callable[[bytes], object],
+    pack: Callable[[tuple[Any, ...], bytes], bytes],
+    values: tuple[Any, ...],
+    rest: bytes,
+) -> dict[str, Callable[[], object]]:
+    """The paths timed for one frame type, each a call with no arguments."""
+    return {
+        "decode_fps": lambda: decode(wire),
+        "baseline_decode_fps": lambda: unpack(wire),
+        "encode_fps": lambda: encode(frame),
+        "baseline_encode_fps": lambda: pack(values, rest),
+        "construct_decode_fps": lambda: decode_with_construct(wire),
+        "construct_encode_fps": lambda: encode_with_construct(frame),
+    }
+
+
 def codec_benchmark(seconds: float = 0.6, progress: Callable[[str], None] | None = None) -> dict[str, Any]:
     """Frames per second of every codec path, with struct baselines and ratios."""
     results: dict[str, Any] = {}
@@ -89,19 +108,7 @@ def codec_benchmark(seconds: float = 0.6, progress: Callable[[str], None] | None
         values = unpack(wire)[0]  # type: ignore[index]
         rest = wire[struct.calcsize(fmt) : struct.calcsize(fmt) + tail]
         row: dict[str, Any] = {"frame_bytes": len(wire)}
-        row.update(
-            _rates(
-                {
-                    "decode_fps": lambda: decode(wire),
-                    "baseline_decode_fps": lambda: unpack(wire),
-                    "encode_fps": lambda: encode(frame),
-                    "baseline_encode_fps": lambda: pack(values, rest),
-                    "construct_decode_fps": lambda: decode_with_construct(wire),
-                    "construct_encode_fps": lambda: encode_with_construct(frame),
-                },
-                seconds,
-            )
-        )
+        row.update(_rates(_codec_paths(frame, wire, unpack, pack, values, rest), seconds))
         row["path"] = "struct fast path" if isinstance(frame, (Fragment, Probe, Ack)) else "construct"
         row["ratio_to_baseline"] = row["baseline_decode_fps"] / row["decode_fps"]
         row["encode_ratio_to_baseline"] = row["baseline_encode_fps"] / row["encode_fps"]

@@ -163,9 +163,9 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
     def _acknowledge(self, frame: bytes) -> None:
         ack = decode(frame)
         assert isinstance(ack, Ack)
-        for event in self.sender.on_ack(ack.ack, self.now):
-            order = self.order_of_id.pop(event.message_id)
-            if isinstance(event, MessageRefused):
+        for outcome in self.sender.on_ack(ack.ack, self.now):
+            order = self.order_of_id.pop(outcome.message_id)
+            if isinstance(outcome, MessageRefused):
                 self.refused.add(order)
 
     # --- invariants ------------------------------------------------------------------

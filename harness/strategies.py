@@ -9,9 +9,7 @@ from hypothesis import strategies as st
 
 from harness.faults import FaultSchedule
 from terminal.fragmentation import Priority
-from terminal.limits import DEFAULT_LIMITS
-
-from terminal.limits import MAX_ACK_RANGES, MAX_COMMAND_BYTES, MAX_FRAGMENT_PAYLOAD, MAX_MESSAGE_STREAM
+from terminal.limits import DEFAULT_LIMITS, MAX_ACK_RANGES, MAX_COMMAND_BYTES, MAX_FRAGMENT_PAYLOAD, MAX_MESSAGE_STREAM
 from terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus
 
 u8 = st.integers(0, 0xFF)

@@ -12,6 +12,7 @@ from __future__ import annotations
 import ast
 import dataclasses
 import inspect
+import itertools
 import re
 
 import construct as cs
@@ -31,7 +32,7 @@ SECTIONS: dict[str, cs.Construct] = {
 }
 
 _BLOCK_NAMES = {id(formats.ACK_BLOCK): "ack block", id(formats.COMMAND_BLOCK): "command block"}
-_MARK = re.compile(r"(<!-- generated: ([a-z-]+) -->\n).*?(<!-- end generated -->)", re.S)
+_MARK = re.compile(r"(<!-- generated: ([a-z-]+) -->\n).*?(<!-- end generated -->)", re.DOTALL)
 
 
 def _unwrap(con: cs.Construct) -> tuple[cs.Construct, str]:
@@ -94,7 +95,7 @@ def limits_table() -> str:
     tree = ast.parse(inspect.getsource(limits.Limits))
     body = tree.body[0].body  # type: ignore[attr-defined]
     reasons: dict[str, str] = {}
-    for node, after in zip(body, body[1:]):
+    for node, after in itertools.pairwise(body):
         if isinstance(node, ast.AnnAssign) and isinstance(after, ast.Expr) and isinstance(after.value, ast.Constant):
             reasons[node.target.id] = " ".join(str(after.value.value).split())  # type: ignore[attr-defined]
     lines = ["| limit | default | why |", "| --- | --- | --- |"]

@@ -30,7 +30,7 @@ class Verdict(enum.Enum):
 class CompletedWindow:
     """Completed ids of one source: the highest, and a bitmap behind it."""
 
-    __slots__ = ("size", "top", "bitmap")
+    __slots__ = ("bitmap", "size", "top")
 
     def __init__(self, size: int, top: int | None = None, bitmap: int = 0) -> None:
         self.size = size

@@ -16,7 +16,7 @@ ByteRange = tuple[int, int]
 class RangeSet:
     """Disjoint, non-adjacent, ascending half-open ranges."""
 
-    __slots__ = ("_starts", "_ends")
+    __slots__ = ("_ends", "_starts")
 
     def __init__(self, ranges: Iterable[ByteRange] = ()) -> None:
         self._starts: list[int] = []

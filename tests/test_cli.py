@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import json
 import subprocess
 import sys
@@ -9,12 +10,12 @@ import sys
 import pytest
 
 from harness.cli import _demo_capture, main
-from terminal.wire import Fragment, decode, encode, unseal_message
 from terminal.serial_framing import encode_record
+from terminal.wire import Fragment, decode, encode, unseal_message
 
 
 def run(*args: str) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "harness.cli", *args], capture_output=True, text=True, timeout=120)
+    return subprocess.run([sys.executable, "-m", "harness.cli", *args], capture_output=True, text=True, timeout=120, check=False)
 
 
 def test_decode_demo_prints_fields() -> None:
@@ -28,7 +29,7 @@ def test_decode_demo_prints_fields() -> None:
 def test_demo_fragments_reassemble_to_a_sealed_message() -> None:
     frames = [decode(bytes.fromhex(line)) for line in _demo_capture().splitlines() if line and not line.startswith("#")]
     pieces = sorted((f for f in frames if isinstance(f, Fragment)), key=lambda f: f.offset)
-    assert pieces[-1].final and all(a.end == b.offset for a, b in zip(pieces, pieces[1:]))
+    assert pieces[-1].final and all(a.end == b.offset for a, b in itertools.pairwise(pieces))
     assert unseal_message(b"".join(p.payload for p in pieces)).startswith(b"HC1 ")
 
 

@@ -20,8 +20,7 @@ from harness.fuzz import hostile_inputs
 from terminal.crc import crc16
 from terminal.errors import DecodeError
 from terminal.limits import MAX_FRAME_BYTES
-from terminal.wire import Ack, AckBlock, CommandBlock, Fragment, Probe
-from terminal.wire import fastpath
+from terminal.wire import Ack, AckBlock, CommandBlock, Fragment, Probe, fastpath
 from terminal.wire.codec import decode_with_construct, encode_with_construct
 
 PATHS: dict[str, tuple[Any, Callable[[Any], bytes], Callable[[bytes], Any], int]] = {

@@ -6,12 +6,11 @@ import pytest
 from hypothesis import given
 
 from harness import strategies
-from terminal.errors import BadField, BadLength, TruncatedFrame, UsageError
-from terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MAX_FRAME_BYTES, MAX_MESSAGE_STREAM
 from terminal.crc import crc16
+from terminal.errors import BadField, BadLength, MessageCrcMismatch, TruncatedFrame, UsageError
+from terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MAX_FRAME_BYTES, MAX_MESSAGE_STREAM
 from terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus, decode, encode
 from terminal.wire.codec import decode_with_construct, encode_with_construct, seal_message, unseal_message
-from terminal.errors import MessageCrcMismatch
 
 
 def _with_crc(body: bytes) -> bytes:

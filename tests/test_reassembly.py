@@ -88,7 +88,7 @@ def test_alarms_go_first_then_oldest() -> None:
     alarm = sender.queue(b"flood", 10.0, Priority.ALARM)
     order = [f.message_id for f in sender.fill(300, 11.0)]
     assert order == [alarm, routine_old, routine_new]
-    assert [f.urgent for f in sender.fill(300, 12.0)][0] is True
+    assert sender.fill(300, 12.0)[0].urgent is True
 
 
 def test_ids_in_flight_never_span_more_than_the_window() -> None:

@@ -13,7 +13,7 @@ from typing import Any
 
 from construct import ChecksumError, ConstructError, Container, StreamError
 
-from terminal.crc import crc16, crc32c
+from terminal.crc import crc32c
 from terminal.errors import (
     BadField,
     BadLength,
@@ -28,11 +28,9 @@ from terminal.errors import (
 )
 from terminal.limits import (
     FORMAT_VERSION,
-    FRAME_CRC_BYTES,
     MAX_FRAME_BYTES,
     MAX_MESSAGE_STREAM,
     MESSAGE_CRC_BYTES,
-    MIN_FRAME_BYTES,
 )
 from terminal.wire import fastpath
 from terminal.wire.formats import FRAME_FORMATS, FrameType, LeftoverBytes
@@ -82,13 +80,7 @@ _FAST_ENCODERS: dict[type, Callable[[Any], bytes]] = {
 def decode_with_construct(data: bytes | bytearray | memoryview) -> Frame:
     """Decode any frame through its construct declaration (the reference path)."""
     raw = _as_bytes(data)
-    size = len(raw)
-    if size > MAX_FRAME_BYTES:
-        raise FrameTooLong(f"frame of {size} bytes exceeds the {MAX_FRAME_BYTES}-byte maximum")
-    if size < MIN_FRAME_BYTES:
-        raise TruncatedFrame(f"{size} bytes cannot hold a type byte and a CRC")
-    if crc16(raw[:-FRAME_CRC_BYTES]) != int.from_bytes(raw[-FRAME_CRC_BYTES:], "big"):
-        raise CrcMismatch("frame CRC-16 does not match: corrupted on the air or misframed")
+    size = fastpath.check_envelope(raw)  # size bounds, then CRC
     version, type_code = raw[0] >> 4, raw[0] & 0x0F
     if version != FORMAT_VERSION:
         raise UnsupportedVersion(f"format version {version}; this decoder reads version {FORMAT_VERSION}")

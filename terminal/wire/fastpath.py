@@ -45,6 +45,11 @@ _new = tuple.__new__
 assert _HEADER.size == FRAGMENT_HEADER_BYTES
 
 
+def _close(body: bytes) -> bytes:
+    """The frame: its fields, then their CRC-16."""
+    return body + _CRC.pack(crc16(body))
+
+
 def encode_fragment(fragment: Fragment) -> bytes:
     """Bytes on the air for ``fragment`` (already validated by its constructor)."""
     position = fragment.offset
@@ -54,15 +59,15 @@ def encode_fragment(fragment: Fragment) -> bytes:
         position |= _URGENT
     if fragment.downlink:
         position |= _DOWNLINK
-    body = _HEADER.pack(HEAD_BYTE, fragment.terminal, fragment.master, fragment.message_id, position) + fragment.payload
-    return body + _CRC.pack(crc16(body))
+    return _close(_HEADER.pack(HEAD_BYTE, fragment.terminal, fragment.master, fragment.message_id, position) + fragment.payload)
 
 
 def decode_fragment(data: bytes) -> Fragment:
     """Decode untrusted bytes whose first byte is :data:`HEAD_BYTE`.
 
     Checks run in the same order as the generic decoder (size, CRC, fields)
-    so that both give the same error for the same input.
+    so that both give the same error for the same input; the envelope checks
+    of :func:`check_envelope` are written out here to save a call per frame.
     """
     size = len(data)
     if size > MAX_FRAME_BYTES:
@@ -115,7 +120,7 @@ _STATUS_COMPLETE, _STATUS_DOWNLINK, _STATUS_REFUSED, _STATUS_RESERVED = 0x80, 0x
 _FLAG_POLL, _FLAG_ACK, _FLAG_COMMAND, _FLAG_RESERVED = 0x80, 0x40, 0x20, 0x1F
 
 
-def _check_envelope(data: bytes) -> int:
+def check_envelope(data: bytes) -> int:
     """Size and CRC checks shared by every frame; returns the size."""
     size = len(data)
     if size > MAX_FRAME_BYTES:
@@ -176,17 +181,13 @@ def _pack_ack_block(block: AckBlock) -> bytes:
     return _ACK_FIXED.pack(block.terminal, block.message_id, status) + b"".join(_RANGE.pack(s, e) for s, e in block.ranges)
 
 
-def _close(body: bytes) -> bytes:
-    return body + _CRC.pack(crc16(body))
-
-
 def encode_ack(frame: Ack) -> bytes:
     return _close(bytes((ACK_HEAD, frame.master)) + _pack_ack_block(frame.ack))
 
 
 def decode_ack(data: bytes) -> Ack:
     """Decode untrusted bytes whose first byte is :data:`ACK_HEAD`."""
-    size = _check_envelope(data)
+    size = check_envelope(data)
     end = size - FRAME_CRC_BYTES
     if end < 2:
         raise _cut_short("ack", size)
@@ -215,7 +216,7 @@ def encode_probe(frame: Probe) -> bytes:
 
 def decode_probe(data: bytes) -> Probe:
     """Decode untrusted bytes whose first byte is :data:`PROBE_HEAD`."""
-    size = _check_envelope(data)
+    size = check_envelope(data)
     end = size - FRAME_CRC_BYTES
     if end < _PROBE_FIXED.size:
         raise _cut_short("probe", size)

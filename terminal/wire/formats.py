@@ -33,11 +33,11 @@ from construct import (
     Rebuild,
     SizeofError,
     Struct,
+    Subconstruct,
     len_,
     stream_read,
     stream_seek,
     stream_tell,
-    Subconstruct,
     this,
 )
 from construct.core import StreamError
