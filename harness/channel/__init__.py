@@ -1,0 +1,2 @@
+"""The meteor-burst channel model: scenario, geometry, trail physics, noise,
+frame outcomes and the capacity bound."""

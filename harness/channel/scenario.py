@@ -1,0 +1,260 @@
+"""Link scenarios: a TOML file, every field defaulted, validated, overridable.
+
+A scenario names both stations, the radio parameters of each direction, the
+noise environment, the period to simulate and the seed.  Unknown keys are
+errors, not ignored; every error names the key, the value and what was
+expected.  ``--set dotted.key=value`` overrides apply the same validation.
+docs/scenario.md documents the schema (its table is generated from
+:data:`SCHEMA`).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import math
+import tomllib
+from collections.abc import Callable, Iterable
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+
+class ScenarioError(ValueError):
+    """A scenario file or override that cannot be used; the message says why."""
+
+
+ENVIRONMENTS = ("business", "residential", "rural", "quiet_rural")
+MODULATIONS = ("bpsk", "dpsk", "coherent_fsk", "noncoherent_fsk")
+POLARISATIONS = ("horizontal", "vertical")
+
+
+@dataclasses.dataclass(frozen=True)
+class Field:
+    default: Any
+    doc: str
+    check: Callable[[Any], str | None]
+    """Returns what is expected when the value is unacceptable, else None."""
+
+
+def _number(low: float, high: float, unit: str = "") -> Callable[[Any], str | None]:
+    def check(value: Any) -> str | None:
+        ok = isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+        if ok and low <= value <= high:
+            return None
+        return f"a number from {low:g} to {high:g}{(' ' + unit) if unit else ''}"
+
+    return check
+
+
+def _integer(low: int, high: int) -> Callable[[Any], str | None]:
+    def check(value: Any) -> str | None:
+        if isinstance(value, int) and not isinstance(value, bool) and low <= value <= high:
+            return None
+        return f"a whole number from {low} to {high}"
+
+    return check
+
+
+def _choice(options: Iterable[str]) -> Callable[[Any], str | None]:
+    options = tuple(options)
+    return lambda value: None if value in options else f"one of {', '.join(options)}"
+
+
+def _text(value: Any) -> str | None:
+    return None if isinstance(value, str) and 0 < len(value) <= 80 else "a name of 1 to 80 characters"
+
+
+def _flag(value: Any) -> str | None:
+    return None if isinstance(value, bool) else "true or false"
+
+
+def _instant(value: Any) -> str | None:
+    if isinstance(value, dt.datetime) or (isinstance(value, str) and _parse_instant(value) is not None):
+        return None
+    return "a UTC date and time such as 2027-01-15T00:00:00Z"
+
+
+def _parse_instant(value: Any) -> dt.datetime | None:
+    if isinstance(value, dt.datetime):
+        return value if value.tzinfo else value.replace(tzinfo=dt.timezone.utc)
+    try:
+        parsed = dt.datetime.fromisoformat(str(value).replace("Z", "+00:00"))
+    except ValueError:
+        return None
+    return parsed if parsed.tzinfo else parsed.replace(tzinfo=dt.timezone.utc)
+
+
+def _station(name: str, lat: float, lon: float, power: float) -> dict[str, Field]:
+    return {
+        "name": Field(name, "station name", _text),
+        "lat_deg": Field(lat, "latitude, degrees north", _number(-90, 90, "degrees")),
+        "lon_deg": Field(lon, "longitude, degrees east", _number(-180, 180, "degrees")),
+        "height_m": Field(300.0, "antenna height above sea level, m", _number(-100, 6000, "m")),
+        "gain_dbi": Field(7.0, "antenna gain towards the path, dBi (a 3-element Yagi is about 7)", _number(-10, 25, "dBi")),
+        "polarisation": Field("horizontal", "antenna polarisation", _choice(POLARISATIONS)),
+        "tx_power_w": Field(power, "transmitter power into the antenna, W", _number(0.1, 10000, "W")),
+        "noise_figure_db": Field(4.0, "receiver noise figure, dB", _number(0, 20, "dB")),
+        "environment": Field("rural", "man-made noise category of the site (ITU-R P.372)", _choice(ENVIRONMENTS)),
+    }
+
+
+# The demo link: invented stations on an invented 982 km path.
+SCHEMA: dict[str, dict[str, Field]] = {
+    "scenario": {
+        "name": Field("Haldane Creek to Kestrel Ridge (demo)", "scenario name, shown in reports", _text),
+        "start": Field("2027-03-15T00:00:00Z", "start of the simulated period, UTC", _instant),
+        "duration_hours": Field(24.0, "length of the simulated period, hours", _number(0.01, 24 * 366, "hours")),
+        "seed": Field(1, "seed of every random draw; a run replays exactly from it", _integer(0, 2**63 - 1)),
+    },
+    "terminal": _station("Haldane Creek gauge", 61.20, 14.10, 300.0),
+    "master": _station("Kestrel Ridge master", 55.60, 27.20, 500.0),
+    "link": {
+        "up_mhz": Field(40.52, "terminal-to-master carrier frequency, MHz", _number(20, 200, "MHz")),
+        "down_mhz": Field(41.61, "master-to-terminal carrier frequency, MHz", _number(20, 200, "MHz")),
+        "modulation": Field("bpsk", "modulation, for the bit-error formula", _choice(MODULATIONS)),
+        "bit_rate": Field(4800.0, "bit rate on the air, bit/s", _number(100, 1e6, "bit/s")),
+        "threshold_ber": Field(1e-5, "bit-error rate at which the path counts as open", _number(1e-9, 0.1)),
+        "oscillator_ppm": Field(2.0, "oscillator offset between the stations, parts per million", _number(0, 100, "ppm")),
+    },
+    "channel": {
+        "reflection_height_km": Field(95.0, "mean height of the reflecting trails, km", _number(80, 115, "km")),
+        "mass_index": Field(2.0, "mass index s of sporadic meteors (ITU-R P.843: about 2)", _number(1.5, 3.0)),
+        "sporadic_scale": Field(1.0, "multiplier on the sporadic rate (site and year variation)", _number(0.01, 100)),
+        "showers": Field(True, "include the major annual showers", _flag),
+        "sporadic_e": Field(False, "include summer sporadic-E openings", _flag),
+    },
+}
+
+
+@dataclasses.dataclass(frozen=True)
+class Station:
+    name: str
+    lat_deg: float
+    lon_deg: float
+    height_m: float
+    gain_dbi: float
+    polarisation: str
+    tx_power_w: float
+    noise_figure_db: float
+    environment: str
+
+
+@dataclasses.dataclass(frozen=True)
+class Scenario:
+    """A validated link scenario."""
+
+    name: str
+    start: dt.datetime
+    duration_hours: float
+    seed: int
+    terminal: Station
+    master: Station
+    up_mhz: float
+    down_mhz: float
+    modulation: str
+    bit_rate: float
+    threshold_ber: float
+    oscillator_ppm: float
+    reflection_height_km: float
+    mass_index: float
+    sporadic_scale: float
+    showers: bool
+    sporadic_e: bool
+    source: str = "built-in demo"
+
+    @property
+    def duration_s(self) -> float:
+        return self.duration_hours * 3600.0
+
+
+def _merge(values: dict[str, Any], origin: str) -> dict[str, dict[str, Any]]:
+    """Defaults overlaid with ``values``, refusing unknown keys and bad values."""
+    merged = {section: {k: f.default for k, f in fields.items()} for section, fields in SCHEMA.items()}
+    for section, table in values.items():
+        if section not in SCHEMA:
+            raise ScenarioError(f"{origin}: unknown section [{section}]; expected one of {', '.join(SCHEMA)}")
+        if not isinstance(table, dict):
+            raise ScenarioError(f"{origin}: [{section}] must be a table of keys")
+        for key, value in table.items():
+            _check(section, key, value, origin)
+            merged[section][key] = value
+    return merged
+
+
+def _check(section: str, key: str, value: Any, origin: str) -> None:
+    fields = SCHEMA[section]
+    if key not in fields:
+        raise ScenarioError(f"{origin}: unknown key {section}.{key}; [{section}] takes {', '.join(fields)}")
+    expected = fields[key].check(value)
+    if expected is not None:
+        raise ScenarioError(f"{origin}: {section}.{key} = {value!r} is not usable; expected {expected}")
+
+
+def parse_override(text: str) -> tuple[str, str, Any]:
+    """``section.key=value`` from the command line; the value is read as TOML,
+    or taken as text when it is not valid TOML (so names need no quotes)."""
+    if "=" not in text or "." not in text.split("=", 1)[0]:
+        raise ScenarioError(f"--set {text!r}: expected section.key=value, e.g. link.bit_rate=9600")
+    path, raw = text.split("=", 1)
+    section, key = path.strip().split(".", 1)
+    try:
+        value = tomllib.loads(f"v = {raw.strip()}")["v"]
+    except tomllib.TOMLDecodeError:
+        value = raw.strip()
+    if section in SCHEMA and key in SCHEMA[section]:
+        wanted = SCHEMA[section][key].default
+        if isinstance(wanted, float) and isinstance(value, int) and not isinstance(value, bool):
+            value = float(value)
+    return section, key, value
+
+
+def load(path: str | Path | None = None, overrides: Iterable[str] = ()) -> Scenario:
+    """The scenario in ``path`` (the built-in demo when None), with overrides."""
+    if path is None:
+        text, origin = resources.files("harness").joinpath("demo/link.toml").read_text(encoding="utf-8"), "built-in demo"
+    else:
+        origin = str(path)
+        try:
+            text = Path(path).read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as exc:
+            raise ScenarioError(f"{origin}: cannot read: {getattr(exc, 'strerror', None) or exc}") from None
+    try:
+        values = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ScenarioError(f"{origin}: not valid TOML: {exc}") from None
+    merged = _merge(values, origin)
+    for text_override in overrides:
+        section, key, value = parse_override(text_override)
+        if section not in SCHEMA:
+            raise ScenarioError(f"--set {text_override}: unknown section [{section}]; expected one of {', '.join(SCHEMA)}")
+        _check(section, key, value, f"--set {text_override}")
+        merged[section][key] = value
+    return _build(merged, origin)
+
+
+def _build(m: dict[str, dict[str, Any]], origin: str) -> Scenario:
+    start = _parse_instant(m["scenario"]["start"])
+    assert start is not None
+    stations = {name: Station(**{k: m[name][k] for k in SCHEMA[name]}) for name in ("terminal", "master")}
+    return Scenario(
+        name=m["scenario"]["name"],
+        start=start.astimezone(dt.timezone.utc),
+        duration_hours=float(m["scenario"]["duration_hours"]),
+        seed=int(m["scenario"]["seed"]),
+        terminal=stations["terminal"],
+        master=stations["master"],
+        source=origin,
+        **{k: m["link"][k] for k in SCHEMA["link"]},
+        **{k: m["channel"][k] for k in SCHEMA["channel"]},
+    )
+
+
+def schema_table() -> str:
+    """Markdown table of every key, its default and meaning (for docs/scenario.md)."""
+    lines = ["| key | default | meaning |", "| --- | --- | --- |"]
+    for section, fields in SCHEMA.items():
+        for key, f in fields.items():
+            default = f"`{f.default!r}`" if not isinstance(f.default, bool) else f"`{str(f.default).lower()}`"
+            lines.append(f"| `{section}.{key}` | {default} | {f.doc} |")
+    return "\n".join(lines) + "\n"
