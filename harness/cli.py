@@ -213,6 +213,114 @@ def cmd_docs(args: argparse.Namespace) -> int:
     return 1 if stale else 0
 
 
+# --- channel -----------------------------------------------------------------------
+
+
+def _scenario(args: argparse.Namespace) -> Any:
+    from harness.channel import scenario
+
+    overrides = list(args.set or [])
+    if getattr(args, "days", None) is not None:
+        overrides.append(f"scenario.duration_hours={args.days * 24}")
+    if getattr(args, "hours", None) is not None:
+        overrides.append(f"scenario.duration_hours={args.hours}")
+    if getattr(args, "seed", None) is not None:
+        overrides.append(f"scenario.seed={args.seed}")
+    try:
+        return scenario.load(args.scenario, overrides)
+    except scenario.ScenarioError as exc:
+        raise UserError(str(exc)) from None
+
+
+def _progress(label: str) -> Any:
+    if not sys.stderr.isatty():
+        return None
+
+    def show(fraction: float) -> None:
+        bar = "#" * int(30 * fraction)
+        print(f"\r{label} [{bar:<30}] {100 * fraction:5.1f}%", end="" if fraction < 1 else "\n", file=sys.stderr, flush=True)
+
+    return show
+
+
+def cmd_channel(args: argparse.Namespace) -> int:
+    from harness.channel import forecast as fc
+    from harness.channel.geometry import SHORT_PATH_KM, PathError
+    from harness.channel.model import TrailSet
+
+    scenario = _scenario(args)
+    try:
+        trails = TrailSet(scenario, keep="all" if args.trails else "usable", progress=_progress("generating trails"))
+    except PathError as exc:
+        raise UserError(str(exc)) from None
+    if trails.geometry.distance_km < SHORT_PATH_KM:
+        print(
+            f"warning: a {trails.geometry.distance_km:.0f} km path is short for meteor burst; "
+            "expect few usable trails with ordinary antennas",
+            file=sys.stderr,
+        )
+    report = fc.forecast(trails)
+    if args.by_month:
+        report["monthly"] = fc.monthly(trails)
+    if args.trails:
+        try:
+            with open(args.trails, "w", encoding="utf-8") as out:
+                count = fc.write_trails(trails, out)
+        except OSError as exc:
+            raise UserError(f"cannot write {args.trails}: {exc.strerror}") from None
+        print(f"wrote {count} trails to {args.trails}", file=sys.stderr)
+    if args.plot:
+        from harness.channel.plot import plot_forecast
+
+        plot_forecast(report, Path(args.plot))
+        print(f"wrote {args.plot}", file=sys.stderr)
+    print(json.dumps(report, indent=2) if args.json else _forecast_table(report))
+    return 0
+
+
+def _forecast_table(report: dict[str, Any]) -> str:
+    g = report["geometry"]
+    lines = [
+        f"{report['scenario']}  (seed {report['seed']}, {report['period']['hours']:g} h from {report['period']['start']})",
+        f"path {g['distance_km']:.0f} km, forward-scatter half-angle {g['half_angle_deg']:.1f} deg, "
+        f"elevation {g['elevation_deg']:.1f} deg at {g['reflection_height_km']:g} km",
+        f"trails drawn {report['trails']['generated']}, open both ways {report['trails']['usable']}; "
+        f"100-byte message takes {report['link']['message_airtime_s'] * 1000:.0f} ms on the air",
+        "",
+        f"{'UTC':>3} {'bursts/h':>9} {'mean s':>7} {'median s':>8} {'duty':>6} {'kbit/h':>8} {'wait 100 B':>10}",
+    ]
+    for r in report["hourly"]:
+        wait = f"{r['wait_100B_s']:.0f} s" if r["wait_100B_s"] is not None else "-"
+        lines.append(
+            f"{r['hour']:>3} {r['bursts_per_hour']:>9.1f} {r['mean_open_s']:>7.2f} {r['median_open_s']:>8.2f} "
+            f"{100 * r['duty_cycle']:>5.1f}% {r['capacity_bits_per_hour'] / 1000:>8.0f} {wait:>10}"
+        )
+    if "totals" in report:
+        t = report["totals"]
+        lines.append(
+            f"all {t['bursts_per_hour']:>9.1f} {'':>7} {'':>8} {100 * t['duty_cycle']:>5.1f}% {t['capacity_bits_per_hour'] / 1000:>8.0f}"
+        )
+    for m in report.get("monthly", []):
+        lines.append(f"{m['month']}: {m['bursts_per_hour']:.1f} bursts/h, duty {100 * m['duty_cycle']:.1f}%, {m['capacity_bits_per_hour'] / 1000:.0f} kbit/h")
+    lines.append("")
+    lines.append("bursts: trails open in both directions; capacity: uplink bits a genie could move at the link rate.")
+    return "\n".join(lines)
+
+
+def _add_scenario_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--scenario", metavar="FILE", help="scenario file (TOML); default: the built-in demo link")
+    p.add_argument(
+        "--set",
+        action="append",
+        metavar="KEY=VALUE",
+        help="override a scenario value, e.g. --set link.bit_rate=9600 --set terminal.tx_power_w=250 (repeatable)",
+    )
+    p.add_argument("--seed", type=int, help="seed (overrides scenario.seed)")
+    period = p.add_mutually_exclusive_group()
+    period.add_argument("--hours", type=float, help="length of the period, hours")
+    period.add_argument("--days", type=float, help="length of the period, days")
+
+
 # --- parser ------------------------------------------------------------------------
 
 
@@ -262,6 +370,26 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the figures as JSON")
     p.add_argument("--seconds", type=float, default=0.6, help="time per measurement (default 0.6)")
     p.set_defaults(handler=cmd_bench)
+
+    p = commands.add_parser(
+        "channel",
+        help="forecast a meteor-burst link: geometry, bursts, duty cycle, capacity by hour",
+        description=(
+            "Generate the trails of a link scenario from published meteor physics and print\n"
+            "the link's geometry and, for each hour of the day (UTC): usable bursts per hour\n"
+            "(open in both directions), mean and median open time, duty cycle, the capacity\n"
+            "bound (uplink bits a genie could move at the link rate) and the expected wait to\n"
+            "deliver a 100-byte message.  Every figure replays exactly from the seed."
+        ),
+        epilog=SAFETY,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    _add_scenario_options(p)
+    p.add_argument("--json", action="store_true", help="print the forecast as JSON")
+    p.add_argument("--plot", metavar="FILE.png", help="draw the hourly figures to a PNG file")
+    p.add_argument("--trails", metavar="FILE.jsonl", help="also write every generated trail, one JSON object a line")
+    p.add_argument("--by-month", action="store_true", help="add a row per calendar month of the period")
+    p.set_defaults(handler=cmd_channel)
 
     p = commands.add_parser(
         "docs",
