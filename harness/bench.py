@@ -209,3 +209,45 @@ def format_reassembly(report: dict[str, Any]) -> str:
     )
     lines.append(f"one core, python {report['python']}; every fragment is encoded and decoded on the way.")
     return "\n".join(lines)
+
+
+# --- channel ------------------------------------------------------------------------
+
+
+def channel_benchmark(days: float = 366.0, progress: Callable[[str], None] | None = None) -> dict[str, Any]:
+    """Seconds to generate a year (by default) of trails for the demo link on one core,
+    and, in the same run, one day, to show that the cost is linear in the period."""
+    from harness.channel import scenario
+    from harness.channel.model import TrailSet
+
+    def timed(hours: float) -> tuple[float, TrailSet]:
+        start = time.perf_counter()
+        trails = TrailSet(scenario.load(None, [f"scenario.duration_hours={hours}", "scenario.start=2027-01-01T00:00:00Z"]))
+        return time.perf_counter() - start, trails
+
+    if progress:
+        progress("one day")
+    day_s, _ = min((timed(24.0) for _ in range(3)), key=lambda r: r[0])
+    if progress:
+        progress(f"{days:g} days")
+    period_s, trails = timed(days * 24.0)
+    return {
+        "python": platform.python_version(),
+        "days": days,
+        "seconds": period_s,
+        "trails_generated": trails.generated,
+        "trails_usable": len(trails.trails) if trails.trails is not None else 0,
+        "trails_per_second": trails.generated / period_s,
+        "day_seconds": day_s,
+        "period_to_day_ratio": period_s / day_s,
+    }
+
+
+def format_channel(report: dict[str, Any]) -> str:
+    return (
+        f"{report['days']:g} days of demo-link trails: {report['seconds']:.2f} s on one core, "
+        f"{report['trails_generated']:,} trails drawn ({report['trails_per_second']:,.0f}/s), "
+        f"{report['trails_usable']:,} open in a direction\n"
+        f"one day: {report['day_seconds'] * 1000:.0f} ms; the period costs {report['period_to_day_ratio']:.0f} days' worth "
+        f"(python {report['python']})"
+    )

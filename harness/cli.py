@@ -180,9 +180,12 @@ def cmd_bench(args: argparse.Namespace) -> int:
     if args.what == "codec":
         report = bench.codec_benchmark(seconds=args.seconds, progress=progress)
         text = bench.format_codec(report)
-    else:
+    elif args.what == "reassembly":
         report = bench.reassembly_benchmark(seconds=args.seconds, progress=progress)
         text = bench.format_reassembly(report)
+    else:
+        report = bench.channel_benchmark(progress=progress)
+        text = bench.format_channel(report)
     print(json.dumps(report, indent=2) if args.json else text)
     return 0
 
@@ -190,7 +193,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
 # --- docs --------------------------------------------------------------------------
 
 
-DOCUMENTS = ("docs/wire.md", "docs/delivery.md")
+DOCUMENTS = ("docs/wire.md", "docs/delivery.md", "docs/scenario.md")
 
 
 def cmd_docs(args: argparse.Namespace) -> int:
@@ -362,11 +365,12 @@ def build_parser() -> argparse.ArgumentParser:
             "          bare struct pack/unpack of the same field layout; ratio = how many\n"
             "          times slower than the baseline.\n"
             "  reassembly  fragments per second through sender and receiver (with encode and\n"
-            "          decode) and framing efficiency, for 16-256 byte fragment payloads."
+            "          decode) and framing efficiency, for 16-256 byte fragment payloads.\n"
+            "  channel seconds to generate a year of trails for the demo link (and one day)."
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("what", choices=["codec", "reassembly"], help="which benchmark")
+    p.add_argument("what", choices=["codec", "reassembly", "channel"], help="which benchmark")
     p.add_argument("--json", action="store_true", help="print the figures as JSON")
     p.add_argument("--seconds", type=float, default=0.6, help="time per measurement (default 0.6)")
     p.set_defaults(handler=cmd_bench)
@@ -396,11 +400,12 @@ def build_parser() -> argparse.ArgumentParser:
         help="regenerate the generated tables in docs/",
         description=(
             "Rewrite the generated tables of docs/wire.md (frame layouts, from the format\n"
-            "declarations) and docs/delivery.md (link limits, from terminal/limits.py)."
+            "declarations), docs/delivery.md (link limits, from terminal/limits.py) and\n"
+            "docs/scenario.md (scenario keys, from harness/channel/scenario.py)."
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--path", action="append", help="a document to refresh (repeatable; default: both)")
+    p.add_argument("--path", action="append", help="a document to refresh (repeatable; default: all three)")
     p.add_argument("--check", action="store_true", help="only report whether the document is stale (exit 1 if so)")
     p.set_defaults(handler=cmd_docs)
     return parser

@@ -104,7 +104,16 @@ def limits_table() -> str:
     return "\n".join(lines) + "\n"
 
 
-GENERATORS = {name: (lambda con=con: table(con)) for name, con in SECTIONS.items()} | {"limits": limits_table}
+def _scenario_table() -> str:
+    from harness.channel.scenario import schema_table
+
+    return schema_table()
+
+
+GENERATORS = {name: (lambda con=con: table(con)) for name, con in SECTIONS.items()} | {
+    "limits": limits_table,
+    "scenario": _scenario_table,
+}
 
 
 def render(text: str) -> str:

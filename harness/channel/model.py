@@ -32,6 +32,12 @@ from harness.channel.scenario import Scenario, Station
 
 Array = NDArray[np.float64]
 
+
+def _norm(v: Array) -> Array:
+    """Row lengths of an (n, 3) array (faster than numpy.linalg.norm here)."""
+    return np.sqrt(np.einsum("ij,ij->i", v, v))
+
+
 FLUX_AT_1E14 = 160.0 / 1e14
 """Cumulative flux of sporadic meteors with q > 1e14 e/m, per m^2 per s, annual
 mean (ITU-R P.843: I(q > q0) = 160 / q0); other mass indices scale from it."""
@@ -192,12 +198,12 @@ class TrailSet:
     def _scatter_geometry(self, points: Array, axis: Array) -> dict[str, Array]:
         to_t = self.pos["terminal"] - points
         to_m = self.pos["master"] - points
-        r1 = np.linalg.norm(to_t, axis=1)
-        r2 = np.linalg.norm(to_m, axis=1)
+        r1 = _norm(to_t)
+        r2 = _norm(to_m)
         cos_2phi = np.einsum("ij,ij->i", to_t, to_m) / (r1 * r2)
         phi = 0.5 * np.arccos(np.clip(cos_2phi, -1.0, 1.0))
         normal = np.cross(to_t, to_m)
-        normal /= np.linalg.norm(normal, axis=1, keepdims=True)
+        normal /= _norm(normal)[:, None]
         sin_beta = np.einsum("ij,ij->i", axis, normal)
         out = {
             "r1": r1,
@@ -206,21 +212,19 @@ class TrailSet:
             "sec2_phi": 1.0 / np.cos(phi) ** 2,
             "cos2_beta": 1.0 - sin_beta**2,
         }
-        for name, tx, to_rx in (("up", "terminal", to_m), ("down", "master", to_t)):
-            out[f"sin2_alpha_{name}"] = self._sin2_alpha(tx, points, to_rx)
+        out["sin2_alpha_up"] = self._sin2_alpha("terminal", -to_t / r1[:, None], to_m / r2[:, None])
+        out["sin2_alpha_down"] = self._sin2_alpha("master", -to_m / r2[:, None], to_t / r1[:, None])
         return out
 
-    def _sin2_alpha(self, tx: str, points: Array, to_rx: Array) -> Array:
-        """sin^2 of the angle between the incident E-field and the direction to the receiver."""
+    def _sin2_alpha(self, tx: str, ray: Array, to_rx: Array) -> Array:
+        """sin^2 of the angle between the incident E-field and the direction to the
+        receiver; ``ray`` and ``to_rx`` are unit vectors (transmitter to trail, trail to receiver)."""
         station = self.directions["up" if tx == "terminal" else "down"].tx
-        ray = points - self.pos[tx]
-        ray /= np.linalg.norm(ray, axis=1, keepdims=True)
         vertical = self.pos[tx] / np.linalg.norm(self.pos[tx])
         horizontal = np.cross(vertical, ray)
-        horizontal /= np.linalg.norm(horizontal, axis=1, keepdims=True)
+        horizontal /= _norm(horizontal)[:, None]
         e_field = horizontal if station.polarisation == "horizontal" else np.cross(ray, horizontal)
-        out = to_rx / np.linalg.norm(to_rx, axis=1, keepdims=True)
-        cos_alpha = np.einsum("ij,ij->i", e_field, out)
+        cos_alpha = np.einsum("ij,ij->i", e_field, to_rx)
         return 1.0 - cos_alpha**2
 
     # --- physics -----------------------------------------------------------------------
@@ -274,16 +278,23 @@ class TrailSet:
 
     def _generate(self, start: float, end: float) -> Trails:
         rng = self.rng
-        # Thinning: candidates at a bounding rate, each kept with probability rate/bound.
+        # Thinning: candidates at a bounding rate, each kept with probability
+        # rate / bound.  The bound comes from a 15-minute grid; should a rate
+        # between grid points exceed it, the chunk is drawn again with more room.
         showers_on = self._active_showers(start, end)
         grid = self.start_unix + np.linspace(start, end, 97)
         sporadic, showers = self._rate(grid, showers_on)
-        bound = 1.2 * float(np.max(sporadic + sum(showers) if showers else sporadic))
-        count = rng.poisson(bound * (end - start))
-        t = np.sort(rng.uniform(start, end, count))
-        sporadic, showers = self._rate(self.start_unix + t, showers_on)
-        components = np.vstack([sporadic, *showers]) if showers else sporadic[None, :]
-        total = components.sum(axis=0)
+        headroom = 1.05
+        while True:
+            bound = headroom * float(np.max(sporadic + sum(showers) if showers else sporadic))
+            count = rng.poisson(bound * (end - start))
+            t = np.sort(rng.uniform(start, end, count))
+            rates = self._rate(self.start_unix + t, showers_on)
+            components = np.vstack([rates[0], *rates[1]]) if rates[1] else rates[0][None, :]
+            total = components.sum(axis=0)
+            if not len(total) or float(total.max()) <= bound:
+                break
+            headroom *= 1.5
         keep = rng.random(count) * bound < total
         t, components, total = t[keep], components[:, keep], total[keep]
         n = len(t)
@@ -298,7 +309,7 @@ class TrailSet:
         r0 = physics.initial_radius(height)
         points = self._points(n, height)
         axis = rng.normal(size=(n, 3))
-        axis /= np.linalg.norm(axis, axis=1, keepdims=True)
+        axis /= _norm(axis)[:, None]
         g = self._scatter_geometry(points, axis)
         overdense = q >= physics.TRANSITION_Q
         wind = rng.uniform(*WIND_MS, n) * rng.choice([-1.0, 1.0], n)
@@ -314,7 +325,7 @@ class TrailSet:
             margin = np.log(np.maximum(peak[d.name] / d.ebn0_threshold, 1.0))
             open_s[d.name] = np.where(peak[d.name] > d.ebn0_threshold, hold[d.name] + tau[d.name] * margin, 0.0)
             cos_phi = np.sqrt(1.0 - g["sin2_phi"])
-            doppler[d.name] = 2 * wind * cos_phi / d.lam + self.scenario.oscillator_ppm * 1e-6 * d.mhz * 1e6
+            doppler[d.name] = physics.doppler_hz(wind, cos_phi, d.lam) + self.scenario.oscillator_ppm * d.mhz
         shower_code = np.array([0] + [2 + i for i in showers_on])[source]
         kind = np.where(source > 0, shower_code, overdense.astype(int)).astype(np.int16)
         return Trails(

@@ -81,6 +81,11 @@ def underdense_power(
     )
 
 
+def doppler_hz(wind_ms: ArrayLike, cos_phi: ArrayLike, lam: float) -> Array:
+    """Doppler shift of a trail drifting at ``wind_ms``: f_D = 2 v cos(phi) / lambda."""
+    return 2 * np.asarray(wind_ms) * np.asarray(cos_phi) / lam
+
+
 def galactic_noise_db(mhz: float) -> float:
     """Galactic noise F_am = 52 - 23 log10 f(MHz), dB above kT0 (ITU-R P.372)."""
     return 52.0 - 23.0 * math.log10(mhz)

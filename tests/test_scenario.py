@@ -1,0 +1,109 @@
+"""Scenario files: defaults, overrides and the errors a user sees."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from harness.channel import scenario
+from harness.channel.scenario import ScenarioError
+
+
+def test_builtin_demo_matches_the_schema_defaults() -> None:
+    demo = scenario.load(None)
+    assert demo.terminal.name == "Haldane Creek gauge" and demo.master.name == "Kestrel Ridge master"
+    assert demo.duration_hours == 24.0 and demo.seed == 1
+    assert demo == scenario._build(scenario._merge({}, "defaults"), "built-in demo")
+
+
+def test_every_key_is_optional(tmp_path: Path) -> None:
+    path = tmp_path / "link.toml"
+    path.write_text("[terminal]\nlat_deg = 60.0\n")
+    loaded = scenario.load(path)
+    assert loaded.terminal.lat_deg == 60.0 and loaded.master.lat_deg == scenario.load(None).master.lat_deg
+
+
+@pytest.mark.parametrize(
+    ("text", "message"),
+    [
+        ("[terminal]\nlatitude = 60.0\n", "unknown key terminal.latitude; [terminal] takes name, lat_deg"),
+        ("[radio]\nx = 1\n", "unknown section [radio]"),
+        ("[terminal]\nlat_deg = 95.0\n", "terminal.lat_deg = 95.0 is not usable; expected a number from -90 to 90 degrees"),
+        ("[link]\nmodulation = \"qam\"\n", "expected one of bpsk, dpsk, coherent_fsk, noncoherent_fsk"),
+        ("[terminal]\nlat_deg = \"sixty\"\n", "terminal.lat_deg = 'sixty' is not usable"),
+        ("[scenario]\nstart = \"yesterday\"\n", "expected a UTC date and time"),
+        ("[link\n", "not valid TOML"),
+    ],
+)
+def test_bad_file_gets_one_clear_error(tmp_path: Path, text: str, message: str) -> None:
+    path = tmp_path / "bad.toml"
+    path.write_text(text)
+    with pytest.raises(ScenarioError, match=message.replace("[", r"\[").replace("(", r"\(")) as info:
+        scenario.load(path)
+    assert str(path) in str(info.value)
+
+
+def test_overrides_use_the_same_validation() -> None:
+    assert scenario.load(None, ["link.bit_rate=9600"]).bit_rate == 9600.0
+    assert scenario.load(None, ["terminal.name=Upper Weir"]).terminal.name == "Upper Weir"
+    assert scenario.load(None, ["channel.showers=false"]).showers is False
+    with pytest.raises(ScenarioError, match="--set link.bit_rate=fast: link.bit_rate = 'fast' is not usable"):
+        scenario.load(None, ["link.bit_rate=fast"])
+    with pytest.raises(ScenarioError, match="expected section.key=value"):
+        scenario.load(None, ["bit_rate=9600"])
+    with pytest.raises(ScenarioError, match="unknown key link.rate"):
+        scenario.load(None, ["link.rate=9600"])
+
+
+def test_missing_file_is_named(tmp_path: Path) -> None:
+    with pytest.raises(ScenarioError, match="cannot read"):
+        scenario.load(tmp_path / "absent.toml")
+
+
+def _run(*args: str) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "harness.cli", *args], capture_output=True, text=True, timeout=300, check=False)
+
+
+def test_channel_command_json_keys_and_trails_file(tmp_path: Path) -> None:
+    trails_path = tmp_path / "trails.jsonl"
+    plot_path = tmp_path / "forecast.png"
+    result = _run("channel", "--hours", "6", "--json", "--trails", str(trails_path), "--plot", str(plot_path))
+    assert result.returncode == 0, result.stderr
+    report = json.loads(result.stdout)
+    g = report["geometry"]
+    assert g["endpoints"] == [[61.2, 14.1], [55.6, 27.2]]
+    for key in ("distance_km", "half_angle_deg", "elevation_deg"):
+        assert g[key] > 0
+    assert len(report["hourly"]) == 6
+    for row in report["hourly"]:
+        assert set(row) >= {"hour", "bursts_per_hour", "mean_open_s", "duty_cycle", "capacity_bits_per_hour", "wait_100B_s"}
+    records = [json.loads(line) for line in trails_path.read_text().splitlines()]
+    assert len(records) == report["trails"]["generated"]
+    first = records[0]
+    assert set(first) == {"t_s", "kind", "height_km", "q", "up", "down"}
+    assert set(first["up"]) == {"peak_snr_db", "tau_s", "open_s", "doppler_hz"}
+    # The forecast is computed from the same trails the file holds.
+    both = sum(1 for r in records if min(r["up"]["open_s"], r["down"]["open_s"]) > 0)
+    assert both == report["trails"]["usable"]
+    assert sum(row["bursts_per_hour"] for row in report["hourly"]) == pytest.approx(both)
+    assert plot_path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_channel_command_refuses_a_bad_override_in_one_line() -> None:
+    result = _run("channel", "--set", "terminal.lat_deg=95")
+    assert result.returncode == 2
+    assert result.stderr.strip().count("\n") == 0 and "expected a number from -90 to 90" in result.stderr
+
+
+def test_channel_command_refuses_a_path_beyond_one_hop() -> None:
+    result = _run("channel", "--set", "master.lat_deg=30.0", "--set", "master.lon_deg=40.0")
+    assert result.returncode == 2 and "single-hop limit" in result.stderr
+
+
+def test_short_path_warns_but_runs() -> None:
+    result = _run("channel", "--hours", "1", "--set", "master.lat_deg=60.0", "--set", "master.lon_deg=18.0")
+    assert result.returncode == 0 and "warning" in result.stderr
