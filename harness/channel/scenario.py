@@ -122,7 +122,6 @@ SCHEMA: dict[str, dict[str, Field]] = {
         "mass_index": Field(2.0, "mass index s of sporadic meteors (ITU-R P.843: about 2)", _number(1.5, 3.0)),
         "sporadic_scale": Field(1.0, "multiplier on the sporadic rate (site and year variation)", _number(0.01, 100)),
         "showers": Field(True, "include the major annual showers", _flag),
-        "sporadic_e": Field(False, "include summer sporadic-E openings", _flag),
     },
 }
 
@@ -160,7 +159,6 @@ class Scenario:
     mass_index: float
     sporadic_scale: float
     showers: bool
-    sporadic_e: bool
     source: str = "built-in demo"
 
     @property
