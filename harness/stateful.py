@@ -214,7 +214,7 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
         assert not self.sender.pending, (
             "a fair channel did not deliver every message: "
             f"sender {self.sender.counters}, receiver {self.receiver.counters}, "
-            f"pending {[(m.wire_id, len(m.sealed), m.acked, m.sent) for m in self.sender._queue.values()]}, "
+            f"pending {self.sender.outstanding()}, "
             f"partials {[(k, self.receiver.held(*k)) for k in self.receiver.partials()]}"
         )
         assert not self.refused, f"messages refused on a fair channel: {sorted(self.refused)}"

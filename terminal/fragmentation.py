@@ -131,6 +131,11 @@ class Sender:
         """Messages queued and not yet acknowledged or refused."""
         return len(self._queue)
 
+    def outstanding(self) -> list[tuple[int, int, tuple[tuple[int, int], ...], tuple[tuple[int, int], ...]]]:
+        """(message id, sealed size, ranges acknowledged, ranges sent unconfirmed) per
+        pending message, oldest first: for reports and test diagnostics."""
+        return [(m.wire_id, len(m.sealed), m.acked.ranges(), m.sent.ranges()) for m in self._queue.values()]
+
     @property
     def next_id(self) -> int:
         """The 16-bit id the next queued message will get (to store durably)."""
