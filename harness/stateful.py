@@ -24,7 +24,7 @@ from terminal.limits import Limits
 from terminal.reassembly import Reassembler
 from terminal.wire import Ack, Fragment, decode, encode, seal_message
 
-SOURCE = (False, TERMINAL)
+SOURCE = (False, TERMINAL, MASTER)
 MAX_IN_FLIGHT = 64  # frames the simulated air holds before the oldest is lost
 
 
@@ -138,7 +138,8 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
         reception = self.receiver.receive(fragment, self.now)
         ack = reception.ack
         if reception.delivery is not None:
-            order = self.order_of_id[reception.delivery.message_id]
+            order = self.order_of_id.get(reception.delivery.message_id)
+            assert order is not None, "delivered twice: a message the sender already saw acknowledged"
             assert reception.delivery.payload == self.queued[order], "delivered bytes differ from queued bytes"
             self.delivered[order] = self.delivered.get(order, 0) + 1
             assert self.delivered[order] == 1, f"message {order} delivered twice"

@@ -105,8 +105,9 @@ class Limits:
     lands inside the receiver's window."""
 
     max_duplicate_sources: int = 64
-    """Sources with a remembered window.  A terminal hears a few masters; a
-    master serving thousands of terminals raises this (8 bytes each)."""
+    """Streams (terminal, master, direction) with a remembered window; duplicate
+    rejection holds for this many.  A terminal hears a few masters; a master
+    serving thousands of terminals must raise it to at least their number (8 bytes each)."""
 
     max_partials_per_source: int = 4
     """Messages one source may have half-reassembled at once."""

@@ -1,8 +1,9 @@
 """The receiving side: rebuild messages from fragments, deliver each once.
 
 Used by the master for uplink and by the terminal for downlink.  Partial
-messages are keyed by (direction, source, message id) and held in a buffer
-with a range set of the bytes present.  A message completes when every byte
+messages are keyed by their stream (direction, terminal, master) and message
+id, and hold only the bytes received: one chunk per held range, so memory is
+charged for bytes present, not for the span a fragment's offset claims.  A message completes when every byte
 up to the end given by its final fragment is present *and* its CRC-32C
 verifies; it is then delivered once and its id entered in the source's
 completed-id window, so later copies are acknowledged again and dropped.
@@ -33,8 +34,10 @@ from terminal.rangeset import RangeSet
 from terminal.wire.codec import unseal_message
 from terminal.wire.frames import AckBlock, Fragment
 
-Source = tuple[bool, int]
-"""(downlink, sender address): a terminal for uplink, a master for downlink."""
+Source = tuple[bool, int, int]
+"""A message stream: (downlink, terminal, master).  Ids are per stream, so both
+addresses belong in the key: one master's downlink ids to two terminals, or
+one terminal's uplink ids to two masters, are different messages."""
 
 
 @dataclasses.dataclass(frozen=True, slots=True)
@@ -85,14 +88,43 @@ class _Partial:
     source: Source
     message_id: int
     first_fragment: float
-    buffer: bytearray = dataclasses.field(default_factory=bytearray)
     held: RangeSet = dataclasses.field(default_factory=RangeSet)
+    chunks: dict[int, bytes] = dataclasses.field(default_factory=dict)  # start of each held range -> its bytes
     end: int | None = None  # known once the final fragment arrived
     urgent: bool = False
 
     @property
     def key(self) -> tuple[Source, int]:
         return self.source, self.message_id
+
+    def read(self, start: int, end: int) -> bytes:
+        """Bytes [start, end), which must lie inside one held range."""
+        for first, last in self.held.overlapping(start, end):
+            chunk_start = max(s for s in self.chunks if s <= first)
+            chunk = self.chunks[chunk_start]
+            return chunk[start - chunk_start : end - chunk_start]
+        raise KeyError((start, end))
+
+    def write(self, start: int, payload: bytes) -> None:
+        """Hold ``payload`` at ``start``, merging it with the chunks it overlaps or touches."""
+        end = start + len(payload)
+        low, high = start, end
+        pieces: list[tuple[int, bytes]] = []
+        for first in [s for s in self.chunks if s <= end and s + len(self.chunks[s]) >= start]:
+            chunk = self.chunks.pop(first)
+            pieces.append((first, chunk))
+            low, high = min(low, first), max(high, first + len(chunk))
+        merged = bytearray(high - low)
+        for first, chunk in pieces:
+            merged[first - low : first - low + len(chunk)] = chunk
+        merged[start - low : end - low] = payload
+        self.chunks[low] = bytes(merged)
+        self.held.add(start, end)
+
+    @property
+    def size(self) -> int:
+        """Bytes held (what the partial costs in memory)."""
+        return self.held.covered()
 
 
 class Reassembler:
@@ -129,8 +161,8 @@ class Reassembler:
         return () if partial is None else partial.held.ranges()
 
     def held_bytes(self, source: Source, message_id: int, start: int, end: int) -> bytes:
-        partial = self._partials[(source, message_id)]
-        return bytes(partial.buffer[start:end])
+        """Bytes [start, end) of a partial message; they must lie in one held range."""
+        return self._partials[(source, message_id)].read(start, end)
 
     def partials(self) -> Iterator[tuple[Source, int]]:
         return iter(list(self._partials))
@@ -156,7 +188,7 @@ class Reassembler:
         """Take one fragment (already CRC-checked by the decoder)."""
         self.counters.fragments += 1
         self.expire(now)
-        source: Source = (fragment.downlink, fragment.master if fragment.downlink else fragment.terminal)
+        source: Source = (fragment.downlink, fragment.terminal, fragment.master)
         verdict, _ = self.completed.classify(source, fragment.message_id)
         if not self._check_duplicates:
             verdict = Verdict.NEW
@@ -211,7 +243,7 @@ class Reassembler:
             return False
         for start, end in partial.held.overlapping(fragment.offset, fragment.end):
             lo = start - fragment.offset
-            if partial.buffer[start:end] != fragment.payload[lo : lo + end - start]:
+            if partial.read(start, end) != fragment.payload[lo : lo + end - start]:
                 self.counters.abandoned_overlap += 1
                 return False
         return True
@@ -225,14 +257,11 @@ class Reassembler:
         if partial.held.ranges_after_add(fragment.offset, fragment.end) > self.limits.max_ranges_per_message:
             self.counters.hole_cap_drops += 1
             return False
-        growth = max(0, fragment.end - len(partial.buffer))
+        growth = sum(e - s for s, e in partial.held.gaps(fragment.offset, fragment.end))
         if not self._make_room(partial, growth):
             return False
-        if growth:
-            partial.buffer.extend(bytes(growth))
-            self._account(partial.source, growth)
-        partial.buffer[fragment.offset : fragment.end] = fragment.payload
-        partial.held.add(fragment.offset, fragment.end)
+        partial.write(fragment.offset, fragment.payload)
+        self._account(partial.source, growth)
         if fragment.final:
             partial.end = fragment.end
         partial.urgent = partial.urgent or fragment.urgent
@@ -266,7 +295,7 @@ class Reassembler:
 
     def _complete(self, partial: _Partial, fragment: Fragment, now: float) -> Reception:
         assert partial.end is not None
-        sealed = bytes(partial.buffer[: partial.end])
+        sealed = partial.read(0, partial.end)
         self._drop(partial)
         try:
             payload = unseal_message(sealed)
@@ -303,8 +332,8 @@ class Reassembler:
     def _drop(self, partial: _Partial) -> None:
         if self._partials.pop(partial.key, None) is None:
             return
-        if partial.buffer:
-            self._account(partial.source, -len(partial.buffer))
+        if partial.size:
+            self._account(partial.source, -partial.size)
         self._count_by_source[partial.source] -= 1
         if not self._count_by_source[partial.source]:
             del self._count_by_source[partial.source]

@@ -115,6 +115,15 @@ def test_path_beyond_one_hop_is_refused_with_an_explanation() -> None:
         path_geometry(60.0, 10.0, 40.0, 20.0, 95.0)
 
 
+def test_underdense_power_worked_example() -> None:
+    # By hand from the forward-scatter equation: P_T 100 W, G_T = G_R = 5, lambda 6 m,
+    # q 1e13, sin^2(alpha) 1, R1 = R2 = 500 km, cos^2(beta) 0.5, sin^2(phi) 0.9:
+    # numerator 100 * 25 * 216 * (2.8179e-15)^2 * 1e26 = 428.8;
+    # denominator 16 pi^2 * 2.5e11 * 1e6 * (1 - 0.45) = 2.171e19; P = 1.975e-17 W [der].
+    power = physics.underdense_power(100, 5, 5, 6.0, 1e13, 1.0, 5e5, 5e5, 0.5, 0.9)
+    assert float(power) == pytest.approx(1.975e-17, rel=2e-3)
+
+
 def test_underdense_power_scales_as_q_squared_and_lambda_cubed() -> None:
     args = dict(sin2_alpha=1.0, r1=5e5, r2=5e5, cos2_beta=0.5, sin2_phi=0.9)
     p1 = float(physics.underdense_power(100, 5, 5, 6.0, 1e13, **args))

@@ -6,7 +6,11 @@ import ast
 from pathlib import Path
 
 TERMINAL = Path(__file__).resolve().parent.parent / "terminal"
-FORBIDDEN = {"asyncio", "socket", "serial", "time", "random", "os", "selectors", "threading", "datetime"}
+FORBIDDEN = {
+    "asyncio", "socket", "serial", "time", "random", "os", "selectors", "threading", "datetime",
+    "subprocess", "pathlib", "secrets", "uuid", "signal", "shutil", "tempfile", "glob", "logging",
+}
+BUILTINS_THAT_DO_IO = {"open", "print", "input"}
 # The service and port adapters bind the core to the outside world; they alone may.
 SHELL = {"service.py", "ports"}
 
@@ -32,7 +36,23 @@ def test_core_imports_nothing_that_does_io() -> None:
     assert {k: v for k, v in offenders.items() if v} == {}
 
 
+def _io_calls(path: Path) -> set[str]:
+    tree = ast.parse(path.read_text(encoding="utf-8"))
+    return {
+        node.func.id
+        for node in ast.walk(tree)
+        if isinstance(node, ast.Call) and isinstance(node.func, ast.Name) and node.func.id in BUILTINS_THAT_DO_IO
+    }
+
+
+def test_core_calls_no_builtin_that_does_io() -> None:
+    offenders = {str(p.relative_to(TERMINAL)): sorted(_io_calls(p)) for p in _core_modules()}
+    assert {k: v for k, v in offenders.items() if v} == {}
+
+
 def test_the_check_sees_a_forbidden_import(tmp_path: Path) -> None:
     sample = tmp_path / "sample.py"
     sample.write_text("import os.path\nfrom time import monotonic\nfrom . import sibling\n")
     assert _imports(sample) & FORBIDDEN == {"os", "time"}
+    sample.write_text("print('x')\nwith open('f') as f: pass\n")
+    assert _io_calls(sample) == {"print", "open"}

@@ -57,7 +57,8 @@ def test_neighbouring_catalogue_entries_are_not_ours() -> None:
     assert crcmod.predefined.mkPredefinedCrcFun("xmodem")(CHECK_INPUT) == 0x31C3
     assert crcmod.predefined.mkPredefinedCrcFun("crc-16")(CHECK_INPUT) == 0xBB3D
     assert zlib.crc32(CHECK_INPUT) == 0xCBF43926
-    assert len({0x29B1, 0x2189, 0x31C3, 0xBB3D}) == 4
+    assert crc16(CHECK_INPUT) not in {0x2189, 0x31C3, 0xBB3D}
+    assert crc32c(CHECK_INPUT) != zlib.crc32(CHECK_INPUT)
 
 
 @pytest.mark.property

@@ -15,7 +15,7 @@ from terminal.limits import DEFAULT_LIMITS, MAX_ACK_RANGES, Limits
 from terminal.reassembly import Reassembler
 from terminal.wire import AckBlock, Fragment, seal_message
 
-SOURCE = (False, TERMINAL)
+SOURCE = (False, TERMINAL, MASTER)
 
 
 def _fragment(message_id: int, offset: int, payload: bytes, final: bool = False, terminal: int = TERMINAL) -> Fragment:
@@ -199,6 +199,48 @@ def test_window_state_restored_after_reboot_still_rejects() -> None:
     assert after.receive(_fragment(3, 0, sealed, final=True), 1.0).delivery is None
 
 
+def test_streams_are_keyed_by_both_addresses() -> None:
+    # Found in review: keyed by the sender alone, message 0 from master 7 to
+    # terminal 2 was taken for message 0 from master 7 to terminal 1, which was
+    # then acknowledged complete and never delivered.
+    receiver = Reassembler()
+    down = [Fragment(terminal, MASTER, 0, 0, seal_message(f"to {terminal}".encode()), final=True, downlink=True) for terminal in (2, 1)]
+    up = [Fragment(TERMINAL, master, 0, 0, seal_message(f"to {master}".encode()), final=True) for master in (7, 8)]
+    delivered = [receiver.receive(f, 0.0).delivery for f in down + up]
+    assert [d.payload if d else None for d in delivered] == [b"to 2", b"to 1", b"to 7", b"to 8"]
+
+
+def test_memory_is_charged_for_bytes_held_not_for_the_offset_claimed() -> None:
+    # Found in review: a one-byte fragment at offset 4099 reserved a 4 KiB buffer.
+    receiver = Reassembler()
+    for terminal in range(4):
+        receiver.receive(_fragment(1, 4099, b"x", terminal=terminal), 0.0)
+    assert receiver.buffered_bytes == 4
+    genuine = seal_message(bytes(3000))
+    for offset in range(0, 2048, 256):
+        receiver.receive(_fragment(1, offset, genuine[offset : offset + 256], terminal=TERMINAL), 1.0)
+    assert receiver.held(SOURCE, 1) == ((0, 2048),)
+    assert receiver.buffered_bytes == 4 + 2048
+    assert receiver.counters.evicted_bytes == 0
+
+
+def test_duplicate_rejection_covers_at_most_max_duplicate_sources_streams() -> None:
+    # Documented limit: a receiver remembers completed ids for max_duplicate_sources
+    # streams; beyond that it forgets the least recently used one (counted), and a
+    # late copy from that stream would be taken as new.  A master serving N
+    # terminals sets max_duplicate_sources >= N.
+    sealed = seal_message(b"r")
+    small = Reassembler(Limits(max_duplicate_sources=4))
+    for terminal in range(5):
+        small.receive(_fragment(1, 0, sealed, final=True, terminal=terminal), 0.0)
+    assert small.counters.windows_evicted == 1
+    big = Reassembler(Limits(max_duplicate_sources=8))
+    for terminal in range(5):
+        big.receive(_fragment(1, 0, sealed, final=True, terminal=terminal), 0.0)
+    assert big.receive(_fragment(1, 0, sealed, final=True, terminal=0), 1.0).delivery is None
+    assert big.counters.windows_evicted == 0
+
+
 # --- hostile fragments ---------------------------------------------------------------------
 
 
@@ -265,8 +307,9 @@ def test_hole_cap_drops_the_fragment_that_would_exceed_it() -> None:
         reception = receiver.receive(_fragment(1, 10 * i, b"x"), 0.0)
     assert len(reception.ack.ranges) == MAX_ACK_RANGES
     assert receiver.counters.hole_cap_drops == 3
-    receiver.receive(_fragment(1, 1, b"y"), 0.0)  # touching an island: still fine
-    assert len(receiver.held(SOURCE, 1)) == MAX_ACK_RANGES
+    receiver.receive(_fragment(1, 1, b"y"), 0.0)  # touching an island: merges, no new range
+    assert receiver.held(SOURCE, 1)[0] == (0, 2)
+    assert len(receiver.held(SOURCE, 1)) == MAX_ACK_RANGES and receiver.counters.hole_cap_drops == 3
 
 
 def test_lifetime_runs_from_the_first_fragment() -> None:

@@ -107,3 +107,11 @@ def test_channel_command_refuses_a_path_beyond_one_hop() -> None:
 def test_short_path_warns_but_runs() -> None:
     result = _run("channel", "--hours", "1", "--set", "master.lat_deg=60.0", "--set", "master.lon_deg=18.0")
     assert result.returncode == 0 and "warning" in result.stderr
+
+
+def test_channel_by_month_rows_cover_the_period() -> None:
+    result = _run("channel", "--json", "--by-month", "--set", "scenario.start=2027-01-30T00:00:00Z", "--days", "4")
+    assert result.returncode == 0, result.stderr
+    months = json.loads(result.stdout)["monthly"]
+    assert [m["month"] for m in months] == ["2027-01", "2027-02"]
+    assert all(m["bursts_per_hour"] > 0 for m in months)

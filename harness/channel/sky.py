@@ -19,8 +19,8 @@ DIURNAL_AMPLITUDE = 0.6
 """Rate = 1 + 0.6 cos(2 pi (t_local - 6 h) / 24 h): max/min = 1.6/0.4 = 4 (ITU-R P.843)."""
 SEASONAL_AMPLITUDE = 0.5
 """Seasonal swing of +-50 % (max/min 3), rising from mid-February to mid-July."""
-SEASON_MIN_DAY = 45.0  # day of year of the minimum (14 February), northern hemisphere
-SEASON_MAX_DAY = 196.0  # day of year of the maximum (15 July)
+SEASON_MIN_DAY = 45.0  # day of the year (0 = 1 January) of the minimum: 15 February, northern hemisphere
+SEASON_MAX_DAY = 196.0  # of the maximum: 16 July
 
 Array = NDArray[np.float64]
 
@@ -31,7 +31,9 @@ def local_solar_hours(unix_s: Array, lon_deg: float) -> Array:
 
 
 def day_of_year(unix_s: Array) -> Array:
-    """Fractional day of the year, 0 at 1 January 00 UTC (mean year of 365.2422 days)."""
+    """Fractional day of a mean year of 365.2422 days counted from 2000-01-01 00 UTC
+    (0 = 1 January); it drifts from the calendar by up to about 0.75 day between
+    leap years, which the seasonal cycle and shower profiles do not notice."""
     days = unix_s / 86400.0 - 10957.0  # days since 2000-01-01
     return np.mod(days, 365.2422)
 

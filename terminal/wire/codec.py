@@ -49,8 +49,9 @@ def _as_bytes(data: object) -> bytes:
     if isinstance(data, bytes):
         return data
     if isinstance(data, (bytearray, memoryview)):
-        if len(data) > MAX_FRAME_BYTES:  # refuse before copying
-            raise FrameTooLong(f"frame of {len(data)} bytes exceeds the {MAX_FRAME_BYTES}-byte maximum")
+        size = data.nbytes if isinstance(data, memoryview) else len(data)  # bytes, whatever the item size
+        if size > MAX_FRAME_BYTES:  # refuse before copying
+            raise FrameTooLong(f"frame of {size} bytes exceeds the {MAX_FRAME_BYTES}-byte maximum")
         return bytes(data)
     raise UsageError(f"frames are decoded from bytes, not {type(data).__name__}")
 

@@ -7,7 +7,8 @@ bench reassembly`` measure both side by side).  This module encodes and
 decodes exactly the layouts of ``formats.FRAGMENT``, ``formats.PROBE`` and
 ``formats.ACK`` with :mod:`struct`; differential property tests
 (tests/test_fastpath.py) prove each byte-identical to its declaration in both
-directions, errors included.  Commands and replies are rare and stay on the
+directions, and that both refuse the same inputs with the same error class
+(the wording of a message may differ).  Commands and replies are rare and stay on the
 declarations.
 """
 
