@@ -25,7 +25,7 @@ class RangeSet:
             self.add(start, end)
 
     def __iter__(self) -> Iterator[ByteRange]:
-        return zip(self._starts, self._ends)
+        return zip(self._starts, self._ends, strict=True)
 
     def __len__(self) -> int:
         """Number of ranges (not of integers covered)."""

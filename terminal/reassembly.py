@@ -99,11 +99,10 @@ class _Partial:
 
     def read(self, start: int, end: int) -> bytes:
         """Bytes [start, end), which must lie inside one held range."""
-        for first, last in self.held.overlapping(start, end):
-            chunk_start = max(s for s in self.chunks if s <= first)
-            chunk = self.chunks[chunk_start]
-            return chunk[start - chunk_start : end - chunk_start]
-        raise KeyError((start, end))
+        if not self.held.contains(start, end):
+            raise KeyError((start, end))
+        chunk_start = max(s for s in self.chunks if s <= start)
+        return self.chunks[chunk_start][start - chunk_start : end - chunk_start]
 
     def write(self, start: int, payload: bytes) -> None:
         """Hold ``payload`` at ``start``, merging it with the chunks it overlaps or touches."""

@@ -152,9 +152,15 @@ def test_each_direction_has_its_own_decay_constant() -> None:
     assert np.allclose(ratio, (40.52 / 60) ** 2)  # tau ~ lambda^2
 
 
-def test_capacity_bound_is_time_open_times_rate() -> None:
+def test_capacity_bound_is_time_open_times_rate_counting_overlaps_once() -> None:
     ts = trails("scenario.duration_hours=6")
-    assert ts.capacity_bits("up") == pytest.approx(float(ts.trails.open_s["up"].sum()) * 4800.0)
+    union, reach = 0.0, -math.inf  # the union of [t, t + open), walked by hand
+    for start, length in zip(ts.trails.t.tolist(), ts.trails.open_s["up"].tolist(), strict=True):
+        end = start + length
+        union += max(0.0, end - max(start, reach))
+        reach = max(reach, end)
+    assert ts.capacity_bits("up") == pytest.approx(union * 4800.0)
+    assert union < float(ts.trails.open_s["up"].sum())  # trails do overlap on this link
 
 
 def test_channel_answers_about_a_burst() -> None:

@@ -12,7 +12,13 @@ import pytest
 from geographiclib.geodesic import Geodesic
 
 from harness.channel import physics
-from harness.channel.geometry import EARTH_RADIUS_KM, central_angle, max_single_hop_km, path_geometry, reflection_geometry
+from harness.channel.geometry import (
+    EARTH_RADIUS_KM,
+    central_angle,
+    max_single_hop_km,
+    path_geometry,
+    reflection_geometry,
+)
 
 
 def test_diffusion_and_initial_radius_at_95_km() -> None:

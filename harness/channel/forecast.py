@@ -16,7 +16,7 @@ from typing import Any, TextIO
 import numpy as np
 
 from harness.channel import sky
-from harness.channel.model import DIRECTIONS, TrailSet
+from harness.channel.model import DIRECTIONS, TrailSet, exclusive_open
 from terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MESSAGE_CRC_BYTES
 
 PROBE_MESSAGE_BYTES = 100
@@ -60,6 +60,8 @@ def forecast(trails: TrailSet) -> dict[str, Any]:
         return report
     both = np.minimum(data.open_s["up"], data.open_s["down"])
     usable = both > 0
+    covered = exclusive_open(data.t, both)  # overlapping trails counted once
+    uplink = exclusive_open(data.t, data.open_s["up"])
     report["trails"]["usable"] = int(np.count_nonzero(usable))
     hour = np.floor(np.mod((trails.start_unix + data.t) / 3600.0, 24.0)).astype(int)
     lon = g.midpoint[1]
@@ -77,14 +79,14 @@ def forecast(trails: TrailSet) -> dict[str, Any]:
                 "bursts_per_hour": len(opened) / hours_observed,
                 "mean_open_s": float(opened.mean()) if len(opened) else 0.0,
                 "median_open_s": float(np.median(opened)) if len(opened) else 0.0,
-                "duty_cycle": float(opened.sum()) / (3600.0 * hours_observed),
-                "capacity_bits_per_hour": float(data.open_s["up"][in_hour].sum()) * rate / hours_observed,
+                "duty_cycle": float(covered[in_hour].sum()) / (3600.0 * hours_observed),
+                "capacity_bits_per_hour": float(uplink[in_hour].sum()) * rate / hours_observed,
                 "wait_100B_s": (3600.0 * hours_observed / long_enough) if long_enough else None,
             }
         )
     report["totals"] = {
         "bursts_per_hour": float(np.count_nonzero(usable)) / (days * 24),
-        "duty_cycle": float(both[usable].sum()) / s.duration_s,
+        "duty_cycle": float(covered.sum()) / s.duration_s,
         "capacity_bits": trails.capacity_bits("up"),
         "capacity_bits_per_hour": trails.capacity_bits("up") / (days * 24),
     }
@@ -111,6 +113,8 @@ def monthly(trails: TrailSet) -> list[dict[str, Any]]:
     import datetime as dt
 
     both = np.minimum(data.open_s["up"], data.open_s["down"])
+    covered = exclusive_open(data.t, both)
+    uplink = exclusive_open(data.t, data.open_s["up"])
     stamps = trails.start_unix + data.t
     out = []
     start = trails.scenario.start
@@ -126,8 +130,8 @@ def monthly(trails: TrailSet) -> list[dict[str, Any]]:
             {
                 "month": cursor.strftime("%Y-%m"),
                 "bursts_per_hour": len(opened) / hours,
-                "duty_cycle": float(opened.sum()) / (hours * 3600.0),
-                "capacity_bits_per_hour": float(data.open_s["up"][sel].sum()) * trails.scenario.bit_rate / hours,
+                "duty_cycle": float(covered[sel].sum()) / (hours * 3600.0),
+                "capacity_bits_per_hour": float(uplink[sel].sum()) * trails.scenario.bit_rate / hours,
             }
         )
         cursor = nxt

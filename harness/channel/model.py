@@ -38,6 +38,15 @@ def _norm(v: Array) -> Array:
     return np.sqrt(np.einsum("ij,ij->i", v, v))
 
 
+def exclusive_open(start: Array, length: Array) -> Array:
+    """Each opening's time not already covered by an earlier one (starts sorted):
+    summing these gives the length of the union, so overlapping trails are not
+    counted twice in duty cycles and capacity."""
+    end = start + length
+    earlier = np.maximum.accumulate(np.concatenate([[-np.inf], end[:-1]]))
+    return np.maximum(0.0, end - np.maximum(start, earlier))
+
+
 FLUX_AT_1E14 = 160.0 / 1e14
 """Cumulative flux of sporadic meteors with q > 1e14 e/m, per m^2 per s, annual
 mean (ITU-R P.843: I(q > q0) = 160 / q0); other mass indices scale from it."""
@@ -351,7 +360,7 @@ class TrailSet:
         """Bits a genie knowing every opening could move at the scenario rate, no overhead."""
         if self.trails is None:
             return 0.0
-        return float(np.sum(self.trails.open_s[direction]) * self.scenario.bit_rate)
+        return float(np.sum(exclusive_open(self.trails.t, self.trails.open_s[direction])) * self.scenario.bit_rate)
 
 
 class Channel:
