@@ -358,7 +358,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = commands.add_parser(
         "bench",
-        help="measure codec speed against a plain struct baseline",
+        help="benchmarks: codec, reassembly, channel (figures, side by side with baselines)",
         description=(
             "Benchmarks print figures measured side by side in one run.\n"
             "  codec   encode/decode frames per second of every frame type, next to a\n"
