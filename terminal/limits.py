@@ -75,8 +75,6 @@ def cobs_encoded_max(payload_len: int) -> int:
     return payload_len + payload_len // 254 + 1
 
 
-MAX_SERIAL_RECORD = cobs_encoded_max(MAX_SERIAL_PAYLOAD)
-"""The serial deframer never buffers more than this many bytes."""
 
 
 # --- link limits (per deployment, overridable) --------------------------------

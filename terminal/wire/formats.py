@@ -228,5 +228,3 @@ FRAME_FORMATS: dict[FrameType, Struct] = {
 }
 """Frame type to declaration; the decoder dispatches on this table."""
 
-BLOCK_FORMATS: dict[str, Struct] = {"ack block": ACK_BLOCK, "command block": COMMAND_BLOCK}
-"""Blocks nested inside frames, documented on their own."""
