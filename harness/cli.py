@@ -423,7 +423,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"ionotrail {args.command}: error: {exc}", file=sys.stderr)
         return 2
     except BrokenPipeError:  # output piped into head and the like
-        sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - silence the flush at exit
+        sys.stdout = open(os.devnull, "w")  # silence the flush at exit
         return 0
     except KeyboardInterrupt:
         print(f"ionotrail {args.command}: interrupted", file=sys.stderr)
