@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import dataclasses
 import enum
+from collections.abc import Callable
 
 from terminal.errors import UsageError
 from terminal.limits import DEFAULT_LIMITS, FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MESSAGE_ID_BITS, Limits
@@ -69,6 +70,9 @@ class _Outgoing:
     created: float
     acked: RangeSet = dataclasses.field(default_factory=RangeSet)
     sent: RangeSet = dataclasses.field(default_factory=RangeSet)  # since it was last acknowledged
+    # Pieces sent by next_fragment and not yet confirmed, as (end of airtime, start, end),
+    # oldest first; disjoint, so never more entries than the message has bytes.
+    in_flight: list[tuple[float, int, int]] = dataclasses.field(default_factory=list)
 
     @property
     def wire_id(self) -> int:
@@ -85,6 +89,7 @@ class SenderCounters:
     air_bytes: int = 0
     solicitations: int = 0
     stray_acks: int = 0
+    presumed_lost_bytes: int = 0
 
 
 class Sender:
@@ -137,6 +142,11 @@ class Sender:
         return [(m.wire_id, len(m.sealed), m.acked.ranges(), m.sent.ranges()) for m in self._queue.values()]
 
     @property
+    def awaiting(self) -> bool:
+        """True while a piece from :meth:`next_fragment` awaits confirmation."""
+        return any(m.in_flight for m in self._queue.values())
+
+    @property
     def next_id(self) -> int:
         """The 16-bit id the next queued message will get (to store durably)."""
         return self._next_seq & ((1 << MESSAGE_ID_BITS) - 1)
@@ -183,27 +193,90 @@ class Sender:
         for start, end in fresh + resend:
             while start < end and budget > FRAGMENT_OVERHEAD:
                 take = min(end - start, budget - FRAGMENT_OVERHEAD, self.limits.max_fragment_payload)
-                out.append(
-                    Fragment(
-                        self.terminal,
-                        self.master,
-                        message.wire_id,
-                        start,
-                        message.sealed[start : start + take],
-                        final=start + take == size,
-                        urgent=message.priority is Priority.ALARM,
-                        downlink=self.downlink,
-                    )
-                )
-                message.sent.add(start, start + take)
+                out.append(self._fragment(message, start, take))
                 budget -= take + FRAGMENT_OVERHEAD
-                self.counters.payload_bytes += take
-                self.counters.air_bytes += take + FRAGMENT_OVERHEAD
                 start += take
         return budget
 
-    def on_ack(self, block: AckBlock, now: float) -> list[SenderEvent]:
-        """Apply an acknowledgement from the receiver; returns what finished."""
+    def _fragment(self, message: _Outgoing, start: int, take: int) -> Fragment:
+        message.sent.add(start, start + take)
+        self.counters.payload_bytes += take
+        self.counters.air_bytes += take + FRAGMENT_OVERHEAD
+        return Fragment(
+            self.terminal,
+            self.master,
+            message.wire_id,
+            start,
+            message.sealed[start : start + take],
+            final=start + take == len(message.sealed),
+            urgent=message.priority is Priority.ALARM,
+            downlink=self.downlink,
+        )
+
+    # --- one fragment at a time, for a burst with acknowledgements flowing back ------
+
+    def next_fragment(self, max_payload: int, air_end: float) -> Fragment | None:
+        """The next fragment of a burst, carrying at most ``max_payload`` bytes, or
+        None when every eligible byte is sent and awaits its acknowledgement.
+
+        Bytes never sent (or presumed lost) go first, most important message
+        first; a message whose bytes are all held but not reported complete
+        gets one final one-byte fragment to solicit the verdict.  ``air_end``
+        is when this fragment will have left the antenna: an acknowledgement
+        issued after it that does not show its bytes proves them lost (see
+        :meth:`on_ack`).
+        """
+        if max_payload < 1:
+            raise UsageError(f"max_payload must be at least 1 byte, not {max_payload}")
+        take_most = min(max_payload, self.limits.max_fragment_payload)
+        eligible = self._eligible()
+        for message in eligible:
+            for start, end in message.acked.gaps(0, len(message.sealed)):
+                for gap_start, gap_end in message.sent.gaps(start, end):
+                    take = min(gap_end - gap_start, take_most)
+                    return self._track(message, gap_start, take, air_end)
+        for message in eligible:
+            size = len(message.sealed)
+            if message.acked.contains(0, size) and not message.in_flight:
+                self.counters.solicitations += 1
+                return self._track(message, size - 1, 1, air_end)
+        return None
+
+    def _track(self, message: _Outgoing, start: int, take: int, air_end: float) -> Fragment:
+        fragment = self._fragment(message, start, take)
+        self.counters.fragments += 1
+        message.in_flight.append((air_end, start, start + take))
+        return fragment
+
+    def presume_lost(self, sent_before: float) -> None:
+        """Treat every unconfirmed piece whose airtime ended before ``sent_before``
+        as lost, so :meth:`next_fragment` sends it again.  The link calls this
+        when a new burst starts: an earlier burst's unconfirmed tail most
+        likely died with its trail, and the acknowledgement that would say
+        otherwise may never come."""
+        for message in self._queue.values():
+            if message.in_flight and message.in_flight[0][0] < sent_before:
+                self._forget(message, lambda piece: piece[0] < sent_before)
+
+    def _forget(self, message: _Outgoing, lost: Callable[[tuple[float, int, int]], bool]) -> None:
+        keep = []
+        for piece in message.in_flight:
+            if lost(piece):
+                _, start, end = piece
+                for held_start, held_end in message.acked.gaps(start, end):
+                    message.sent.discard(held_start, held_end)
+                    self.counters.presumed_lost_bytes += held_end - held_start
+            else:
+                keep.append(piece)
+        message.in_flight = keep
+
+    def on_ack(self, block: AckBlock, now: float, issued: float | None = None) -> list[SenderEvent]:
+        """Apply an acknowledgement from the receiver; returns what finished.
+
+        ``issued``, when known, is when the receiver sent it: a piece from
+        :meth:`next_fragment` whose airtime ended before then and whose bytes
+        the acknowledgement does not show was lost, and becomes unsent again.
+        """
         if block.terminal != self.terminal or block.downlink != self.downlink:
             self.counters.stray_acks += 1
             return []
@@ -223,6 +296,11 @@ class Sender:
         message.acked = RangeSet((s, min(e, size)) for s, e in block.ranges if s < size)
         for start, end in message.acked:  # acknowledged bytes are no longer "sent, unconfirmed"
             message.sent.discard(start, end)
+        acked = message.acked
+        if issued is None:
+            message.in_flight = [p for p in message.in_flight if not acked.contains(p[1], p[2])]
+        else:
+            self._forget(message, lambda piece: acked.contains(piece[1], piece[2]) or piece[0] <= issued)
         return []
 
     def _find(self, wire_id: int) -> _Outgoing | None:

@@ -129,7 +129,32 @@ class Limits:
     Openings come a few times a minute but a large message may need dozens,
     with nights of low meteor rates between; four hours spans that."""
 
+    turnaround: float = 0.010
+    """Seconds from hearing a probe to the first transmitted bit: the radio's
+    receive-to-transmit switch and synthesiser settling, about 10 ms in VHF
+    data radios (common practice, no source)."""
+
+    burst_silence: float = 0.25
+    """Seconds without a probe after which the terminal ends its burst and
+    goes back to listening: two and a half of the master's probe intervals
+    (0.1 s), so one lost probe does not end a live burst."""
+
+    ack_margin: float = 0.005
+    """Seconds by which a fragment must have left the antenna before an
+    acknowledgement issued then is taken to prove it lost: the master's
+    decode and queueing latency (about a millisecond in software), with room."""
+
+    max_remembered_commands: int = 8
+    """Downlink command ids a terminal remembers with their replies, so a
+    command the master repeats (its probe repeats it until a reply arrives)
+    is executed once and answered again."""
+
     def __post_init__(self) -> None:
+        for name in ("turnaround", "burst_silence", "ack_margin"):
+            value = getattr(self, name)
+            if not isinstance(value, (int, float)) or isinstance(value, bool) or not 0 <= value <= 60:
+                raise UsageError(f"limit {name}={value!r} must be a number of seconds from 0 to 60")
+        _within("max_remembered_commands", self.max_remembered_commands, 1, 256)
         _within("max_message_payload", self.max_message_payload, 1, MAX_MESSAGE_PAYLOAD)
         _within("max_fragment_payload", self.max_fragment_payload, 1, MAX_FRAGMENT_PAYLOAD)
         _within("max_queued_messages", self.max_queued_messages, 1, MAX_ID_SPAN)

@@ -19,6 +19,7 @@ and grows as q^(1/2) above it; overdense fading is a seeded two-ray process.
 
 from __future__ import annotations
 
+import bisect
 import dataclasses
 import math
 from collections.abc import Callable
@@ -65,6 +66,7 @@ decay distributions are wider than the classical ones: Weitzen et al. 1988)."""
 WIND_MS = (10.0, 100.0)
 """Trail drift winds, m/s (from memory of the meteor-wind literature)."""
 OVERDENSE_HOLD_MAX_S = 15.0
+FADED_TAUS = 40.0  # past this many decay constants a trail no longer matters to a frame
 """Wind shear breaks up long overdense trails: the plateau is capped at 15 s
 (common practice, no source; without a cap the q^-1 flux law gives a mean
 overdense duration that grows without bound)."""
@@ -363,6 +365,21 @@ class TrailSet:
         return float(np.sum(exclusive_open(self.trails.t, self.trails.open_s[direction])) * self.scenario.bit_rate)
 
 
+class _Columns:
+    """A trail set's columns as Python lists, for scalar lookups."""
+
+    def __init__(self, tr: Trails) -> None:
+        self.t: list[float] = tr.t.tolist()
+        self.hold = {d: tr.hold[d].tolist() for d in DIRECTIONS}
+        self.tau = {d: tr.tau[d].tolist() for d in DIRECTIONS}
+        self.peak = {d: tr.peak_ebn0[d].tolist() for d in DIRECTIONS}
+        self.open_s = {d: tr.open_s[d].tolist() for d in DIRECTIONS}
+        self.doppler = {d: tr.doppler_hz[d].tolist() for d in DIRECTIONS}
+        self.fade_depth: list[float] = tr.fade_depth.tolist()
+        self.fade_hz: list[float] = tr.fade_hz.tolist()
+        self.fade_phase: list[float] = tr.fade_phase.tolist()
+
+
 class Channel:
     """Questions a link simulation asks of a generated trail set."""
 
@@ -373,6 +390,81 @@ class Channel:
         self.trails = data
         self.modulation = trails.scenario.modulation
         self._max_open = {d: float(np.max(data.open_s[d])) if data is not None and len(data) else 0.0 for d in DIRECTIONS}
+        self._columns = _Columns(data) if data is not None and len(data) else None
+
+    # --- one frame at a time (the link simulation's questions) ---------------------
+    #
+    # Plain-Python twins of the numpy methods below, for one query at a time,
+    # where numpy's per-call overhead would dominate; tests/test_channel_model.py
+    # checks that both give the same numbers.
+
+    def _scalar_envelope(self, direction: str, i: int, t: float) -> float:
+        c = self._columns
+        assert c is not None
+        age = t - c.t[i]
+        if age < 0:
+            return 0.0
+        hold = c.hold[direction][i]
+        if age < hold:
+            f = c.fade_depth[i]
+            ripple = (1 + 2 * f * math.cos(2 * math.pi * c.fade_hz[i] * age + c.fade_phase[i]) + f * f) / (1 + f * f)
+            return c.peak[direction][i] * ripple
+        return c.peak[direction][i] * math.exp(-(age - hold) / c.tau[direction][i])
+
+    def _scalar_candidates(self, direction: str, t: float) -> range:
+        c = self._columns
+        if c is None:
+            return range(0)
+        return range(bisect.bisect_left(c.t, t - self._max_open[direction]), bisect.bisect_right(c.t, t))
+
+    def strongest(self, direction: str, t: float) -> tuple[int, float] | None:
+        """(index, linear Eb/N0) of the strongest trail at t, or None when none is up."""
+        best: tuple[int, float] | None = None
+        for i in self._scalar_candidates(direction, t):
+            value = self._scalar_envelope(direction, i, t)
+            if value > 0 and (best is None or value > best[1]):
+                best = (i, value)
+        return best
+
+    def doppler_of(self, direction: str, index: int) -> float:
+        """Doppler offset (Hz) of trail ``index`` as seen in ``direction``."""
+        assert self._columns is not None
+        return self._columns.doppler[direction][index]
+
+    def success_probability(self, direction: str, t0: float, bits: int) -> float:
+        """:meth:`frame_success_probability`, computed in plain Python.
+
+        Trails more than FADED_TAUS decay constants past their plateau are
+        left out: their Eb/N0 is below e^-40 of its peak, which changes a
+        frame's success probability by less than 1e-9 (tests check it)."""
+        duration = bits / self.params[direction].bit_rate
+        c = self._columns
+        if c is None:
+            return 0.0
+        start_t, hold, tau = c.t, c.hold[direction], c.tau[direction]
+        live = [
+            i
+            for i in self._scalar_candidates(direction, t0 + duration)
+            if start_t[i] + hold[i] + FADED_TAUS * tau[i] > t0
+        ]
+        if not live:
+            return 0.0
+        samples = int(min(16, max(2, math.ceil(duration / 0.005))))
+        step = duration / samples
+        ber_of = physics.bit_error_rate_scalar
+        envelope = self._scalar_envelope
+        modulation = self.modulation
+        log_ok = 0.0
+        for k in range(samples):
+            t = t0 + (k + 0.5) * step
+            if len(live) == 1:
+                ebn0 = envelope(direction, live[0], t)
+            else:
+                ebn0 = max(envelope(direction, i, t) for i in live)
+            log_ok += math.log1p(-min(ber_of(modulation, ebn0), 0.5))
+        return math.exp(log_ok * bits / samples)
+
+    # --- vectorised (reports, plots, the reference for the scalar twins) -----------
 
     def _envelope(self, direction: str, index: NDArray[np.int64], t: Array) -> Array:
         tr = self.trails

@@ -128,6 +128,21 @@ def bit_error_rate(modulation: str, ebn0: ArrayLike) -> Array:
     raise ValueError(f"unknown modulation {modulation!r}")
 
 
+def bit_error_rate_scalar(modulation: str, ebn0: float) -> float:
+    """:func:`bit_error_rate` for one value, with math instead of numpy (the
+    link simulation asks once per frame sample; numpy's per-call cost dominates)."""
+    x = max(ebn0, 0.0)
+    if modulation == "bpsk":
+        return 0.5 * math.erfc(math.sqrt(x))  # Q(sqrt(2x)) = erfc(sqrt x) / 2
+    if modulation == "dpsk":
+        return 0.5 * math.exp(-x)
+    if modulation == "coherent_fsk":
+        return 0.5 * math.erfc(math.sqrt(x / 2))
+    if modulation == "noncoherent_fsk":
+        return 0.5 * math.exp(-x / 2)
+    raise ValueError(f"unknown modulation {modulation!r}")
+
+
 def threshold_ebn0(modulation: str, ber: float) -> float:
     """Linear Eb/N0 at which the bit-error rate equals ``ber`` (bisection in dB)."""
     low, high = -10.0, 40.0

@@ -123,6 +123,14 @@ SCHEMA: dict[str, dict[str, Field]] = {
         "sporadic_scale": Field(1.0, "multiplier on the sporadic rate (site and year variation)", _number(0.01, 100)),
         "showers": Field(True, "include the major annual showers", _flag),
     },
+    "protocol": {
+        "terminal_address": Field(2609, "the terminal's 16-bit address", _integer(0, 0xFFFF)),
+        "master_address": Field(7, "the master's 8-bit address", _integer(0, 0xFF)),
+        "probe_interval_s": Field(0.1, "seconds between the starts of the master's probes", _number(0.02, 10, "s")),
+        "duplex": Field("full", "full: the terminal hears probes while it sends (two frequencies); half: it cannot", _choice(("full", "half"))),
+        "turnaround_s": Field(0.010, "terminal's receive-to-transmit switching time", _number(0, 1, "s")),
+        "burst_silence_s": Field(0.25, "the terminal ends a burst after this long without a probe", _number(0.01, 60, "s")),
+    },
 }
 
 
@@ -159,6 +167,12 @@ class Scenario:
     mass_index: float
     sporadic_scale: float
     showers: bool
+    terminal_address: int = 2609
+    master_address: int = 7
+    probe_interval_s: float = 0.1
+    duplex: str = "full"
+    turnaround_s: float = 0.010
+    burst_silence_s: float = 0.25
     source: str = "built-in demo"
 
     @property
@@ -245,6 +259,7 @@ def _build(m: dict[str, dict[str, Any]], origin: str) -> Scenario:
         source=origin,
         **{k: m["link"][k] for k in SCHEMA["link"]},
         **{k: m["channel"][k] for k in SCHEMA["channel"]},
+        **{k: m["protocol"][k] for k in SCHEMA["protocol"]},
     )
 
 

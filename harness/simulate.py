@@ -1,0 +1,253 @@
+"""The main job: a terminal, a master and the channel between them, for a period.
+
+:func:`simulate` generates the scenario's trails, joins a master emulator and
+a terminal service through :class:`~harness.air.Air`, runs them on a
+virtual-time loop (or, for the equivalence test, in real time), and reports
+what a link engineer asks: how many messages were offered, delivered,
+pending and abandoned, the latency distribution, how much of the channel's
+capacity the traffic used, and what went over the air.  The report's keys
+are a contract (scripts and CI read them); see :data:`REPORT_KEYS`.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import dataclasses
+import math
+import random
+import time
+from collections.abc import Callable
+from typing import Any
+
+from harness.air import Air
+from harness.channel.model import Channel, TrailSet
+from harness.channel.scenario import Scenario
+from harness.master import DeliveryRecord, MasterStation
+from harness.vtime import VirtualTimeLoop
+from terminal.crc import crc32c
+from terminal.fragmentation import MessageAcknowledged, MessageRefused, Sender
+from terminal.limits import DEFAULT_LIMITS, Limits
+from terminal.link import BurstEnded, BurstStarted, Duplex, Link
+from terminal.policy import by_name
+from terminal.service import MessageAbandoned, MessageQueued, ServiceEvent, TerminalService
+from terminal.source import Backlog, DemoGauge, MessageSource
+
+REPORT_KEYS = (
+    "scenario", "seed", "policy", "sim_seconds", "wall_seconds", "speedup",
+    "messages.offered", "messages.delivered", "messages.duplicates_delivered", "messages.pending",
+    "messages.abandoned", "messages.abandoned_reasons",
+    "latency_s.p50", "latency_s.p95", "latency_s.p99", "latency_s.max",
+    "bits.payload_delivered", "bits.capacity_bound", "utilisation",
+    "trails.total", "trails.used", "frames.sent", "frames.received", "frames.crc_failed",
+)  # fmt: skip
+PROGRESS_EVERY_S = 600.0  # simulated seconds between progress reports
+
+
+@dataclasses.dataclass
+class Timeline:
+    """What the plot draws; recorded only when asked for (it grows with the run)."""
+
+    bursts: list[tuple[float, float, float]] = dataclasses.field(default_factory=list)  # start, end, probe Eb/N0 dB
+    uplink: list[tuple[float, bool]] = dataclasses.field(default_factory=list)  # frame start, intact
+    deliveries: list[float] = dataclasses.field(default_factory=list)
+    queue: list[tuple[float, int]] = dataclasses.field(default_factory=list)  # time, messages pending
+
+
+@dataclasses.dataclass
+class Simulation:
+    report: dict[str, Any]
+    deliveries: list[DeliveryRecord]
+    timeline: Timeline | None
+    link: Link
+    master: MasterStation
+    air: Air
+
+
+class _Ledger:
+    """Follows every offered message from the terminal's side, to check the
+    master's deliveries against: nothing lost, nothing twice."""
+
+    def __init__(self, sender: Sender, timeline: Timeline | None) -> None:
+        self.sender = sender
+        self.timeline = timeline
+        self.offered = 0
+        self.abandoned: dict[str, int] = {}
+        self.in_sender: dict[int, int] = {}  # wire id -> CRC-32C of the payload, while queued
+        self.burst_start: tuple[float, float] | None = None
+
+    def observe(self, now: float, event: ServiceEvent) -> None:
+        if isinstance(event, MessageQueued):
+            self.offered += 1
+            self.in_sender[event.message_id] = crc32c(event.payload)
+        elif isinstance(event, MessageAbandoned):
+            self.offered += 1
+            self.abandoned[event.reason] = self.abandoned.get(event.reason, 0) + 1
+        elif isinstance(event, MessageAcknowledged):
+            self.in_sender.pop(event.message_id, None)
+        elif isinstance(event, MessageRefused):
+            self.in_sender.pop(event.message_id, None)
+            self.abandoned["refused"] = self.abandoned.get("refused", 0) + 1
+        elif self.timeline is not None and isinstance(event, BurstStarted):
+            self.burst_start = (event.time, event.snr_db)
+        elif self.timeline is not None and isinstance(event, BurstEnded) and self.burst_start is not None:
+            self.timeline.bursts.append((self.burst_start[0], event.time, self.burst_start[1]))
+            self.burst_start = None
+        if self.timeline is not None and isinstance(event, (MessageQueued, MessageAcknowledged, MessageRefused, MessageAbandoned)):
+            self.timeline.queue.append((now, self.sender.pending))
+
+
+def _percentile(values: list[float], q: float) -> float | None:
+    """Nearest-rank percentile (the smallest value with at least q of the data at or below it)."""
+    if not values:
+        return None
+    ordered = sorted(values)
+    rank = max(1, math.ceil(q * len(ordered)))
+    return round(ordered[rank - 1], 3)
+
+
+def make_source(kind: str, scenario: Scenario, backlog_size: int = 1000) -> MessageSource:
+    epoch = scenario.start.timestamp()
+    if kind == "demo":
+        return DemoGauge(random.Random(f"gauge-{scenario.seed}"), epoch_unix=epoch)
+    if kind == "backlog":
+        return Backlog(backlog_size, epoch_unix=epoch)
+    raise ValueError(f"unknown source {kind!r}; expected demo or backlog")
+
+
+def simulate(
+    scenario: Scenario,
+    policy: str = "adaptive",
+    *,
+    source: str = "demo",
+    trails: TrailSet | None = None,
+    limits: Limits = DEFAULT_LIMITS,
+    realtime: bool = False,
+    record_timeline: bool = False,
+    on_delivery: Callable[[DeliveryRecord], None] | None = None,
+    progress: Callable[[float, float, int], None] | None = None,
+) -> Simulation:
+    """Run ``scenario`` for its whole period; ``trails`` may be passed to reuse a
+    realisation (the benchmark runs every policy on the same one)."""
+    wall_start = time.perf_counter()
+    if trails is None:
+        trails = TrailSet(scenario)
+    channel = Channel(trails)
+    limits = dataclasses.replace(limits, turnaround=scenario.turnaround_s, burst_silence=scenario.burst_silence_s)
+    timeline = Timeline() if record_timeline else None
+    fragment_policy = by_name(policy, scenario.bit_rate, tau_scale=(scenario.down_mhz / scenario.up_mhz) ** 2)
+    sender = Sender(scenario.terminal_address, scenario.master_address, limits=limits)
+    link = Link(sender, fragment_policy, bit_rate=scenario.bit_rate, duplex=Duplex(scenario.duplex), limits=limits)
+    ledger = _Ledger(sender, timeline)
+    deliveries: list[DeliveryRecord] = []
+
+    def delivered(record: DeliveryRecord) -> None:
+        deliveries.append(record)
+        if timeline is not None:
+            timeline.deliveries.append(record.delivered_s)
+        if on_delivery is not None:
+            on_delivery(record)
+
+    async def main() -> tuple[Air, MasterStation]:
+        loop = asyncio.get_running_loop()
+        origin = loop.time()
+        air = Air(channel, seed=scenario.seed, half_duplex=scenario.duplex == "half", origin=origin, oscillator_ppm=scenario.oscillator_ppm)
+        if timeline is not None:
+            air.on_uplink = lambda t, n, ok, snr: timeline.uplink.append((t, ok))
+        master = MasterStation(
+            air.master,
+            scenario.master_address,
+            limits=dataclasses.replace(limits, max_duplicate_sources=max(limits.max_duplicate_sources, 1)),
+            probe_interval=scenario.probe_interval_s,
+            epoch_unix=scenario.start.timestamp(),
+            origin=origin,
+            sink=delivered,
+        )
+        service = TerminalService(link, air.terminal, make_source(source, scenario), observer=ledger.observe)
+        master.start()
+        end = origin + scenario.duration_s
+        ticker = None
+        if progress is not None:
+
+            def tick() -> None:
+                nonlocal ticker
+                progress(loop.time() - origin, scenario.duration_s, len(deliveries))
+                if loop.time() + PROGRESS_EVERY_S < end:
+                    ticker = loop.call_at(loop.time() + PROGRESS_EVERY_S, tick)
+
+            ticker = loop.call_at(origin + PROGRESS_EVERY_S, tick)
+        await service.run(until=end)
+        if ticker is not None:
+            ticker.cancel()
+        await master.stop()
+        if progress is not None:
+            progress(scenario.duration_s, scenario.duration_s, len(deliveries))
+        return air, master
+
+    if realtime:
+        air, master = asyncio.run(main())
+    else:
+        with asyncio.Runner(loop_factory=VirtualTimeLoop) as runner:
+            air, master = runner.run(main())
+    wall = time.perf_counter() - wall_start
+    report = _report(scenario, policy, trails, air, master, link, ledger, deliveries, wall)
+    return Simulation(report, deliveries, timeline, link, master, air)
+
+
+def _report(scenario: Scenario, policy: str, trails: TrailSet, air: Air, master: MasterStation, link: Link, ledger: _Ledger,
+            deliveries: list[DeliveryRecord], wall: float) -> dict[str, Any]:
+    seen: dict[tuple[int, int, int, float | None], int] = {}
+    for record in deliveries:
+        key = (record.terminal, record.message_id, record.crc32c, record.created_s)
+        seen[key] = seen.get(key, 0) + 1
+    unique = [r for r in deliveries if seen.pop((r.terminal, r.message_id, r.crc32c, r.created_s), 0)]
+    duplicates = len(deliveries) - len(unique)
+    delivered_ids = {(r.message_id, r.crc32c) for r in unique}
+    pending = sum(1 for wire_id, crc in ledger.in_sender.items() if (wire_id, crc) not in delivered_ids)
+    latencies = [r.delivered_s - r.created_s for r in unique if r.created_s is not None]
+    payload_bits = 8 * sum(r.size for r in unique)
+    capacity = trails.capacity_bits("up")
+    sim_seconds = scenario.duration_s
+    tr = trails.trails
+    return {
+        "scenario": scenario.name,
+        "seed": scenario.seed,
+        "policy": policy,
+        "sim_seconds": sim_seconds,
+        "wall_seconds": round(wall, 3),
+        "speedup": round(sim_seconds / wall, 1) if wall > 0 else None,
+        "messages": {
+            "offered": ledger.offered,
+            "delivered": len(unique),
+            "duplicates_delivered": duplicates,
+            "pending": pending,
+            "abandoned": sum(ledger.abandoned.values()),
+            "abandoned_reasons": dict(sorted(ledger.abandoned.items())),
+        },
+        "latency_s": {
+            "p50": _percentile(latencies, 0.50),
+            "p95": _percentile(latencies, 0.95),
+            "p99": _percentile(latencies, 0.99),
+            "max": round(max(latencies), 3) if latencies else None,
+        },
+        "bits": {"payload_delivered": payload_bits, "capacity_bound": round(capacity)},
+        "utilisation": round(payload_bits / capacity, 4) if capacity > 0 else None,
+        "trails": {
+            "total": int((tr.open_s["up"] > 0).sum()) if tr is not None else 0,
+            "used": len(air.used_trails),
+        },
+        "frames": {
+            "sent": air.counters.frames_sent["up"],
+            "received": air.counters.frames_delivered["up"],
+            "crc_failed": master.counters.crc_failed,
+        },
+        "probes": {
+            "emitted_in_openings": air.counters.probes_emitted_in_openings,
+            "heard": air.counters.probes_delivered,
+        },
+        "bursts": link.counters.bursts,
+    }
+
+
+def invariant_holds(report: dict[str, Any]) -> bool:
+    m = report["messages"]
+    return m["offered"] == m["delivered"] + m["pending"] + m["abandoned"] and m["duplicates_delivered"] == 0
