@@ -21,6 +21,7 @@ solicit a fresh verdict.
 
 from __future__ import annotations
 
+import collections
 import dataclasses
 import enum
 from collections.abc import Callable
@@ -32,6 +33,7 @@ from terminal.wire.codec import seal_message
 from terminal.wire.frames import AckBlock, Fragment
 
 FRAGMENT_OVERHEAD = FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES
+OUTCOMES_KEPT = 64  # settled-piece records held for the link to read
 
 
 class Priority(enum.IntEnum):
@@ -111,6 +113,10 @@ class Sender:
         self.counters = SenderCounters()
         self._next_seq = first_id
         self._queue: dict[int, _Outgoing] = {}  # by unwrapped id, in id order
+        self._by_wire_id: dict[int, _Outgoing] = {}  # the same messages by 16-bit id (unique: span < 2^15)
+        self.outcomes: collections.deque[tuple[int, bool]] = collections.deque(maxlen=OUTCOMES_KEPT)
+        """(frame bytes, lost) of each settled piece from :meth:`next_fragment`,
+        newest last, for a fragment policy that learns from them; the link drains it."""
 
     # --- the application's side ------------------------------------------------
 
@@ -127,6 +133,7 @@ class Sender:
             raise UsageError(f"sender already holds {self.limits.max_queued_messages} messages; check can_queue() first")
         message = _Outgoing(self._next_seq, seal_message(payload), Priority(priority), now)
         self._queue[message.seq] = message
+        self._by_wire_id[message.wire_id] = message
         self._next_seq += 1
         self.counters.queued += 1
         return message.wire_id
@@ -256,16 +263,21 @@ class Sender:
         otherwise may never come."""
         for message in self._queue.values():
             if message.in_flight and message.in_flight[0][0] < sent_before:
-                self._forget(message, lambda piece: piece[0] < sent_before)
+                self._settle(message, lambda piece: piece[0] < sent_before)
 
-    def _forget(self, message: _Outgoing, lost: Callable[[tuple[float, int, int]], bool]) -> None:
+    def _settle(self, message: _Outgoing, due: Callable[[tuple[float, int, int]], bool]) -> None:
+        """Settle the in-flight pieces ``due`` says are known: held ones are
+        confirmed, the rest lost (their bytes become unsent again)."""
         keep = []
         for piece in message.in_flight:
-            if lost(piece):
+            if due(piece):
                 _, start, end = piece
+                lost = 0
                 for held_start, held_end in message.acked.gaps(start, end):
                     message.sent.discard(held_start, held_end)
-                    self.counters.presumed_lost_bytes += held_end - held_start
+                    lost += held_end - held_start
+                self.counters.presumed_lost_bytes += lost
+                self.outcomes.append((end - start + FRAGMENT_OVERHEAD, lost > 0))
             else:
                 keep.append(piece)
         message.in_flight = keep
@@ -285,11 +297,12 @@ class Sender:
             self.counters.stray_acks += 1
             return []
         if block.complete:
-            del self._queue[message.seq]
+            self.outcomes.extend((end - start + FRAGMENT_OVERHEAD, False) for _, start, end in message.in_flight)
+            del self._queue[message.seq], self._by_wire_id[message.wire_id]
             self.counters.acknowledged += 1
             return [MessageAcknowledged(message.wire_id, message.created, now)]
         if block.refused:
-            del self._queue[message.seq]
+            del self._queue[message.seq], self._by_wire_id[message.wire_id]
             self.counters.refused += 1
             return [MessageRefused(message.wire_id, message.created, now)]
         size = len(message.sealed)
@@ -300,12 +313,9 @@ class Sender:
         if issued is None:
             message.in_flight = [p for p in message.in_flight if not acked.contains(p[1], p[2])]
         else:
-            self._forget(message, lambda piece: acked.contains(piece[1], piece[2]) or piece[0] <= issued)
+            self._settle(message, lambda piece: acked.contains(piece[1], piece[2]) or piece[0] <= issued)
         return []
 
     def _find(self, wire_id: int) -> _Outgoing | None:
-        for message in self._queue.values():
-            if message.wire_id == wire_id:
-                return message
-        return None
+        return self._by_wire_id.get(wire_id)
 

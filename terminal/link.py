@@ -31,7 +31,7 @@ from terminal.errors import DecodeError, UsageError
 from terminal.fragmentation import FRAGMENT_OVERHEAD, Sender, SenderEvent
 from terminal.limits import DEFAULT_LIMITS, MAX_COMMAND_BYTES, Limits
 from terminal.policy import FragmentPolicy
-from terminal.wire import Ack, AckBlock, Command, Probe, Reply, decode, encode
+from terminal.wire import Ack, AckBlock, Command, Frame, Probe, Reply, decode, encode
 from terminal.wire.formats import ReplyStatus
 
 
@@ -193,6 +193,8 @@ class Link:
         self._last_probe_ours = False
         self._burst_frames = 0
         self._next: bytes | None = None  # frame prepared while classifying
+        self._last_raw: bytes | None = None  # the last frame decoded, and what it decoded to
+        self._last_frame: Frame | None = None
         # command id -> reply frame (None until the application answers); oldest first
         self._commands: OrderedDict[int, bytes | None] = OrderedDict()
         self._replies: list[bytes] = []  # waiting for airtime
@@ -202,11 +204,16 @@ class Link:
     def on_frame(self, arrival: Arrival) -> list[Effect]:
         """A frame the modem heard.  Anything but a valid probe from our master
         is counted and ignored; the terminal does not act on what it cannot trust."""
-        try:
-            frame = decode(arrival.frame)
-        except DecodeError:
-            self.counters.decode_errors += 1
-            return []
+        raw = arrival.frame
+        if raw == self._last_raw:  # the probe stream repeats itself; decoding is pure
+            frame = self._last_frame
+        else:
+            try:
+                frame = decode(raw)
+            except DecodeError:
+                self.counters.decode_errors += 1
+                return []
+            self._last_raw, self._last_frame = raw, frame
         effects: list[Effect] = []
         if isinstance(frame, Ack) and frame.master == self.master:
             self._take_ack(frame.ack, arrival, effects)
@@ -230,6 +237,7 @@ class Link:
         # (acknowledgements ride on every probe); this is what times out a
         # stop-and-wait fragment whose loss no acknowledgement shows.
         self.sender.presume_lost(arrival.time - self.limits.burst_silence)
+        self._report_outcomes()
         self.policy.probe_heard(arrival.time, arrival.snr_db)
         if not ours:
             self.counters.probes_elsewhere += 1
@@ -304,6 +312,7 @@ class Link:
             self.counters.bursts += 1
             self._burst_frames = 0
             self.sender.presume_lost(now)
+            self.sender.outcomes.clear()  # the last burst's tail died with its trail: the decay's loss, not the path's
             self.policy.burst_started(now)
             self.policy.probe_heard(now, snr_db)
             effects.append(BurstStarted(now, snr_db))
@@ -339,6 +348,12 @@ class Link:
             return
         issued = arrival.time - self._airtime(len(arrival.frame)) - self.limits.ack_margin
         effects.extend(self.sender.on_ack(block, arrival.time, issued=issued))
+        self._report_outcomes()
+
+    def _report_outcomes(self) -> None:
+        outcomes = self.sender.outcomes
+        while outcomes:
+            self.policy.fragment_settled(*outcomes.popleft())
 
     def _take_command(self, command_id: int, opcode: int, arguments: bytes, effects: list[Effect]) -> None:
         if command_id in self._commands:

@@ -29,6 +29,9 @@ MIN_PAYLOAD = 8  # bytes; below this a fragment is mostly header (common practic
 DB_PER_NEPER = 10 / math.log(10)  # a power decaying as exp(-t/tau) falls 4.343/tau dB per second
 TAU_RANGE_S = (0.03, 30.0)  # estimates are clamped to plausible trail lifetimes
 MAX_SNR_SAMPLES = 8  # probes kept per burst for the slope fit
+LOSS_MEMORY = 0.97  # weight kept per settled fragment: the loss record spans about 30
+MIN_LOSSES = 0.5  # weighted losses before the record is trusted
+RECENT_SAMPLES = 3  # the short fit, which sees a plateau turn into decay at once
 MIN_FIT_SPAN_S = 0.05  # a slope over less time than this is noise
 SIZE_STEP = math.log(1.01)  # sizes are computed for a in 1 % steps and remembered
 
@@ -43,6 +46,9 @@ class FragmentPolicy(Protocol):
     def probe_heard(self, now: float, snr_db: float) -> None: ...
 
     def payload_bytes(self, now: float) -> int: ...
+
+    def fragment_settled(self, frame_bytes: int, lost: bool) -> None:
+        """An earlier fragment was confirmed or shown lost while the path was live."""
 
 
 def optimal_payload_bits(a_bits: float, overhead_bits: float) -> float:
@@ -69,6 +75,23 @@ def expected_payload_bits(payload_bits: float, a_bits: float, overhead_bits: flo
     return payload_bits / math.expm1((payload_bits + overhead_bits) / a_bits)
 
 
+def _fit(samples: list[tuple[float, float]]) -> float | None:
+    """tau from the least-squares slope of SNR (dB) against time; None without
+    two probes far enough apart."""
+    n = len(samples)
+    if n < 2 or samples[-1][0] - samples[0][0] < MIN_FIT_SPAN_S:
+        return None
+    mean_t = sum(t for t, _ in samples) / n
+    mean_s = sum(s for _, s in samples) / n
+    sxx = sum((t - mean_t) ** 2 for t, _ in samples)
+    sxy = sum((t - mean_t) * (s - mean_s) for t, s in samples)
+    slope = sxy / sxx  # dB per second
+    low, high = TAU_RANGE_S
+    if slope >= -DB_PER_NEPER / high:  # flat or rising: an overdense plateau
+        return high
+    return min(high, max(low, -DB_PER_NEPER / slope))
+
+
 class Fixed:
     """Every fragment carries the same number of payload bytes."""
 
@@ -88,6 +111,9 @@ class Fixed:
 
     def payload_bytes(self, now: float) -> int:
         return self.size
+
+    def fragment_settled(self, frame_bytes: int, lost: bool) -> None:
+        pass
 
 
 class StopAndWait(Fixed):
@@ -122,6 +148,8 @@ class Adaptive:
         self._samples: list[tuple[float, float]] = []
         self._tau_s: float | None = None
         self._fitted = True
+        self._exposure_bits = 0.0  # exponentially weighted air bits of settled fragments
+        self._losses = 0.0  # and how many of them were lost
         self._sizes: dict[int, int] = {}  # a in 1 % steps -> payload bytes; bounded by TAU_RANGE_S
 
     def burst_started(self, now: float) -> None:
@@ -139,24 +167,11 @@ class Adaptive:
         del self._samples[:-MAX_SNR_SAMPLES]
         self._fitted = False  # fitted when a fragment is next sized, not per probe
 
-    def _fit(self) -> float | None:
-        """tau from the least-squares slope of SNR (dB) against time."""
-        n = len(self._samples)
-        if n < 2 or self._samples[-1][0] - self._samples[0][0] < MIN_FIT_SPAN_S:
-            return None
-        mean_t = sum(t for t, _ in self._samples) / n
-        mean_s = sum(s for _, s in self._samples) / n
-        sxx = sum((t - mean_t) ** 2 for t, _ in self._samples)
-        sxy = sum((t - mean_t) * (s - mean_s) for t, s in self._samples)
-        slope = sxy / sxx  # dB per second
-        low, high = TAU_RANGE_S
-        if slope >= -DB_PER_NEPER / high:  # flat or rising: an overdense plateau
-            return high
-        return min(high, max(low, -DB_PER_NEPER / slope))
-
     def _refit(self) -> None:
         if not self._fitted:
-            self._tau_s = self._fit()
+            long, short = _fit(self._samples), _fit(self._samples[-RECENT_SAMPLES:])
+            fits = [f for f in (long, short) if f is not None]
+            self._tau_s = min(fits) if fits else None
             self._fitted = True
 
     @property
@@ -165,8 +180,23 @@ class Adaptive:
         self._refit()
         return (self._tau_s if self._tau_s is not None else self.typical_tau_s) * self.tau_scale
 
+    def fragment_settled(self, frame_bytes: int, lost: bool) -> None:
+        self._exposure_bits = self._exposure_bits * LOSS_MEMORY + 8 * frame_bytes
+        self._losses = self._losses * LOSS_MEMORY + lost
+
+    @property
+    def a_bits(self) -> float:
+        """The survival scale ``a`` of the optimal-length result, in bits: the
+        smaller of the decay's (2 tau R) and the one the live path's recent
+        losses show (air bits per loss), which is what limits fragments on a
+        fading overdense plateau, where the SNR shows no decay."""
+        a_decay = 2 * self.tau_estimate_s * self.bit_rate
+        if self._losses < MIN_LOSSES:
+            return a_decay
+        return min(a_decay, self._exposure_bits / self._losses)
+
     def payload_bytes(self, now: float) -> int:
-        step = round(math.log(2 * self.tau_estimate_s * self.bit_rate) / SIZE_STEP)
+        step = round(math.log(self.a_bits) / SIZE_STEP)
         size = self._sizes.get(step)
         if size is None:
             bits = optimal_payload_bits(math.exp(step * SIZE_STEP), self.overhead_bits)

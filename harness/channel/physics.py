@@ -11,6 +11,7 @@ modulations (any digital-communications textbook).
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -128,18 +129,18 @@ def bit_error_rate(modulation: str, ebn0: ArrayLike) -> Array:
     raise ValueError(f"unknown modulation {modulation!r}")
 
 
-def bit_error_rate_scalar(modulation: str, ebn0: float) -> float:
-    """:func:`bit_error_rate` for one value, with math instead of numpy (the
-    link simulation asks once per frame sample; numpy's per-call cost dominates)."""
-    x = max(ebn0, 0.0)
+def ber_function(modulation: str) -> Callable[[float], float]:
+    """:func:`bit_error_rate` for one value at a time, with math instead of numpy
+    (the link simulation asks once per frame sample; numpy's per-call cost dominates)."""
+    erfc, exp, sqrt = math.erfc, math.exp, math.sqrt
     if modulation == "bpsk":
-        return 0.5 * math.erfc(math.sqrt(x))  # Q(sqrt(2x)) = erfc(sqrt x) / 2
+        return lambda x: 0.5 * erfc(sqrt(x)) if x > 0 else 0.5  # Q(sqrt(2x)) = erfc(sqrt x) / 2
     if modulation == "dpsk":
-        return 0.5 * math.exp(-x)
+        return lambda x: 0.5 * exp(-x) if x > 0 else 0.5
     if modulation == "coherent_fsk":
-        return 0.5 * math.erfc(math.sqrt(x / 2))
+        return lambda x: 0.5 * erfc(sqrt(x / 2)) if x > 0 else 0.5
     if modulation == "noncoherent_fsk":
-        return 0.5 * math.exp(-x / 2)
+        return lambda x: 0.5 * exp(-x / 2) if x > 0 else 0.5
     raise ValueError(f"unknown modulation {modulation!r}")
 
 
