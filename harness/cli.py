@@ -183,9 +183,12 @@ def cmd_bench(args: argparse.Namespace) -> int:
     elif args.what == "reassembly":
         report = bench.reassembly_benchmark(seconds=args.seconds, progress=progress)
         text = bench.format_reassembly(report)
-    else:
+    elif args.what == "channel":
         report = bench.channel_benchmark(progress=progress)
         text = bench.format_channel(report)
+    else:
+        report = bench.link_benchmark(progress=progress)
+        text = bench.format_link(report)
     print(json.dumps(report, indent=2) if args.json else text)
     return 0
 
@@ -281,6 +284,106 @@ def cmd_channel(args: argparse.Namespace) -> int:
     return 0
 
 
+# --- simulate ----------------------------------------------------------------------
+
+
+def _clock(seconds: float) -> str:
+    whole = int(seconds)
+    days, rest = divmod(whole, 86400)
+    text = f"{rest // 3600:02d}:{rest % 3600 // 60:02d}:{rest % 60:02d}"
+    return f"{days}d {text}" if days else text
+
+
+def _simulate_progress() -> Any:
+    if not sys.stderr.isatty():
+        return None
+
+    def show(done: float, total: float, delivered: int) -> None:
+        fraction = min(1.0, done / total) if total else 1.0
+        bar = "#" * int(30 * fraction)
+        end = "\n" if fraction >= 1 else ""
+        print(f"\rsimulating [{bar:<30}] {_clock(done)} of {_clock(total)}, {delivered} delivered", end=end, file=sys.stderr, flush=True)
+
+    return show
+
+
+def _open_output(name: str) -> Any:
+    try:
+        return open(name, "w", encoding="utf-8")
+    except OSError as exc:
+        raise UserError(f"cannot write {name}: {exc.strerror}") from None
+
+
+def cmd_simulate(args: argparse.Namespace) -> int:
+    from harness.channel.geometry import PathError
+    from harness.master import json_lines_sink
+    from harness.simulate import simulate
+    from terminal.errors import UsageError
+    from terminal.policy import by_name
+
+    scenario = _scenario(args)
+    try:
+        by_name(args.policy, scenario.bit_rate)
+    except UsageError as exc:
+        raise UserError(str(exc)) from None
+    for name in (args.json, args.plot, args.deliveries):
+        if name and Path(name).is_dir():
+            raise UserError(f"{name} is a directory; give a file name")
+    deliveries_file = _open_output(args.deliveries) if args.deliveries else None
+    try:
+        run = simulate(
+            scenario,
+            args.policy,
+            record_timeline=bool(args.plot),
+            on_delivery=json_lines_sink(deliveries_file) if deliveries_file else None,
+            progress=_simulate_progress(),
+        )
+    except PathError as exc:
+        raise UserError(str(exc)) from None
+    finally:
+        if deliveries_file:
+            deliveries_file.close()
+    report = run.report
+    if args.json:
+        with _open_output(args.json) as out:
+            json.dump(report, out, indent=2)
+            out.write("\n")
+    if args.plot:
+        from harness.timeline import plot_timeline
+
+        assert run.timeline is not None
+        plot_timeline(run.timeline, run.deliveries, report, Path(args.plot))
+    print(_simulation_table(report))
+    for label, name in (("report", args.json), ("timeline", args.plot), ("deliveries", args.deliveries)):
+        if name:
+            print(f"wrote {label} to {name}", file=sys.stderr)
+    return 0
+
+
+def _fmt_s(value: float | None) -> str:
+    return "-" if value is None else f"{value:,.1f} s"
+
+
+def _simulation_table(r: dict[str, Any]) -> str:
+    m, lat, bits, fr = r["messages"], r["latency_s"], r["bits"], r["frames"]
+    reasons = ", ".join(f"{k} {v}" for k, v in m["abandoned_reasons"].items())
+    utilisation = "-" if r["utilisation"] is None else f"{100 * r['utilisation']:.2f} %"
+    lines = [
+        f"{r['scenario']}  (seed {r['seed']}, policy {r['policy']})",
+        f"simulated {_clock(r['sim_seconds'])} in {r['wall_seconds']:.1f} s of wall time ({r['speedup']:,.0f}x real time)",
+        "",
+        f"  messages   offered {m['offered']:>7,}   delivered {m['delivered']:>7,}   pending {m['pending']:>5,}   "
+        f"abandoned {m['abandoned']:>5,}{f' ({reasons})' if reasons else ''}   delivered twice {m['duplicates_delivered']}",
+        f"  latency    median {_fmt_s(lat['p50'])}   95 % {_fmt_s(lat['p95'])}   99 % {_fmt_s(lat['p99'])}   worst {_fmt_s(lat['max'])}",
+        f"  channel    {r['trails']['total']:,} trails open on the uplink, {r['trails']['used']:,} carried data;"
+        f" capacity bound {bits['capacity_bound'] / 1e6:,.2f} Mbit",
+        f"  payload    {bits['payload_delivered'] / 1e3:,.1f} kbit delivered = {utilisation} of the capacity bound",
+        f"  air        {fr['sent']:,} frames sent, {fr['received']:,} received intact, {fr['crc_failed']:,} failed their CRC;"
+        f" {r['probes']['heard']:,} probes heard in {r['bursts']:,} bursts",
+    ]
+    return "\n".join(lines)
+
+
 def _forecast_table(report: dict[str, Any]) -> str:
     g = report["geometry"]
     lines = [
@@ -358,7 +461,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = commands.add_parser(
         "bench",
-        help="benchmarks: codec, reassembly, channel (figures, side by side with baselines)",
+        help="benchmarks: codec, reassembly, channel, link (figures, side by side with baselines)",
         description=(
             "Benchmarks print figures measured side by side in one run.\n"
             "  codec   encode/decode frames per second of every frame type, next to a\n"
@@ -366,11 +469,14 @@ def build_parser() -> argparse.ArgumentParser:
             "          times slower than the baseline.\n"
             "  reassembly  fragments per second through sender and receiver (with encode and\n"
             "          decode) and framing efficiency, for 16-256 byte fragment payloads.\n"
-            "  channel seconds to generate a year of trails for the demo link (and one day)."
+            "  channel seconds to generate a year of trails for the demo link (and one day).\n"
+            "  link    a backlogged terminal on the demo day, every fragment policy on the same\n"
+            "          trails: efficiency (payload / capacity bound), payload bits per used\n"
+            "          burst, and speedup (simulated seconds per wall second)."
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("what", choices=["codec", "reassembly", "channel"], help="which benchmark")
+    p.add_argument("what", choices=["codec", "reassembly", "channel", "link"], help="which benchmark")
     p.add_argument("--json", action="store_true", help="print the figures as JSON")
     p.add_argument("--seconds", type=float, default=0.6, help="time per measurement (default 0.6)")
     p.set_defaults(handler=cmd_bench)
@@ -394,6 +500,28 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trails", metavar="FILE.jsonl", help="also write every generated trail, one JSON object a line")
     p.add_argument("--by-month", action="store_true", help="add a row per calendar month of the period")
     p.set_defaults(handler=cmd_channel)
+
+    p = commands.add_parser(
+        "simulate",
+        help="run a terminal and a master over the simulated channel (the main job)",
+        description=(
+            "Simulate the demo link (or --scenario FILE) in virtual time: the reference terminal\n"
+            "reports a sensor reading every 15 minutes (40-120 bytes) and the odd alarm, and\n"
+            "talks through the meteor-burst channel to an emulated master that probes,\n"
+            "acknowledges and reassembles.  Prints what was offered, delivered, pending and\n"
+            "abandoned, the latency distribution, and how much of the channel's capacity the\n"
+            "traffic used.  The same seed replays the same run exactly.\n"
+            "Fragment policies: adaptive (default), fixed-N (N payload bytes), stop-and-wait."
+        ),
+        epilog=SAFETY,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    _add_scenario_options(p)
+    p.add_argument("--policy", default="adaptive", metavar="NAME", help="fragment policy: adaptive, fixed-N (8-256) or stop-and-wait")
+    p.add_argument("--json", metavar="FILE", help="write the report as JSON to FILE")
+    p.add_argument("--plot", metavar="FILE.png", help="draw the timeline (bursts, deliveries, queue) to a PNG file")
+    p.add_argument("--deliveries", metavar="FILE.jsonl", help="write every delivered message to FILE, one JSON object a line")
+    p.set_defaults(handler=cmd_simulate)
 
     p = commands.add_parser(
         "docs",

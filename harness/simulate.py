@@ -16,6 +16,8 @@ import dataclasses
 import math
 import random
 import time
+
+import numpy as np
 from collections.abc import Callable
 from typing import Any
 
@@ -51,6 +53,7 @@ class Timeline:
     uplink: list[tuple[float, bool]] = dataclasses.field(default_factory=list)  # frame start, intact
     deliveries: list[float] = dataclasses.field(default_factory=list)
     queue: list[tuple[float, int]] = dataclasses.field(default_factory=list)  # time, messages pending
+    openings: list[tuple[float, float, float]] = dataclasses.field(default_factory=list)  # trail start, peak Eb/N0 dB, open s (uplink)
 
 
 @dataclasses.dataclass
@@ -119,6 +122,7 @@ def simulate(
     policy: str = "adaptive",
     *,
     source: str = "demo",
+    backlog_size: int = 1000,
     trails: TrailSet | None = None,
     limits: Limits = DEFAULT_LIMITS,
     realtime: bool = False,
@@ -162,7 +166,7 @@ def simulate(
             origin=origin,
             sink=delivered,
         )
-        service = TerminalService(link, air.terminal, make_source(source, scenario), observer=ledger.observe)
+        service = TerminalService(link, air.terminal, make_source(source, scenario, backlog_size), observer=ledger.observe)
         master.start()
         end = origin + scenario.duration_s
         ticker = None
@@ -189,6 +193,11 @@ def simulate(
         with asyncio.Runner(loop_factory=VirtualTimeLoop) as runner:
             air, master = runner.run(main())
     wall = time.perf_counter() - wall_start
+    if timeline is not None and trails.trails is not None:
+        tr = trails.trails
+        up = tr.open_s["up"] > 0
+        peak_db = 10 * np.log10(np.maximum(tr.peak_ebn0["up"][up], 1e-12))
+        timeline.openings = list(zip(tr.t[up].tolist(), peak_db.tolist(), tr.open_s["up"][up].tolist(), strict=True))
     report = _report(scenario, policy, trails, air, master, link, ledger, deliveries, wall)
     return Simulation(report, deliveries, timeline, link, master, air)
 
@@ -231,10 +240,7 @@ def _report(scenario: Scenario, policy: str, trails: TrailSet, air: Air, master:
         },
         "bits": {"payload_delivered": payload_bits, "capacity_bound": round(capacity)},
         "utilisation": round(payload_bits / capacity, 4) if capacity > 0 else None,
-        "trails": {
-            "total": int((tr.open_s["up"] > 0).sum()) if tr is not None else 0,
-            "used": len(air.used_trails),
-        },
+        "trails": {"total": len(tr) if tr is not None else 0, "used": len(air.used_trails)},
         "frames": {
             "sent": air.counters.frames_sent["up"],
             "received": air.counters.frames_delivered["up"],

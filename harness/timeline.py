@@ -1,0 +1,73 @@
+"""A simulated period as a picture: bursts, deliveries and the queue, on one time axis."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+from harness.master import DeliveryRecord
+from harness.simulate import Timeline
+
+
+def plot_timeline(timeline: Timeline, deliveries: list[DeliveryRecord], report: dict[str, Any], path: Path) -> None:
+    """Three panels sharing the time axis (hours from the start):
+
+    1. every trail that opened the uplink, at its start, by its peak Eb/N0, its
+       open time as the marker's size (grey), and over them the bursts the
+       terminal worked, by the Eb/N0 of the probe that opened each (red);
+    2. every delivered message at its delivery time, by its latency, with the
+       running count on a second axis;
+    3. messages waiting in the terminal's queue.
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    import matplotlib.ticker
+
+    hours = report["sim_seconds"] / 3600
+    scale = 3600.0
+    fig, axes = plt.subplots(3, 1, figsize=(12, 8), sharex=True, gridspec_kw={"height_ratios": [3, 3, 2]})
+    top, middle, bottom = axes
+
+    if timeline.openings:
+        top.scatter(
+            [o[0] / scale for o in timeline.openings],
+            [o[1] for o in timeline.openings],
+            s=[4 + 6 * min(o[2], 15) for o in timeline.openings],
+            color="0.7",
+            label="trail openings (uplink; size: open time)",
+        )
+    if timeline.bursts:
+        top.scatter([b[0] / scale for b in timeline.bursts], [b[2] for b in timeline.bursts], s=10, color="C3", label="bursts the terminal used")
+    top.legend(loc="upper right", fontsize=8)
+    top.set_ylabel("Eb/N0, dB")
+    top.set_title(
+        f"{report['scenario']}: seed {report['seed']}, policy {report['policy']}; "
+        f"{report['messages']['delivered']} of {report['messages']['offered']} messages delivered, "
+        f"{len(timeline.bursts)} bursts"
+    )
+    top.grid(alpha=0.3)
+
+    timed = [(r.delivered_s / scale, r.delivered_s - r.created_s) for r in deliveries if r.created_s is not None]
+    if timed:
+        middle.scatter([t for t, _ in timed], [lat for _, lat in timed], s=8, color="C1", label="latency")
+        middle.set_yscale("log")
+    middle.set_ylabel("latency, s")
+    middle.grid(alpha=0.3)
+    count = middle.twinx()
+    times = sorted(r.delivered_s / scale for r in deliveries)
+    count.step(times, range(1, len(times) + 1), where="post", color="C2")
+    count.set_ylabel("delivered (running total)", color="C2")
+
+    if timeline.queue:
+        bottom.step([t / scale for t, _ in timeline.queue], [n for _, n in timeline.queue], where="post", color="C3")
+    bottom.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
+    bottom.set_ylabel("queued messages")
+    bottom.set_xlabel("hours from start")
+    bottom.set_xlim(0, hours)
+    bottom.grid(alpha=0.3)
+
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
