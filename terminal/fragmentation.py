@@ -75,6 +75,7 @@ class _Outgoing:
     # Pieces sent by next_fragment and not yet confirmed, as (end of airtime, start, end),
     # oldest first; disjoint, so never more entries than the message has bytes.
     in_flight: list[tuple[float, int, int]] = dataclasses.field(default_factory=list)
+    last_ack: AckBlock | None = None  # the block last applied (probes repeat it)
 
     @property
     def wire_id(self) -> int:
@@ -114,6 +115,7 @@ class Sender:
         self._next_seq = first_id
         self._queue: dict[int, _Outgoing] = {}  # by unwrapped id, in id order
         self._by_wire_id: dict[int, _Outgoing] = {}  # the same messages by 16-bit id (unique: span < 2^15)
+        self._eligible_now: list[_Outgoing] | None = None
         self.outcomes: collections.deque[tuple[int, bool]] = collections.deque(maxlen=OUTCOMES_KEPT)
         """(frame bytes, lost) of each settled piece from :meth:`next_fragment`,
         newest last, for a fragment policy that learns from them; the link drains it."""
@@ -134,6 +136,7 @@ class Sender:
         message = _Outgoing(self._next_seq, seal_message(payload), Priority(priority), now)
         self._queue[message.seq] = message
         self._by_wire_id[message.wire_id] = message
+        self._eligible_now = None
         self._next_seq += 1
         self.counters.queued += 1
         return message.wire_id
@@ -171,13 +174,15 @@ class Sender:
         keeps for one source: sending more would make it evict one and undo
         the work of earlier openings.
         """
-        if not self._queue:
-            return []
-        oldest = next(iter(self._queue))
-        span = self.limits.duplicate_window
-        ready = [m for m in self._queue.values() if m.seq - oldest < span]
-        ready.sort(key=lambda m: (m.priority, m.created, m.seq))
-        return ready[: self.limits.max_partials_per_source]
+        if self._eligible_now is None:  # recomputed only when the queue changes
+            ready: list[_Outgoing] = []
+            if self._queue:
+                oldest = next(iter(self._queue))
+                span = self.limits.duplicate_window
+                ready = [m for m in self._queue.values() if m.seq - oldest < span]
+                ready.sort(key=lambda m: (m.priority, m.created, m.seq))
+            self._eligible_now = ready[: self.limits.max_partials_per_source]
+        return self._eligible_now
 
     def fill(self, budget: int, now: float) -> list[Fragment]:
         """Fragments for an opening that can carry ``budget`` bytes of frames."""
@@ -299,16 +304,22 @@ class Sender:
         if block.complete:
             self.outcomes.extend((end - start + FRAGMENT_OVERHEAD, False) for _, start, end in message.in_flight)
             del self._queue[message.seq], self._by_wire_id[message.wire_id]
+            self._eligible_now = None
             self.counters.acknowledged += 1
             return [MessageAcknowledged(message.wire_id, message.created, now)]
         if block.refused:
             del self._queue[message.seq], self._by_wire_id[message.wire_id]
+            self._eligible_now = None
             self.counters.refused += 1
             return [MessageRefused(message.wire_id, message.created, now)]
-        size = len(message.sealed)
-        message.acked = RangeSet((s, min(e, size)) for s, e in block.ranges if s < size)
-        for start, end in message.acked:  # acknowledged bytes are no longer "sent, unconfirmed"
-            message.sent.discard(start, end)
+        if block != message.last_ack:
+            size = len(message.sealed)
+            message.acked = RangeSet((s, min(e, size)) for s, e in block.ranges if s < size)
+            for start, end in message.acked:  # acknowledged bytes are no longer "sent, unconfirmed"
+                message.sent.discard(start, end)
+            message.last_ack = block
+        elif not message.in_flight or (issued is not None and message.in_flight[0][0] > issued):
+            return []  # a repeat, and nothing it could settle
         acked = message.acked
         if issued is None:
             message.in_flight = [p for p in message.in_flight if not acked.contains(p[1], p[2])]
