@@ -196,7 +196,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
 # --- docs --------------------------------------------------------------------------
 
 
-DOCUMENTS = ("docs/wire.md", "docs/delivery.md", "docs/scenario.md")
+DOCUMENTS = ("docs/wire.md", "docs/delivery.md", "docs/scenario.md", "docs/link.md")
 
 
 def cmd_docs(args: argparse.Namespace) -> int:

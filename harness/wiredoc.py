@@ -104,6 +104,53 @@ def limits_table() -> str:
     return "\n".join(lines) + "\n"
 
 
+def link_table() -> str:
+    """The link's transition table as a grid: a row per state, a column per input."""
+    from terminal.link import TRANSITIONS, Input, State
+
+    lines = ["| state \\ input | " + " | ".join(f"{i.name}" for i in Input) + " |", "| --- |" + " --- |" * len(Input)]
+    for state in State:
+        cells = []
+        for event in Input:
+            nxt, action = TRANSITIONS[(state, event)]
+            if nxt is state and action.name == "NONE":
+                cells.append("·")
+            else:
+                cells.append(f"{nxt.name}<br>{action.name.lower()}" if nxt is not state else action.name.lower())
+        lines.append(f"| **{state.name}** | " + " | ".join(cells) + " |")
+    lines.append("")
+    lines.append("| input | meaning |")
+    lines.append("| --- | --- |")
+    lines += [f"| `{i.name}` | {i.value} |" for i in Input]
+    lines.append("")
+    lines.append("| action | what the link does |")
+    lines.append("| --- | --- |")
+    from terminal.link import Action
+
+    lines += [f"| `{a.name.lower()}` | {a.value} |" for a in Action]
+    return "\n".join(lines) + "\n"
+
+
+def link_diagram() -> str:
+    """The same table as a Mermaid state diagram (rendered by GitHub and most viewers)."""
+    from terminal.link import TRANSITIONS, Action, State
+
+    lines = ["```mermaid", "stateDiagram-v2", f"    [*] --> {State.LISTENING.name}"]
+    for (state, event), (nxt, action) in TRANSITIONS.items():
+        if nxt is state and action is Action.NONE:
+            continue
+        label = event.name if action is Action.NONE else f"{event.name} / {action.name.lower()}"
+        lines.append(f"    {state.name} --> {nxt.name}: {label}")
+    lines.append("```")
+    return "\n".join(lines) + "\n"
+
+
+def _report_table() -> str:
+    from terminal.source import REPORT
+
+    return table(REPORT)
+
+
 def _scenario_table() -> str:
     from harness.channel.scenario import schema_table
 
@@ -113,6 +160,9 @@ def _scenario_table() -> str:
 GENERATORS = {name: (lambda con=con: table(con)) for name, con in SECTIONS.items()} | {
     "limits": limits_table,
     "scenario": _scenario_table,
+    "link-table": link_table,
+    "link-diagram": link_diagram,
+    "report": _report_table,
 }
 
 

@@ -38,7 +38,7 @@ REPORT_HEADER = Struct(
     "created_ms" / Int16ub * "creation time, milliseconds past created_s",
 )
 REPORT = Struct(
-    "header" / REPORT_HEADER,
+    *REPORT_HEADER.subcons,
     "readings" / GreedyRange(Int16sb) * "sensor readings, signed 16-bit, to the end",
 )
 """The whole report; readings are packed and unpacked as one array (``struct``,

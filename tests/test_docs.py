@@ -12,7 +12,7 @@ from harness import wiredoc
 DOCS = Path(__file__).resolve().parent.parent / "docs"
 
 
-@pytest.mark.parametrize("name", ["wire.md", "delivery.md", "scenario.md"])
+@pytest.mark.parametrize("name", ["wire.md", "delivery.md", "scenario.md", "link.md"])
 def test_document_is_up_to_date(name: str) -> None:
     text = (DOCS / name).read_text(encoding="utf-8")
     assert wiredoc.render(text) == text, f"docs/{name} is stale: run `ionotrail docs`"
@@ -20,7 +20,7 @@ def test_document_is_up_to_date(name: str) -> None:
 
 def test_every_generator_has_a_table() -> None:
     names: set[str] = set()
-    for name in ("wire.md", "delivery.md", "scenario.md"):
+    for name in ("wire.md", "delivery.md", "scenario.md", "link.md"):
         names |= set(re.findall(r"<!-- generated: ([a-z-]+) -->", (DOCS / name).read_text(encoding="utf-8")))
     assert names == set(wiredoc.GENERATORS)
 
