@@ -41,6 +41,7 @@ class AirCounters:
     probes_emitted_in_openings: int = 0
     probes_delivered: int = 0
     probes_unheard: int = 0  # intact but the terminal was deaf (receiver off or transmitting half duplex)
+    probes_filtered: int = 0  # intact but removed by a fault hook
 
 
 class Air:
@@ -66,6 +67,9 @@ class Air:
         """Observer of every uplink frame: (start time, bytes, arrived intact, Eb/N0 dB)."""
         self.on_probe: Callable[[float, float], None] | None = None
         """Observer of every probe the terminal heard: (time, Eb/N0 dB)."""
+        self.probe_filter: Callable[[float, bytes], bool] | None = None
+        """Fault hook: a probe that arrived intact reaches the terminal only if
+        this returns True for (arrival time, frame); None passes every probe."""
         self.master = SimulatedPort(self, "master")
         self.terminal = SimulatedPort(self, "terminal")
         self._windows = self._openings("down")
@@ -186,7 +190,9 @@ class Air:
         self.counters.probes_emitted_in_openings += 1
         bits = 8 * len(frame)
         if self.rng.random() < self.channel.success_probability("down", emit, bits):
-            if self.terminal.hears(emit):
+            if self.probe_filter is not None and not self.probe_filter(end, frame):
+                self.counters.probes_filtered += 1
+            elif self.terminal.hears(emit):
                 strongest = self.channel.strongest("down", emit)
                 snr_db = 10 * math.log10(strongest[1]) if strongest else -math.inf
                 self.counters.probes_delivered += 1

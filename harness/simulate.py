@@ -108,12 +108,14 @@ def _percentile(values: list[float], q: float) -> float | None:
     return round(ordered[rank - 1], 3)
 
 
-def make_source(kind: str, scenario: Scenario, backlog_size: int = 1000) -> MessageSource:
-    epoch = scenario.start.timestamp()
+def make_source(kind: str, scenario: Scenario, backlog_size: int = 1000, origin: float = 0.0) -> MessageSource:
+    """A built-in message source whose clock reads loop time; ``origin`` is the
+    loop time of the scenario's start."""
+    epoch = scenario.start.timestamp() - origin
     if kind == "demo":
-        return DemoGauge(random.Random(f"gauge-{scenario.seed}"), epoch_unix=epoch)
+        return DemoGauge(random.Random(f"gauge-{scenario.seed}"), epoch_unix=epoch, start=origin)
     if kind == "backlog":
-        return Backlog(backlog_size, epoch_unix=epoch)
+        return Backlog(backlog_size, epoch_unix=epoch, start=origin)
     raise ValueError(f"unknown source {kind!r}; expected demo or backlog")
 
 
@@ -121,8 +123,10 @@ def simulate(
     scenario: Scenario,
     policy: str = "adaptive",
     *,
-    source: str = "demo",
+    source: str | MessageSource = "demo",
     backlog_size: int = 1000,
+    seconds: float | None = None,
+    configure_air: Callable[[Air], None] | None = None,
     trails: TrailSet | None = None,
     limits: Limits = DEFAULT_LIMITS,
     realtime: bool = False,
@@ -130,9 +134,12 @@ def simulate(
     on_delivery: Callable[[DeliveryRecord], None] | None = None,
     progress: Callable[[float, float, int], None] | None = None,
 ) -> Simulation:
-    """Run ``scenario`` for its whole period; ``trails`` may be passed to reuse a
-    realisation (the benchmark runs every policy on the same one)."""
+    """Run ``scenario`` for its whole period (or ``seconds``); ``trails`` may be
+    passed to reuse a realisation (the benchmark runs every policy on the same
+    one) or to give hand-made openings; ``source`` is ``"demo"``, ``"backlog"``
+    or any :class:`MessageSource`; ``configure_air`` may install fault hooks."""
     wall_start = time.perf_counter()
+    duration = scenario.duration_s if seconds is None else float(seconds)
     if trails is None:
         trails = TrailSet(scenario)
     channel = Channel(trails)
@@ -157,6 +164,8 @@ def simulate(
         air = Air(channel, seed=scenario.seed, half_duplex=scenario.duplex == "half", origin=origin, oscillator_ppm=scenario.oscillator_ppm)
         if timeline is not None:
             air.on_uplink = lambda t, n, ok, snr: timeline.uplink.append((t, ok))
+        if configure_air is not None:
+            configure_air(air)
         master = MasterStation(
             air.master,
             scenario.master_address,
@@ -166,15 +175,16 @@ def simulate(
             origin=origin,
             sink=delivered,
         )
-        service = TerminalService(link, air.terminal, make_source(source, scenario, backlog_size), observer=ledger.observe)
+        app = make_source(source, scenario, backlog_size, origin) if isinstance(source, str) else source
+        service = TerminalService(link, air.terminal, app, observer=ledger.observe)
         master.start()
-        end = origin + scenario.duration_s
+        end = origin + duration
         ticker = None
         if progress is not None:
 
             def tick() -> None:
                 nonlocal ticker
-                progress(loop.time() - origin, scenario.duration_s, len(deliveries))
+                progress(loop.time() - origin, duration, len(deliveries))
                 if loop.time() + PROGRESS_EVERY_S < end:
                     ticker = loop.call_at(loop.time() + PROGRESS_EVERY_S, tick)
 
@@ -184,7 +194,7 @@ def simulate(
             ticker.cancel()
         await master.stop()
         if progress is not None:
-            progress(scenario.duration_s, scenario.duration_s, len(deliveries))
+            progress(duration, duration, len(deliveries))
         return air, master
 
     if realtime:
@@ -198,12 +208,12 @@ def simulate(
         up = tr.open_s["up"] > 0
         peak_db = 10 * np.log10(np.maximum(tr.peak_ebn0["up"][up], 1e-12))
         timeline.openings = list(zip(tr.t[up].tolist(), peak_db.tolist(), tr.open_s["up"][up].tolist(), strict=True))
-    report = _report(scenario, policy, trails, air, master, link, ledger, deliveries, wall)
+    report = _report(scenario, policy, trails, air, master, link, ledger, deliveries, wall, duration)
     return Simulation(report, deliveries, timeline, link, master, air)
 
 
 def _report(scenario: Scenario, policy: str, trails: TrailSet, air: Air, master: MasterStation, link: Link, ledger: _Ledger,
-            deliveries: list[DeliveryRecord], wall: float) -> dict[str, Any]:
+            deliveries: list[DeliveryRecord], wall: float, sim_seconds: float) -> dict[str, Any]:
     seen: dict[tuple[int, int, int, float | None], int] = {}
     for record in deliveries:
         key = (record.terminal, record.message_id, record.crc32c, record.created_s)
@@ -215,7 +225,6 @@ def _report(scenario: Scenario, policy: str, trails: TrailSet, air: Air, master:
     latencies = [r.delivered_s - r.created_s for r in unique if r.created_s is not None]
     payload_bits = 8 * sum(r.size for r in unique)
     capacity = trails.capacity_bits("up")
-    sim_seconds = scenario.duration_s
     tr = trails.trails
     return {
         "scenario": scenario.name,

@@ -21,7 +21,7 @@ from typing import Protocol
 
 from construct import ConstructError, Enum, GreedyRange, Int8ub, Int16sb, Int16ub, Int32ub, StreamError, Struct
 
-from terminal.errors import DecodeError, Reason, UsageError
+from terminal.errors import BadField, UsageError
 from terminal.fragmentation import Priority
 from terminal.wire.formats import ReplyStatus
 
@@ -74,7 +74,7 @@ def report_created(payload: bytes) -> float | None:
 def decode_report(payload: bytes) -> dict[str, object]:
     """The fields of a demo report; :class:`DecodeError` when it is not one."""
     if report_created(payload) is None:
-        raise DecodeError(Reason.BAD_FIELD, "not a demo report: a 9-byte header then 16-bit readings")
+        raise BadField("not a demo report: a 9-byte header then 16-bit readings")
     header = REPORT_HEADER.parse(payload[:HEADER_BYTES])
     body = payload[HEADER_BYTES:]
     return {
@@ -163,11 +163,11 @@ class Backlog:
     """An application that always has more to send: the queue never empties,
     so a measurement sees the protocol, not the offered load."""
 
-    def __init__(self, size: int, *, epoch_unix: float = 0.0, every_s: float = 5.0) -> None:
+    def __init__(self, size: int, *, epoch_unix: float = 0.0, every_s: float = 5.0, start: float = 0.0) -> None:
         if size < HEADER_BYTES + 2 or not every_s > 0:
             raise UsageError(f"backlog messages need at least {HEADER_BYTES + 2} bytes and a positive refill interval")
         self.size, self.epoch_unix, self.every_s = size, epoch_unix, every_s
-        self._next = 0.0
+        self._next = start
         self._sequence = 0
 
     def next_due(self) -> float | None:

@@ -20,6 +20,7 @@ and grows as q^(1/2) above it; overdense fading is a seeded two-ray process.
 from __future__ import annotations
 
 import bisect
+import copy
 import dataclasses
 import math
 from collections.abc import Callable
@@ -405,6 +406,53 @@ def _envelope_at(row: _Trail, t: float) -> float:
     if age < hold:
         return peak * (1 + 2 * f * math.cos(2 * math.pi * fade_hz * age + phase) + f * f) / (1 + f * f)
     return peak * math.exp(-(age - hold) / tau)
+
+
+@dataclasses.dataclass(frozen=True)
+class Opening:
+    """A hand-made trail, for tests and worked examples: it starts at ``t`` (s),
+    holds its peak ``hold`` seconds (no fading), then decays with ``tau``."""
+
+    t: float
+    peak_db: float
+    tau: float
+    hold: float = 0.0
+    peak_db_down: float | None = None  # default: the same as the uplink
+
+
+def with_openings(trail_set: TrailSet, openings: list[Opening]) -> TrailSet:
+    """A copy of ``trail_set`` (its scenario and geometry) whose trails are exactly ``openings``."""
+    ordered = sorted(openings, key=lambda o: o.t)
+    n = len(ordered)
+    out = copy.copy(trail_set)
+    peak = {
+        "up": np.array([10 ** (o.peak_db / 10) for o in ordered]),
+        "down": np.array([10 ** ((o.peak_db if o.peak_db_down is None else o.peak_db_down) / 10) for o in ordered]),
+    }
+    tau = np.array([o.tau for o in ordered])
+    hold = np.array([o.hold for o in ordered])
+    open_s = {}
+    for d in DIRECTIONS:
+        margin = np.log(np.maximum(peak[d] / trail_set.directions[d].ebn0_threshold, 1.0))
+        open_s[d] = np.where(peak[d] > trail_set.directions[d].ebn0_threshold, hold + tau * margin, 0.0)
+    zeros = np.zeros(n)
+    out.trails = Trails(
+        t=np.array([o.t for o in ordered]),
+        kind=np.where(hold > 0, OVERDENSE, 0).astype(np.int16),
+        height_km=np.full(n, 95.0),
+        q=zeros,
+        overdense=hold > 0,
+        peak_ebn0=peak,
+        tau={d: tau for d in DIRECTIONS},
+        hold={d: hold for d in DIRECTIONS},
+        open_s=open_s,
+        doppler_hz={d: zeros for d in DIRECTIONS},
+        fade_depth=zeros,
+        fade_hz=np.ones(n),
+        fade_phase=zeros,
+    )
+    out.generated = n
+    return out
 
 
 class Channel:
