@@ -187,7 +187,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
         report = bench.channel_benchmark(progress=progress)
         text = bench.format_channel(report)
     else:
-        report = bench.link_benchmark(progress=progress)
+        report = bench.link_benchmark(hours=args.hours, progress=progress)
         text = bench.format_link(report)
     print(json.dumps(report, indent=2) if args.json else text)
     return 0
@@ -329,6 +329,10 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     for name in (args.json, args.plot, args.deliveries):
         if name and Path(name).is_dir():
             raise UserError(f"{name} is a directory; give a file name")
+        if name and not Path(name).resolve().parent.is_dir():
+            raise UserError(f"cannot write {name}: no such directory {Path(name).resolve().parent}")
+    # Outputs are opened before the run, so a bad path fails at once, not after it.
+    report_file = _open_output(args.json) if args.json else None
     deliveries_file = _open_output(args.deliveries) if args.deliveries else None
     try:
         run = simulate(
@@ -340,14 +344,18 @@ def cmd_simulate(args: argparse.Namespace) -> int:
         )
     except PathError as exc:
         raise UserError(str(exc)) from None
+    except BaseException:
+        if report_file:
+            report_file.close()
+        raise
     finally:
         if deliveries_file:
             deliveries_file.close()
     report = run.report
-    if args.json:
-        with _open_output(args.json) as out:
-            json.dump(report, out, indent=2)
-            out.write("\n")
+    if report_file:
+        with report_file:
+            json.dump(report, report_file, indent=2)
+            report_file.write("\n")
     if args.plot:
         from harness.timeline import plot_timeline
 
@@ -479,6 +487,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("what", choices=["codec", "reassembly", "channel", "link"], help="which benchmark")
     p.add_argument("--json", action="store_true", help="print the figures as JSON")
     p.add_argument("--seconds", type=float, default=0.6, help="time per measurement (default 0.6)")
+    p.add_argument("--hours", type=float, default=24.0, help="link: simulated hours of the demo day (default 24)")
     p.set_defaults(handler=cmd_bench)
 
     p = commands.add_parser(

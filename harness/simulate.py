@@ -127,6 +127,7 @@ def simulate(
     backlog_size: int = 1000,
     seconds: float | None = None,
     configure_air: Callable[[Air], None] | None = None,
+    master_commands: list[tuple[int, int, bytes]] = (),  # type: ignore[assignment]
     trails: TrailSet | None = None,
     limits: Limits = DEFAULT_LIMITS,
     realtime: bool = False,
@@ -137,7 +138,8 @@ def simulate(
     """Run ``scenario`` for its whole period (or ``seconds``); ``trails`` may be
     passed to reuse a realisation (the benchmark runs every policy on the same
     one) or to give hand-made openings; ``source`` is ``"demo"``, ``"backlog"``
-    or any :class:`MessageSource`; ``configure_air`` may install fault hooks."""
+    or any :class:`MessageSource`; ``configure_air`` may install fault hooks;
+    ``master_commands`` are (terminal, opcode, arguments) the master sends from the start."""
     wall_start = time.perf_counter()
     duration = scenario.duration_s if seconds is None else float(seconds)
     if trails is None:
@@ -178,6 +180,8 @@ def simulate(
         app = make_source(source, scenario, backlog_size, origin) if isinstance(source, str) else source
         service = TerminalService(link, air.terminal, app, observer=ledger.observe)
         master.start()
+        for terminal, opcode, arguments in master_commands:
+            master.command(terminal, opcode, arguments)
         end = origin + duration
         ticker = None
         if progress is not None:

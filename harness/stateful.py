@@ -46,7 +46,7 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
         super().__init__()
         self.now = 0.0
         self.uplink: list[bytes] = []
-        self.downlink: list[bytes] = []
+        self.downlink: list[tuple[bytes, float]] = []  # acknowledgement frames and when they were issued
         self.queued: dict[int, bytes] = {}  # queue order -> payload
         self.order_of_id: dict[int, int] = {}  # wire id -> queue order, while pending
         self.delivered: dict[int, int] = {}  # queue order -> times delivered
@@ -85,6 +85,19 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
         self.uplink += [encode(f) for f in self.sender.fill(budget, self.now)]
         del self.uplink[:-MAX_IN_FLIGHT]
 
+    @rule(size=st.integers(1, 300), airtime=st.floats(0, 1))
+    def send_fragment(self, size: int, airtime: float) -> None:
+        """One fragment of a burst, the way the burst link asks for them."""
+        fragment = self.sender.next_fragment(size, self.now + airtime)
+        if fragment is not None:
+            self.uplink.append(encode(fragment))
+            del self.uplink[:-MAX_IN_FLIGHT]
+
+    @rule(back=st.floats(0, 10))
+    def presume_lost(self, back: float) -> None:
+        """A new burst starts: the last one's unconfirmed tail counts as lost."""
+        self.sender.presume_lost(self.now - back)
+
     @precondition(lambda self: self.uplink)
     @rule(pick=st.integers(0, 1 << 16), keep_copy=st.booleans())
     def deliver_fragment(self, pick: int, keep_copy: bool) -> None:
@@ -113,8 +126,8 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
     @rule(pick=st.integers(0, 1 << 16), keep_copy=st.booleans())
     def deliver_ack(self, pick: int, keep_copy: bool) -> None:
         index = pick % len(self.downlink)
-        frame = self.downlink[index] if keep_copy else self.downlink.pop(index)
-        self._acknowledge(frame)
+        frame, issued = self.downlink[index] if keep_copy else self.downlink.pop(index)
+        self._acknowledge(frame, issued)
 
     @precondition(lambda self: self.downlink)
     @rule(pick=st.integers(0, 1 << 16))
@@ -148,7 +161,7 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
             assert order is None or self.delivered.get(order), "complete acknowledgement for an undelivered message"
         elif not ack.refused:
             self._check_claims(ack.message_id, ack.ranges)
-        self.downlink.append(encode(Ack(MASTER, ack)))
+        self.downlink.append((encode(Ack(MASTER, ack)), self.now))
         del self.downlink[:-MAX_IN_FLIGHT]
 
     def _check_claims(self, wire_id: int, ranges: tuple[tuple[int, int], ...]) -> None:
@@ -161,10 +174,12 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
         for start, end in ranges:
             assert self.receiver.held_bytes(SOURCE, wire_id, start, end) == sealed[start:end]
 
-    def _acknowledge(self, frame: bytes) -> None:
+    def _acknowledge(self, frame: bytes, issued: float | None = None) -> None:
+        """Apply an acknowledgement; with ``issued``, the sender also infers losses
+        from it (wrongly, when the air reordered frames: that costs resends only)."""
         ack = decode(frame)
         assert isinstance(ack, Ack)
-        for outcome in self.sender.on_ack(ack.ack, self.now):
+        for outcome in self.sender.on_ack(ack.ack, self.now, issued=issued):
             order = self.order_of_id.pop(outcome.message_id)
             if isinstance(outcome, MessageRefused):
                 self.refused.add(order)
@@ -192,8 +207,8 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
             return
         for frame in self.uplink:
             self._receive(frame)
-        for frame in self.downlink:
-            self._acknowledge(frame)
+        for frame, issued in self.downlink:
+            self._acknowledge(frame, issued)
         self.uplink, self.downlink = [], []
         for _ in range(2000):
             if not self.sender.pending:
@@ -203,7 +218,7 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
             for frame in frames:
                 self._receive(frame)
             acks, self.downlink = self.downlink, []
-            for frame in acks:
+            for frame, _ in acks:
                 self._acknowledge(frame)
             self.now += 5.0
         counters = self.receiver.counters

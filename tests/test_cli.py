@@ -85,3 +85,53 @@ def test_bench_codec_json_keys(capsys: pytest.CaptureFixture[str]) -> None:
 def test_no_command_prints_help() -> None:
     result = run()
     assert result.returncode == 2 and "decode" in result.stdout
+
+
+def test_simulate_writes_report_deliveries_and_plot(tmp_path: object) -> None:
+    from pathlib import Path
+
+    out = Path(str(tmp_path))
+    result = run(
+        "simulate", "--hours", "3", "--seed", "4", "--policy", "fixed-128",
+        "--json", str(out / "r.json"), "--deliveries", str(out / "d.jsonl"), "--plot", str(out / "t.png"),
+    )  # fmt: skip
+    assert result.returncode == 0, result.stderr
+    assert "delivered" in result.stdout and "capacity bound" in result.stdout
+    report = json.loads((out / "r.json").read_text())
+    assert report["policy"] == "fixed-128" and report["seed"] == 4 and report["sim_seconds"] == 3 * 3600
+    m = report["messages"]
+    assert m["offered"] == m["delivered"] + m["pending"] + m["abandoned"] and m["duplicates_delivered"] == 0
+    lines = [json.loads(line) for line in (out / "d.jsonl").read_text().splitlines()]
+    assert len(lines) == m["delivered"]
+    assert set(lines[0]) == {"terminal", "message_id", "created_s", "delivered_s", "latency_s", "size", "crc32c"}
+    assert all(r["delivered_s"] >= r["created_s"] for r in lines)
+    assert (out / "t.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_simulate_bad_input_is_one_line() -> None:
+    for args, expected in (
+        (["--policy", "fixed-999"], "fixed fragment size must be 8 to 256"),
+        (["--policy", "greedy"], "unknown fragment policy"),
+        (["--plot", "/nonexistent/dir/t.png", "--hours", "0.1"], "no such directory"),
+        (["--set", "protocol.duplex=quarter"], "protocol.duplex"),
+        (["--json", "/nonexistent/dir/r.json", "--hours", "0.1"], "cannot write"),
+    ):
+        result = run("simulate", *args)
+        assert result.returncode == 2, (args, result.stderr)
+        assert expected in result.stderr and "Traceback" not in result.stderr
+        assert len(result.stderr.strip().splitlines()) == 1
+
+
+def test_simulate_help_carries_the_safety_note() -> None:
+    result = run("simulate", "--help")
+    assert result.returncode == 0 and "authorisation" in result.stdout and "--deliveries" in result.stdout
+
+
+def test_bench_link_json_keys(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["bench", "link", "--json", "--hours", "0.5"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    policies = report["policies"]
+    assert {"adaptive", "stop-and-wait", "fixed-64"} <= set(policies)
+    for row in policies.values():
+        assert set(row) >= {"efficiency", "bits_per_burst", "speedup"}
+        assert 0 <= row["efficiency"] <= 1 and row["speedup"] > 0

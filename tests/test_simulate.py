@@ -1,0 +1,177 @@
+"""The main job end to end: terminal service, simulated air and master, over virtual time."""
+
+from __future__ import annotations
+
+import json
+import math
+import random
+
+import pytest
+
+from harness.channel import scenario as scenarios
+from harness.channel.model import Opening, TrailSet, with_openings
+from harness.simulate import REPORT_KEYS, invariant_holds, simulate
+from terminal.crc import crc32c
+from terminal.fragmentation import Priority
+from terminal.limits import Limits
+from terminal.source import SET_INTERVAL, DemoGauge
+from terminal.wire import Probe, ReplyStatus, decode
+
+
+class Messages:
+    """An application with a fixed set of messages, all due at the start."""
+
+    def __init__(self, *sizes: int) -> None:
+        self.payloads = [bytes([n + 1]) * size for n, size in enumerate(sizes)]
+        self._due: float | None = 0.0
+
+    def next_due(self) -> float | None:
+        return self._due
+
+    def take(self, now: float, room: int) -> list[tuple[bytes, Priority]]:
+        self._due = None
+        return [(p, Priority.ROUTINE) for p in self.payloads]
+
+    def command(self, opcode: int, arguments: bytes) -> tuple[ReplyStatus, bytes]:
+        return ReplyStatus.UNKNOWN_OPCODE, b""
+
+
+def short_scenario(hours: float = 0.01) -> scenarios.Scenario:
+    return scenarios.load(None, [f"scenario.duration_hours={hours}"])
+
+
+def openings(s: scenarios.Scenario, *items: Opening) -> TrailSet:
+    return with_openings(TrailSet(s), list(items))
+
+
+def flat(report: dict[str, object], prefix: str = "") -> dict[str, object]:
+    out: dict[str, object] = {}
+    for key, value in report.items():
+        if isinstance(value, dict) and key != "abandoned_reasons":
+            out |= flat(value, f"{prefix}{key}.")
+        else:
+            out[prefix + key] = value
+    return out
+
+
+@pytest.fixture(scope="module")
+def six_hours() -> dict[str, object]:
+    return simulate(short_scenario(6.0)).report
+
+
+def test_report_has_every_key_and_the_invariant_holds(six_hours: dict[str, object]) -> None:
+    keys = flat(six_hours)
+    assert set(REPORT_KEYS) <= set(keys)
+    assert invariant_holds(six_hours)
+    messages = six_hours["messages"]
+    assert isinstance(messages, dict) and messages["offered"] >= 24 and messages["delivered"] > 0
+    json.dumps(six_hours)  # plain JSON all the way down
+
+
+def test_the_same_seed_replays_exactly(six_hours: dict[str, object]) -> None:
+    again = simulate(short_scenario(6.0)).report
+    drop = {"wall_seconds", "speedup"}
+    assert {k: v for k, v in six_hours.items() if k not in drop} == {k: v for k, v in again.items() if k not in drop}
+    other = simulate(scenarios.load(None, ["scenario.duration_hours=6", "scenario.seed=2"])).report
+    assert other["messages"] != six_hours["messages"] or other["frames"] != six_hours["frames"]
+
+
+def test_a_day_without_trails_delivers_nothing_and_loses_nothing() -> None:
+    s = short_scenario(24.0)
+    run = simulate(s, trails=openings(s), limits=Limits(max_queued_messages=200))
+    m = run.report["messages"]
+    assert m["delivered"] == 0 and m["abandoned"] == 0
+    assert m["pending"] == m["offered"] >= 96
+    assert run.report["frames"] == {"sent": 0, "received": 0, "crc_failed": 0}
+    assert run.link.counters.probes_heard == 0
+    assert invariant_holds(run.report)
+
+
+def test_a_burst_closing_mid_fragment_loses_only_that_fragment() -> None:
+    # One strong opening (30 dB, no fading) that holds 1.0 s and then collapses
+    # (tau 2 ms); 256-byte fragments take 0.44 s each, so the third one is on the
+    # air when the path closes.
+    s = short_scenario()
+    close = 10.0 + 1.0 + 0.002 * math.log(10 ** (30 / 10) / 10 ** (9.59 / 10))
+    frames: list[tuple[float, int, bool]] = []
+    run = simulate(
+        s,
+        "fixed-256",
+        source=Messages(3000),
+        trails=openings(s, Opening(10.0, 30.0, 0.002, hold=1.0)),
+        seconds=30.0,
+        configure_air=lambda air: setattr(air, "on_uplink", lambda t, n, ok, snr: frames.append((t, n, ok))),
+    )
+    bit_time = 1 / s.bit_rate
+    before = [f for f in frames if f[0] + 8 * f[1] * bit_time <= close]
+    straddling = [f for f in frames if f[0] < close < f[0] + 8 * f[1] * bit_time]
+    assert len(before) == 2 and all(ok for _, _, ok in before)
+    assert len(straddling) == 1 and not straddling[0][2]
+    # The master holds exactly the bytes of the fragments that ended before the close.
+    held = run.master.reassembler.held((False, 0x0A31, 7), 0)
+    assert held == ((0, 512),)
+    assert run.report["messages"]["pending"] == 1 and invariant_holds(run.report)
+
+
+def test_lost_acknowledgements_cause_retransmission_not_double_delivery() -> None:
+    # Two openings; in the first every probe that carries an acknowledgement is
+    # lost, so the terminal cannot tell what arrived and sends it all again.
+    s = short_scenario()
+    def lose_acks_in_first_opening(air: object) -> None:
+        def keep(t: float, frame: bytes) -> bool:
+            probe = decode(frame)
+            return not (isinstance(probe, Probe) and probe.ack is not None and t < 20.0)
+
+        air.probe_filter = keep  # type: ignore[attr-defined]
+
+    run = simulate(
+        s,
+        "fixed-128",
+        source=Messages(100, 150, 120),
+        trails=openings(s, Opening(10.0, 30.0, 0.3, hold=2.0), Opening(25.0, 30.0, 0.3, hold=2.0)),
+        seconds=35.0,
+        configure_air=lose_acks_in_first_opening,
+    )
+    report = run.report
+    assert run.air.counters.probes_filtered > 0
+    assert report["messages"]["delivered"] == 3 and report["messages"]["duplicates_delivered"] == 0
+    assert len(run.deliveries) == 3, "every message reached the master once"
+    assert run.link.sender.counters.presumed_lost_bytes > 0, "unconfirmed bytes were sent again"
+    assert run.master.reassembler.counters.duplicate_fragments > 0, "the master saw the repeats and kept one copy"
+    assert run.link.sender.pending == 0 and invariant_holds(report)
+    assert sorted(r.crc32c for r in run.deliveries) == sorted(crc32c(p) for p in Messages(100, 150, 120).payloads)
+
+
+def test_real_time_and_virtual_time_deliver_the_same() -> None:
+    """The same service, air and master on asyncio's own loop in real time (3 s of
+    wall clock) and on the virtual-time loop: the same messages arrive."""
+    s = short_scenario()
+    trails = openings(s, Opening(0.5, 30.0, 0.005, hold=0.8), Opening(1.8, 30.0, 0.005, hold=0.8))
+    runs = [simulate(s, "adaptive", source=Messages(200, 200, 200, 200), trails=trails, seconds=3.0, realtime=rt) for rt in (False, True)]
+    virtual, real = ([(r.message_id, r.size, r.crc32c) for r in run.deliveries] for run in runs)
+    assert len(virtual) == 4
+    assert virtual == real
+    assert runs[1].report["wall_seconds"] >= 3.0 > runs[0].report["wall_seconds"]
+
+
+def test_half_duplex_and_stop_and_wait_still_deliver_everything() -> None:
+    s = short_scenario()
+    trails = openings(s, *(Opening(10.0 + 20 * k, 25.0, 0.4, hold=3.0) for k in range(4)))
+    for policy, duplex in (("stop-and-wait", "full"), ("adaptive", "half")):
+        scenario = scenarios.load(None, ["scenario.duration_hours=0.03", f"protocol.duplex={duplex}"])
+        run = simulate(scenario, policy, source=Messages(300, 40, 500), trails=trails, seconds=100.0)
+        assert run.report["messages"]["delivered"] == 3, (policy, duplex, run.report["messages"])
+        assert invariant_holds(run.report)
+
+
+def test_a_command_reaches_the_demo_gauge_once() -> None:
+    """A master command rides on probes until the terminal's reply comes back;
+    the terminal executes it once however often it hears it."""
+    s = short_scenario()
+    trails = openings(s, Opening(5.0, 30.0, 0.3, hold=2.0), Opening(15.0, 30.0, 0.3, hold=2.0))
+    gauge = DemoGauge(random.Random(1), interval_s=3600.0)
+    run = simulate(s, source=gauge, trails=trails, seconds=25.0, master_commands=[(0x0A31, SET_INTERVAL, (900).to_bytes(4, "big"))])
+    assert gauge.interval_s == 900.0
+    assert [(r.terminal, r.status) for r in run.master.replies] == [(0x0A31, int(ReplyStatus.OK))]
+    assert run.link.counters.commands_executed == 1
+    assert run.link.counters.commands_repeated > 0, "the probes repeated the command until the reply arrived"
