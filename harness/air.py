@@ -70,6 +70,7 @@ class Air:
         self.probe_filter: Callable[[float, bytes], bool] | None = None
         """Fault hook: a probe that arrived intact reaches the terminal only if
         this returns True for (arrival time, frame); None passes every probe."""
+        self._running: asyncio.AbstractEventLoop | None = None
         self.master = SimulatedPort(self, "master")
         self.terminal = SimulatedPort(self, "terminal")
         self._windows = self._openings("down")
@@ -93,9 +94,11 @@ class Air:
     # --- clocks ----------------------------------------------------------------------
 
     def _loop(self) -> asyncio.AbstractEventLoop:
-        loop = asyncio.get_running_loop()
-        if self.origin is None:
-            self.origin = loop.time()
+        loop = self._running
+        if loop is None:
+            loop = self._running = asyncio.get_running_loop()
+            if self.origin is None:
+                self.origin = loop.time()
         return loop
 
     def now(self) -> float:
@@ -159,34 +162,53 @@ class Air:
             port.probe_count = 0
             self._schedule_probe()
 
-    def _schedule_probe(self) -> None:
-        """Wake the loop at the end of the next probe emitted inside an opening."""
+    def _next_probe(self) -> tuple[float, float] | None:
+        """(emission, end) of the next probe emitted inside an opening, or None."""
         port = self.master
         starts, ends = self._windows
         interval = port.probe_interval
-        k = port.probe_count
-        emit = port.probe_epoch + k * interval
-        w = bisect.bisect_right(ends, emit)
-        if w >= len(starts):
-            return  # no opening left: the stream goes on unheard
-        if emit < starts[w]:
-            k = math.ceil((starts[w] - port.probe_epoch) / interval)
-            emit = port.probe_epoch + k * interval
-            if emit >= ends[w]:  # the opening fell between two probes
-                port.probe_count = k
-                self._schedule_probe()
-                return
-        port.probe_count = k
-        assert port.probe_frame is not None
-        end = emit + 8 * len(port.probe_frame) / self.bit_rate["down"]
-        port.probe_handle = self._loop().call_at(self.origin + end, self._probe_arrives, emit, end)  # type: ignore[operator]
+        while True:
+            emit = port.probe_epoch + port.probe_count * interval
+            w = bisect.bisect_right(ends, emit)
+            if w >= len(starts):
+                return None  # no opening left: the stream goes on unheard
+            if emit < starts[w]:
+                port.probe_count = math.ceil((starts[w] - port.probe_epoch) / interval)
+                emit = port.probe_epoch + port.probe_count * interval
+                if emit >= ends[w]:  # the opening fell between two probes
+                    continue
+            assert port.probe_frame is not None
+            return emit, emit + 8 * len(port.probe_frame) / self.bit_rate["down"]
+
+    def _schedule_probe(self) -> None:
+        """Wake the loop at the end of the next probe emitted inside an opening."""
+        nxt = self._next_probe()
+        if nxt is not None:
+            self.master.probe_handle = self._loop().call_at(self.origin + nxt[1], self._probe_arrives, *nxt)  # type: ignore[operator]
 
     def _probe_arrives(self, emit: float, end: float) -> None:
+        """A probe's last bit has arrived.  While nothing else is due before the
+        next probe, a virtual-time loop lets this run on to it directly."""
         port = self.master
         port.probe_handle = None
-        frame = port.probe_frame
-        if frame is None:
-            return
+        loop = self._loop()
+        advance = getattr(loop, "advance_if_idle", None)
+        while True:
+            self._one_probe(emit, end)
+            port.probe_count += 1
+            if port.probe_frame is None or port.probe_handle is not None:
+                return  # the stream was stopped or restarted meanwhile
+            nxt = self._next_probe()
+            if nxt is None:
+                return
+            emit, end = nxt
+            if advance is None or not advance(self.origin + end):  # type: ignore[operator]
+                port.probe_handle = loop.call_at(self.origin + end, self._probe_arrives, emit, end)  # type: ignore[operator]
+                return
+
+    def _one_probe(self, emit: float, end: float) -> None:
+        frame = self.master.probe_frame
+        assert frame is not None
         self.counters.probes_emitted_in_openings += 1
         bits = 8 * len(frame)
         if self.rng.random() < self.channel.success_probability("down", emit, bits):
@@ -201,9 +223,6 @@ class Air:
                 self.terminal.deliver(Arrival(frame, self.origin + end, snr_db, self._offset("down", strongest)))  # type: ignore[operator]
             else:
                 self.counters.probes_unheard += 1
-        port.probe_count += 1
-        if port.probe_frame is not None and port.probe_handle is None:
-            self._schedule_probe()
 
 
 class SimulatedPort(Port):

@@ -163,7 +163,7 @@ class Backlog:
     """An application that always has more to send: the queue never empties,
     so a measurement sees the protocol, not the offered load."""
 
-    def __init__(self, size: int, *, epoch_unix: float = 0.0, every_s: float = 5.0, start: float = 0.0) -> None:
+    def __init__(self, size: int, *, epoch_unix: float = 0.0, every_s: float = 30.0, start: float = 0.0) -> None:
         if size < HEADER_BYTES + 2 or not every_s > 0:
             raise UsageError(f"backlog messages need at least {HEADER_BYTES + 2} bytes and a positive refill interval")
         self.size, self.epoch_unix, self.every_s = size, epoch_unix, every_s

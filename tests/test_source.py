@@ -86,4 +86,4 @@ def test_backlog_fills_exactly_the_room() -> None:
     backlog = Backlog(1001)
     batch = backlog.take(0.0, room=5)
     assert len(batch) == 5 and all(len(p) == 1001 for p, _ in batch)
-    assert backlog.take(5.0, room=0) == [] and backlog.next_due() == 10.0
+    assert backlog.take(5.0, room=0) == [] and backlog.next_due() == 35.0

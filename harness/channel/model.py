@@ -515,7 +515,15 @@ class Channel:
         step = duration / samples
         ber, log1p = self._ber, math.log1p
         log_ok = 0.0
-        if len(live) == 1:
+        if len(live) == 1 and t0 + 0.5 * step - live[0][0] >= live[0][1]:
+            # One trail, decaying over the whole frame: each sample is the last
+            # times a constant factor (the same numbers, one multiply instead of an exp).
+            x = _envelope_at(live[0], t0 + 0.5 * step)
+            factor = math.exp(-step / live[0][2])
+            for _ in range(samples):
+                log_ok += log1p(-min(ber(x), 0.5))
+                x *= factor
+        elif len(live) == 1:
             row = live[0]
             for k in range(samples):
                 log_ok += log1p(-min(ber(_envelope_at(row, t0 + (k + 0.5) * step)), 0.5))
