@@ -156,7 +156,6 @@ class MasterStation:
         now = arrival.time - self.origin
         if isinstance(frame, Fragment) and frame.master == self.address and not frame.downlink:
             self.counters.fragments += 1
-            self.reassembler.expire(now)
             reception = self.reassembler.receive(frame, now)
             if reception.delivery is not None:
                 self._record(reception.delivery, now)

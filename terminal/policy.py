@@ -79,13 +79,19 @@ def _fit(samples: list[tuple[float, float]]) -> float | None:
     """tau from the least-squares slope of SNR (dB) against time; None without
     two probes far enough apart."""
     n = len(samples)
-    if n < 2 or samples[-1][0] - samples[0][0] < MIN_FIT_SPAN_S:
+    if n < 2:
         return None
-    mean_t = sum(t for t, _ in samples) / n
-    mean_s = sum(s for _, s in samples) / n
-    sxx = sum((t - mean_t) ** 2 for t, _ in samples)
-    sxy = sum((t - mean_t) * (s - mean_s) for t, s in samples)
-    slope = sxy / sxx  # dB per second
+    t_first = samples[0][0]
+    if samples[-1][0] - t_first < MIN_FIT_SPAN_S:
+        return None
+    st = ss = stt = sts = 0.0
+    for t, snr in samples:
+        t -= t_first  # offsets keep the sums well conditioned
+        st += t
+        ss += snr
+        stt += t * t
+        sts += t * snr
+    slope = (n * sts - st * ss) / (n * stt - st * st)  # dB per second
     low, high = TAU_RANGE_S
     if slope >= -DB_PER_NEPER / high:  # flat or rising: an overdense plateau
         return high

@@ -107,6 +107,15 @@ class _Partial:
     def write(self, start: int, payload: bytes) -> None:
         """Hold ``payload`` at ``start``, merging it with the chunks it overlaps or touches."""
         end = start + len(payload)
+        if self.held.ranges_after_add(start, end) == len(self.chunks) and self.held.contains(start - 1, start):
+            # The common case, bytes that extend a held range at its end without
+            # reaching the next one: append to that chunk in place.
+            first = max(s for s in self.chunks if s < start)
+            chunk = self.chunks[first]
+            if first + len(chunk) == start:
+                self.chunks[first] = chunk + payload
+                self.held.add(start, end)
+                return
         low, high = start, end
         pieces: list[tuple[int, bytes]] = []
         for first in [s for s in self.chunks if s <= end and s + len(self.chunks[s]) >= start]:
