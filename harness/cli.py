@@ -537,12 +537,13 @@ def build_parser() -> argparse.ArgumentParser:
         help="regenerate the generated tables in docs/",
         description=(
             "Rewrite the generated tables of docs/wire.md (frame layouts, from the format\n"
-            "declarations), docs/delivery.md (link limits, from terminal/limits.py) and\n"
-            "docs/scenario.md (scenario keys, from harness/channel/scenario.py)."
+            "declarations), docs/delivery.md (link limits, from terminal/limits.py),\n"
+            "docs/scenario.md (scenario keys, from harness/channel/scenario.py) and\n"
+            "docs/link.md (the link's transition table, from terminal/link.py)."
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--path", action="append", help="a document to refresh (repeatable; default: all three)")
+    p.add_argument("--path", action="append", help="a document to refresh (repeatable; default: all four)")
     p.add_argument("--check", action="store_true", help="only report whether the document is stale (exit 1 if so)")
     p.set_defaults(handler=cmd_docs)
     return parser

@@ -171,7 +171,7 @@ def simulate(
         master = MasterStation(
             air.master,
             scenario.master_address,
-            limits=dataclasses.replace(limits, max_duplicate_sources=max(limits.max_duplicate_sources, 1)),
+            limits=limits,
             probe_interval=scenario.probe_interval_s,
             epoch_unix=scenario.start.timestamp(),
             origin=origin,
