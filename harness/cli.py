@@ -383,7 +383,7 @@ def _simulation_table(r: dict[str, Any]) -> str:
         f"  messages   offered {m['offered']:>7,}   delivered {m['delivered']:>7,}   pending {m['pending']:>5,}   "
         f"abandoned {m['abandoned']:>5,}{f' ({reasons})' if reasons else ''}   delivered twice {m['duplicates_delivered']}",
         f"  latency    median {_fmt_s(lat['p50'])}   95 % {_fmt_s(lat['p95'])}   99 % {_fmt_s(lat['p99'])}   worst {_fmt_s(lat['max'])}",
-        f"  channel    {r['trails']['total']:,} trails open on the uplink, {r['trails']['used']:,} carried data;"
+        f"  channel    {r['trails']['total']:,} trails opened the path, {r['trails']['used']:,} carried data;"
         f" capacity bound {bits['capacity_bound'] / 1e6:,.2f} Mbit",
         f"  payload    {bits['payload_delivered'] / 1e3:,.1f} kbit delivered = {utilisation} of the capacity bound",
         f"  air        {fr['sent']:,} frames sent, {fr['received']:,} received intact, {fr['crc_failed']:,} failed their CRC;"
