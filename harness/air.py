@@ -12,8 +12,9 @@ is simply not heard.
 
 The master's probe stream is simulated only where it can matter: probes are
 emitted on their fixed cadence, but the loop is woken only for emissions
-inside a downlink opening, and only probes that arrive intact are reported.
-A day with no trails costs no events at all.
+while some trail could still carry one (past the downlink's threshold-open
+time: a short probe outlives it), and only probes that arrive intact are
+reported.  A day with no trails costs no events at all.
 """
 
 from __future__ import annotations
@@ -31,6 +32,7 @@ from terminal.link import Arrival
 from terminal.ports import Listener, Port
 
 DIRECTION_OF = {"terminal": "up", "master": "down"}
+SHORTEST_PROBE_BYTES = 7  # head, master, sequence, flags, CRC: docs/wire.md
 
 
 @dataclasses.dataclass
@@ -73,23 +75,9 @@ class Air:
         self._running: asyncio.AbstractEventLoop | None = None
         self.master = SimulatedPort(self, "master")
         self.terminal = SimulatedPort(self, "terminal")
-        self._windows = self._openings("down")
-
-    def _openings(self, direction: str) -> tuple[list[float], list[float]]:
-        """Merged (start, end) of every period the path is open in ``direction``."""
-        trails = self.channel.trails
-        if trails is None or not len(trails):
-            return [], []
-        starts, ends = [], []
-        for t, length in zip(trails.t.tolist(), trails.open_s[direction].tolist(), strict=True):
-            if length <= 0:
-                continue
-            if starts and t <= ends[-1]:
-                ends[-1] = max(ends[-1], t + length)
-            else:
-                starts.append(t)
-                ends.append(t + length)
-        return starts, ends
+        # Probes are simulated wherever even the shortest could still arrive (a
+        # 7-byte probe outlives the BER threshold that defines "open" by a few tau).
+        self._windows = channel.audible_windows("down", 8 * SHORTEST_PROBE_BYTES)
 
     # --- clocks ----------------------------------------------------------------------
 

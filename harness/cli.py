@@ -187,7 +187,14 @@ def cmd_bench(args: argparse.Namespace) -> int:
         report = bench.channel_benchmark(progress=progress)
         text = bench.format_channel(report)
     else:
-        report = bench.link_benchmark(hours=args.hours, progress=progress)
+        from harness.channel.scenario import ScenarioError
+
+        if not (0.01 <= args.hours <= 24 * 31):
+            raise UserError(f"--hours {args.hours:g}: expected 0.01 to {24 * 31} hours")
+        try:
+            report = bench.link_benchmark(hours=args.hours, progress=progress)
+        except ScenarioError as exc:
+            raise UserError(str(exc)) from None
         text = bench.format_link(report)
     print(json.dumps(report, indent=2) if args.json else text)
     return 0
@@ -315,7 +322,7 @@ def _open_output(name: str) -> Any:
 
 
 def cmd_simulate(args: argparse.Namespace) -> int:
-    from harness.channel.geometry import PathError
+    from harness.channel.geometry import PathError, path_geometry
     from harness.master import json_lines_sink
     from harness.simulate import simulate
     from terminal.errors import UsageError
@@ -326,11 +333,20 @@ def cmd_simulate(args: argparse.Namespace) -> int:
         by_name(args.policy, scenario.bit_rate)
     except UsageError as exc:
         raise UserError(str(exc)) from None
-    for name in (args.json, args.plot, args.deliveries):
-        if name and Path(name).is_dir():
+    outputs = [name for name in (args.json, args.plot, args.deliveries) if name]
+    for name in outputs:
+        if Path(name).is_dir():
             raise UserError(f"{name} is a directory; give a file name")
-        if name and not Path(name).resolve().parent.is_dir():
+        if not Path(name).resolve().parent.is_dir():
             raise UserError(f"cannot write {name}: no such directory {Path(name).resolve().parent}")
+    if len({Path(name).resolve() for name in outputs}) < len(outputs):
+        raise UserError("--json, --plot and --deliveries must name different files")
+    if args.plot and Path(args.plot).suffix.lower() != ".png":
+        raise UserError(f"--plot {args.plot}: the timeline is drawn as PNG; give a name ending in .png")
+    try:  # a path the model cannot use fails now, before any output file is touched
+        path_geometry(scenario.terminal.lat_deg, scenario.terminal.lon_deg, scenario.master.lat_deg, scenario.master.lon_deg, scenario.reflection_height_km)
+    except PathError as exc:
+        raise UserError(str(exc)) from None
     # Outputs are opened before the run, so a bad path fails at once, not after it.
     report_file = _open_output(args.json) if args.json else None
     deliveries_file = _open_output(args.deliveries) if args.deliveries else None

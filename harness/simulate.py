@@ -225,7 +225,10 @@ def _report(scenario: Scenario, policy: str, trails: TrailSet, air: Air, master:
     unique = [r for r in deliveries if seen.pop((r.terminal, r.message_id, r.crc32c, r.created_s), 0)]
     duplicates = len(deliveries) - len(unique)
     delivered_ids = {(r.message_id, r.crc32c) for r in unique}
-    pending = sum(1 for wire_id, crc in ledger.in_sender.items() if (wire_id, crc) not in delivered_ids)
+    # Pending is read from the sender's own queue, not from the ledger: a message
+    # the sender dropped without a word is then neither pending nor delivered nor
+    # abandoned, and the invariant offered = delivered + pending + abandoned fails.
+    pending = sum(1 for wire_id, *_ in link.sender.outstanding() if (wire_id, ledger.in_sender.get(wire_id)) not in delivered_ids)
     latencies = [r.delivered_s - r.created_s for r in unique if r.created_s is not None]
     payload_bits = 8 * sum(r.size for r in unique)
     capacity = trails.capacity_bits("up")

@@ -88,7 +88,7 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
     @rule(size=st.integers(1, 300), airtime=st.floats(0, 1))
     def send_fragment(self, size: int, airtime: float) -> None:
         """One fragment of a burst, the way the burst link asks for them."""
-        fragment = self.sender.next_fragment(size, self.now + airtime)
+        fragment = self.sender.next_fragment(size, self.now, airtime / 300)
         if fragment is not None:
             self.uplink.append(encode(fragment))
             del self.uplink[:-MAX_IN_FLIGHT]

@@ -73,7 +73,8 @@ class _Outgoing:
     acked: RangeSet = dataclasses.field(default_factory=RangeSet)
     sent: RangeSet = dataclasses.field(default_factory=RangeSet)  # since it was last acknowledged
     # Pieces sent by next_fragment and not yet confirmed, as (end of airtime, start, end),
-    # oldest first; disjoint, so never more entries than the message has bytes.
+    # oldest first; at most Limits.max_unconfirmed_pieces (a piece resent after an
+    # acknowledgement forgot it may overlap an older one; that costs airtime only).
     in_flight: list[tuple[float, int, int]] = dataclasses.field(default_factory=list)
     last_ack: AckBlock | None = None  # the block last applied (probes repeat it)
 
@@ -114,7 +115,9 @@ class Sender:
         self.counters = SenderCounters()
         self._next_seq = first_id
         self._queue: dict[int, _Outgoing] = {}  # by unwrapped id, in id order
-        self._by_wire_id: dict[int, _Outgoing] = {}  # the same messages by 16-bit id (unique: span < 2^15)
+        # The same messages by 16-bit id: unique, because queued ids span at most
+        # max_queued_messages + duplicate_window - 2 < 2^16 (both limits are below 2^15).
+        self._by_wire_id: dict[int, _Outgoing] = {}
         self._eligible_now: list[_Outgoing] | None = None
         self.outcomes: collections.deque[tuple[int, bool]] = collections.deque(maxlen=OUTCOMES_KEPT)
         """(frame bytes, lost) of each settled piece from :meth:`next_fragment`,
@@ -227,16 +230,16 @@ class Sender:
 
     # --- one fragment at a time, for a burst with acknowledgements flowing back ------
 
-    def next_fragment(self, max_payload: int, air_end: float) -> Fragment | None:
+    def next_fragment(self, max_payload: int, now: float, seconds_per_byte: float = 0.0) -> Fragment | None:
         """The next fragment of a burst, carrying at most ``max_payload`` bytes, or
         None when every eligible byte is sent and awaits its acknowledgement.
 
         Bytes never sent (or presumed lost) go first, most important message
         first; a message whose bytes are all held but not reported complete
-        gets one final one-byte fragment to solicit the verdict.  ``air_end``
-        is when this fragment will have left the antenna: an acknowledgement
-        issued after it that does not show its bytes proves them lost (see
-        :meth:`on_ack`).
+        gets one final one-byte fragment to solicit the verdict.  The fragment
+        leaves the antenna at ``now`` plus its frame bytes times
+        ``seconds_per_byte``: an acknowledgement issued after that which does
+        not show its bytes proves them lost (see :meth:`on_ack`).
         """
         if max_payload < 1:
             raise UsageError(f"max_payload must be at least 1 byte, not {max_payload}")
@@ -246,18 +249,26 @@ class Sender:
             for start, end in message.acked.gaps(0, len(message.sealed)):
                 for gap_start, gap_end in message.sent.gaps(start, end):
                     take = min(gap_end - gap_start, take_most)
-                    return self._track(message, gap_start, take, air_end)
+                    return self._track(message, gap_start, take, now + (take + FRAGMENT_OVERHEAD) * seconds_per_byte)
         for message in eligible:
             size = len(message.sealed)
             if message.acked.contains(0, size) and not message.in_flight:
                 self.counters.solicitations += 1
-                return self._track(message, size - 1, 1, air_end)
+                fragment = self._track(message, size - 1, 1, now + (1 + FRAGMENT_OVERHEAD) * seconds_per_byte)
+                # The byte is already acknowledged: it is not "sent, unconfirmed", or a
+                # later acknowledgement that forgets it would leave it never sent again.
+                message.sent.discard(size - 1, size)
+                return fragment
         return None
 
     def _track(self, message: _Outgoing, start: int, take: int, air_end: float) -> Fragment:
         fragment = self._fragment(message, start, take)
         self.counters.fragments += 1
         message.in_flight.append((air_end, start, start + take))
+        excess = len(message.in_flight) - self.limits.max_unconfirmed_pieces
+        if excess > 0:  # the oldest count as lost: nothing waits unboundedly for a verdict
+            cutoff = message.in_flight[excess - 1][0]
+            self._settle(message, lambda piece: piece[0] <= cutoff)
         return fragment
 
     def presume_lost(self, sent_before: float) -> None:

@@ -144,6 +144,11 @@ class Limits:
     acknowledgement issued then is taken to prove it lost: the master's
     decode and queueing latency (about a millisecond in software), with room."""
 
+    max_unconfirmed_pieces: int = 64
+    """Fragments of one message a sender tracks until each is confirmed or
+    shown lost (a probe's acknowledgement settles them within a tenth of a
+    second in a burst); past this the oldest count as lost and go again."""
+
     max_remembered_commands: int = 8
     """Downlink command ids a terminal remembers with their replies, so a
     command the master repeats (its probe repeats it until a reply arrives)
@@ -155,6 +160,7 @@ class Limits:
             if not isinstance(value, (int, float)) or isinstance(value, bool) or not 0 <= value <= 60:
                 raise UsageError(f"limit {name}={value!r} must be a number of seconds from 0 to 60")
         _within("max_remembered_commands", self.max_remembered_commands, 1, 256)
+        _within("max_unconfirmed_pieces", self.max_unconfirmed_pieces, 1, 1 << 16)
         _within("max_message_payload", self.max_message_payload, 1, MAX_MESSAGE_PAYLOAD)
         _within("max_fragment_payload", self.max_fragment_payload, 1, MAX_FRAGMENT_PAYLOAD)
         _within("max_queued_messages", self.max_queued_messages, 1, MAX_ID_SPAN)

@@ -28,7 +28,7 @@ from collections import OrderedDict
 from typing import NamedTuple
 
 from terminal.errors import DecodeError, UsageError
-from terminal.fragmentation import FRAGMENT_OVERHEAD, Sender, SenderEvent
+from terminal.fragmentation import Sender, SenderEvent
 from terminal.limits import DEFAULT_LIMITS, MAX_COMMAND_BYTES, Limits
 from terminal.policy import FragmentPolicy
 from terminal.wire import Ack, AckBlock, Command, Frame, Probe, Reply, decode, encode
@@ -191,6 +191,7 @@ class Link:
         """When :meth:`on_timer` must next be called (None: only frames matter)."""
         self._last_probe = -float("inf")
         self._last_probe_ours = False
+        self._air_end = -float("inf")  # when the last transmitted frame left the antenna
         self._burst_frames = 0
         self._next: bytes | None = None  # frame prepared while classifying
         self._last_raw: bytes | None = None  # the last frame decoded, and what it decoded to
@@ -233,12 +234,13 @@ class Link:
             self._take_command(block.command_id, block.opcode, block.arguments, effects)
         self._last_probe = arrival.time
         self._last_probe_ours = ours
-        # A piece unconfirmed for a whole silence interval of live probes is lost
-        # (acknowledgements ride on every probe); this is what times out a
-        # stop-and-wait fragment whose loss no acknowledgement shows.
-        self.sender.presume_lost(arrival.time - self.limits.burst_silence)
-        self._report_outcomes()
-        self.policy.probe_heard(arrival.time, arrival.snr_db)
+        if self.state is not State.LISTENING:  # in a burst (a new one starts in _apply)
+            # A piece unconfirmed for a whole silence interval of live probes is lost
+            # (acknowledgements ride on every probe); this is what times out a
+            # stop-and-wait fragment whose loss no acknowledgement shows.
+            self.sender.presume_lost(arrival.time - self.limits.burst_silence)
+            self._report_outcomes()
+            self.policy.probe_heard(arrival.time, arrival.snr_db)
         if not ours:
             self.counters.probes_elsewhere += 1
             event = Input.PROBE_ELSEWHERE
@@ -280,7 +282,7 @@ class Link:
     def _classify_clear(self, now: float) -> Input:
         """What a timer found.  The next frame is built here when the table
         would transmit it, so that "something to send" is a fact, not a guess."""
-        if now >= self._last_probe + self.limits.burst_silence:
+        if now >= self._silence_since() + self.limits.burst_silence:
             return Input.SILENT
         if self.state is State.TRANSMITTING and (self.duplex is Duplex.HALF or self.policy.waits_for_ack):
             return Input.CLEAR_HOLD
@@ -296,7 +298,7 @@ class Link:
             self.counters.replies_sent += 1
             return self._replies.pop(0)
         size = self.policy.payload_bytes(now)
-        fragment = self.sender.next_fragment(size, now + self._airtime(size + FRAGMENT_OVERHEAD))
+        fragment = self.sender.next_fragment(size, now, 8 / self.bit_rate)
         if fragment is None:
             return None
         self.counters.fragments_sent += 1
@@ -324,19 +326,26 @@ class Link:
             self._next = None
             if frame is None:  # only after CLEAR_HOLD, whose go-ahead found nothing to send
                 self.state = State.WAITING
-                self.deadline = self._last_probe + limits.burst_silence
+                self.deadline = self._silence_since() + limits.burst_silence
                 return
-            air_end = now + self._airtime(len(frame))
+            air_end = self._air_end = now + self._airtime(len(frame))
             self.counters.bytes_sent += len(frame)
             self._burst_frames += 1
             effects.append(Transmit(frame, air_end))
             self.deadline = air_end
         elif action is Action.WAIT:
-            self.deadline = self._last_probe + limits.burst_silence
+            self.deadline = self._silence_since() + limits.burst_silence
         elif action is Action.END_BURST:
             self.deadline = None
             effects.append(BurstEnded(now, self._burst_frames))
         # Action.NONE leaves the deadline as it was.
+
+    def _silence_since(self) -> float:
+        """Since when the terminal has heard no probe: the last probe, or in half
+        duplex the end of its own last frame, if later (it was deaf meanwhile)."""
+        if self.duplex is Duplex.HALF:
+            return max(self._last_probe, self._air_end)
+        return self._last_probe
 
     def _airtime(self, nbytes: int) -> float:
         return 8 * nbytes / self.bit_rate

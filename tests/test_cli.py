@@ -135,3 +135,22 @@ def test_bench_link_json_keys(capsys: pytest.CaptureFixture[str]) -> None:
     for row in policies.values():
         assert set(row) >= {"efficiency", "bits_per_burst", "speedup"}
         assert 0 <= row["efficiency"] <= 1 and row["speedup"] > 0
+
+
+def test_simulate_and_bench_refuse_unusable_options_at_once(tmp_path: object) -> None:
+    from pathlib import Path
+
+    out = Path(str(tmp_path))
+    cases = (
+        (["simulate", "--plot", str(out / "t.svg")], "give a name ending in .png"),
+        (["simulate", "--json", str(out / "same"), "--deliveries", str(out / "same")], "different files"),
+        (["simulate", "--set", "protocol.burst_silence_s=0.05"], "must be longer than protocol.probe_interval_s"),
+        (["simulate", "--set", "master.lat_deg=61.2", "--set", "master.lon_deg=14.1", "--json", str(out / "r.json")], "distinct sites"),
+        (["bench", "link", "--hours", "-1"], "--hours -1"),
+        (["bench", "link", "--hours", "nan"], "--hours nan"),
+    )
+    for args, expected in cases:
+        result = run(*args)
+        assert result.returncode == 2, (args, result.stderr)
+        assert expected in result.stderr and "Traceback" not in result.stderr, (args, result.stderr)
+    assert not (out / "r.json").exists(), "a refused run leaves no report behind"

@@ -334,3 +334,30 @@ def test_limits_check_the_link_timeouts() -> None:
         Limits(burst_silence=-1.0)
     with pytest.raises(UsageError):
         dataclasses.replace(DEFAULT_LIMITS, turnaround=True)
+
+
+def test_idle_probes_and_a_new_bursts_first_probe_stay_out_of_the_last_bursts_fit() -> None:
+    from terminal.policy import Adaptive
+
+    policy = Adaptive(BIT_RATE, prior_tau_s=0.3)
+    link = make_link(messages=3, size=1000, policy=policy)
+    decay_db_per_s = 10 / (0.3 * 2.302585)  # a clean 0.3 s decay
+    hear(link, 0.0, snr=25.0)
+    for k in range(1, 5):
+        hear(link, 0.1 * k, snr=25.0 - decay_db_per_s * 0.1 * k)
+    while link.state is not State.LISTENING:
+        fire(link)
+    for k in range(5):  # idle probes from other trails, minutes later
+        hear(link, 60.0 + k, probe(poll=OTHER), snr=12.0)
+    hear(link, 100.0, snr=30.0)  # the next burst starts
+    assert policy.typical_tau_s == __import__("pytest").approx(0.3 + (0.3 - 0.3) / 8, rel=1e-3)
+
+
+def test_half_duplex_silence_counts_from_the_end_of_the_terminals_own_frame() -> None:
+    link = make_link(messages=1, size=1000, duplex=Duplex.HALF, policy=Fixed(256))
+    hear(link, 0.0)
+    fire(link)  # a 0.44 s fragment: longer than burst_silence
+    fire(link)
+    assert link.state is State.WAITING, "deaf while sending is not silence"
+    hear(link, link.deadline - 0.1)
+    assert link.state is State.TURNAROUND and link.counters.bursts == 1

@@ -175,3 +175,26 @@ def test_a_command_reaches_the_demo_gauge_once() -> None:
     assert [(r.terminal, r.status) for r in run.master.replies] == [(0x0A31, int(ReplyStatus.OK))]
     assert run.link.counters.commands_executed == 1
     assert run.link.counters.commands_repeated > 0, "the probes repeated the command until the reply arrived"
+
+
+def test_the_invariant_catches_a_sender_that_drops_a_message_silently(monkeypatch: pytest.MonkeyPatch) -> None:
+    from terminal.fragmentation import Sender
+
+    queue = Sender.queue
+    calls = []
+
+    def forgetful(self: Sender, payload: bytes, now: float, priority: Priority = Priority.ROUTINE) -> int:
+        wire_id = queue(self, payload, now, priority)
+        calls.append(wire_id)
+        if len(calls) == 2:  # the second message vanishes without an event
+            message = self._queue.pop(max(self._queue))
+            del self._by_wire_id[message.wire_id]
+            self._eligible_now = None
+        return wire_id
+
+    monkeypatch.setattr(Sender, "queue", forgetful)
+    s = short_scenario()
+    run = simulate(s, source=Messages(100, 100, 100), trails=openings(s, Opening(5.0, 30.0, 0.3, hold=3.0)), seconds=20.0)
+    m = run.report["messages"]
+    assert (m["offered"], m["delivered"], m["pending"], m["abandoned"]) == (3, 2, 0, 0)
+    assert not invariant_holds(run.report)

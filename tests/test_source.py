@@ -31,7 +31,7 @@ def test_reports_every_fifteen_minutes_of_40_to_120_bytes() -> None:
     assert len({len(p) for _, p in routine}) > 30  # sizes vary over the whole range
 
 
-def test_alarms_are_rare_and_jump_the_queue() -> None:
+def test_alarms_are_rare_and_marked_as_alarms() -> None:
     messages = run(DemoGauge(random.Random(2)), 100 * 86400)
     alarms = [p for _, p, prio in messages if prio is Priority.ALARM]
     # Poisson with mean 2 a day: 200 in 100 days, a 4.5-sigma band either side.

@@ -497,6 +497,30 @@ class Channel:
                 best = (i, value)
         return best
 
+    def audible_windows(self, direction: str, bits: int, p_min: float = 1e-9) -> tuple[list[float], list[float]]:
+        """Merged (starts, ends) of the periods in which a frame of ``bits`` could
+        arrive with probability above ``p_min``: from each trail's start until
+        its envelope falls below the Eb/N0 at which even such a frame fails.
+        Short frames outlast the BER threshold that defines "open" by a few tau.
+        Trails never above the threshold in either direction are not in the set."""
+        trails = self.trails
+        if trails is None or not len(trails):
+            return [], []
+        ber = 1 - p_min ** (1 / bits)  # per-bit error rate at which the frame's success is p_min
+        floor = _ebn0_for_ber(self._ber, ber)
+        peak = trails.peak_ebn0[direction]
+        life = trails.hold[direction] + trails.tau[direction] * np.log(np.maximum(peak / floor, 1.0))
+        keep = peak > floor
+        starts: list[float] = []
+        ends: list[float] = []
+        for t, length in zip(trails.t[keep].tolist(), life[keep].tolist(), strict=True):
+            if starts and t <= ends[-1]:
+                ends[-1] = max(ends[-1], t + length)
+            else:
+                starts.append(t)
+                ends.append(t + length)
+        return starts, ends
+
     def doppler_of(self, direction: str, index: int) -> float:
         """Doppler offset (Hz) of trail ``index`` as seen in ``direction``."""
         assert self._columns is not None

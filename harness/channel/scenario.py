@@ -246,6 +246,12 @@ def load(path: str | Path | None = None, overrides: Iterable[str] = ()) -> Scena
 
 
 def _build(m: dict[str, dict[str, Any]], origin: str) -> Scenario:
+    p = m["protocol"]
+    if not p["burst_silence_s"] > max(p["probe_interval_s"], p["turnaround_s"]):
+        raise ScenarioError(
+            f"{origin}: protocol.burst_silence_s = {p['burst_silence_s']!r} must be longer than protocol.probe_interval_s "
+            f"({p['probe_interval_s']!r}) and protocol.turnaround_s ({p['turnaround_s']!r}), or every burst ends between two probes"
+        )
     start = _parse_instant(m["scenario"]["start"])
     assert start is not None
     stations = {name: Station(**{k: m[name][k] for k in SCHEMA[name]}) for name in ("terminal", "master")}

@@ -1,0 +1,65 @@
+"""The sender's one-fragment-at-a-time interface, as the burst link drives it."""
+
+from __future__ import annotations
+
+from terminal.fragmentation import FRAGMENT_OVERHEAD, Priority, Sender
+from terminal.limits import Limits
+from terminal.wire import AckBlock
+
+TERMINAL, MASTER = 0x0A31, 7
+
+
+def test_alarms_jump_the_queue() -> None:
+    sender = Sender(TERMINAL, MASTER)
+    routine = sender.queue(b"r" * 300, 0.0)
+    alarm = sender.queue(b"a" * 20, 1.0, Priority.ALARM)
+    first = sender.next_fragment(64, 2.0)
+    assert first is not None and first.message_id == alarm and first.urgent
+    assert routine != alarm
+
+
+def test_air_end_follows_the_real_frame_length() -> None:
+    sender = Sender(TERMINAL, MASTER)
+    sender.queue(b"x" * 20, 0.0)  # 24 sealed bytes: one short fragment
+    fragment = sender.next_fragment(256, 10.0, 8 / 4800)
+    assert fragment is not None and len(fragment.payload) == 24
+    ends = [m for m in sender._queue.values()][0].in_flight
+    assert ends[0][0] == 10.0 + (24 + FRAGMENT_OVERHEAD) * 8 / 4800
+    # An acknowledgement issued 0.2 s later that does not show the bytes proves them lost.
+    sender.on_ack(AckBlock(TERMINAL, fragment.message_id, ()), 10.3, issued=10.25)
+    again = sender.next_fragment(256, 10.3, 8 / 4800)
+    assert again is not None and again.offset == 0
+
+
+def test_a_solicitation_never_strands_the_last_byte() -> None:
+    """A receiver that reports everything held but not complete gets a one-byte
+    solicitation; if it then forgets bytes, every one of them, the last
+    included, must be sent again (it once stalled here)."""
+    sender = Sender(TERMINAL, MASTER)
+    message_id = sender.queue(b"m" * 60, 0.0)
+    size = 64
+    while sender.next_fragment(256, 0.0) is not None:
+        pass
+    everything = AckBlock(TERMINAL, message_id, ((0, size),))
+    sender.on_ack(everything, 1.0, issued=1.0)
+    solicit = sender.next_fragment(256, 1.0)
+    assert solicit is not None and (solicit.offset, len(solicit.payload)) == (size - 1, 1)
+    sender.on_ack(everything, 2.0, issued=2.0)  # repeated: the solicitation settles as held
+    sender.on_ack(AckBlock(TERMINAL, message_id, ()), 3.0, issued=3.0)  # then the receiver forgets it all
+    sent: set[int] = set()
+    for round_ in range(3):
+        while (fragment := sender.next_fragment(256, 4.0 + round_)) is not None:
+            sent |= set(range(fragment.offset, fragment.end))
+        if sent != set(range(size)):  # what it resent arrived, the rest is still owed
+            sender.on_ack(AckBlock(TERMINAL, message_id, tuple(sorted({(0, max(sent) + 1)}))), 4.5 + round_, issued=4.5 + round_)
+    assert sent == set(range(size))
+
+
+def test_unconfirmed_pieces_are_bounded() -> None:
+    sender = Sender(TERMINAL, MASTER, limits=Limits(max_unconfirmed_pieces=4))
+    sender.queue(b"z" * 400, 0.0)
+    for k in range(10):
+        assert sender.next_fragment(16, float(k)) is not None
+    (message,) = sender._queue.values()
+    assert len(message.in_flight) == 4
+    assert sender.counters.presumed_lost_bytes == 6 * 16
