@@ -212,3 +212,21 @@ def test_scalar_twins_give_the_vectorised_numbers(modulation: str) -> None:
                 checked += 1
     assert checked > 500
     assert worst < 1e-9
+
+
+def test_probe_windows_cover_every_opening_and_nothing_audible_lies_outside() -> None:
+    channel = Channel(trails("scenario.duration_hours=3"))
+    data = channel.trails
+    assert data is not None
+    starts, ends = channel.audible_windows("down", 56, p_min=1e-6)
+    assert all(a < b for a, b in zip(starts, ends, strict=True)) and all(e < s for e, s in zip(ends, starts[1:], strict=False))
+
+    def inside(t: float) -> bool:
+        i = np.searchsorted(starts, t, side="right") - 1
+        return bool(i >= 0 and t <= ends[i])
+
+    up = data.open_s["down"] > 0
+    for t, length in zip(data.t[up].tolist(), data.open_s["down"][up].tolist(), strict=True):
+        assert inside(t) and inside(t + length * 0.999)  # the threshold-open time is inside
+    for end in ends:  # just past a window a short probe all but surely fails
+        assert channel.success_probability("down", end + 0.001, 56) < 1e-6

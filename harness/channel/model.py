@@ -497,7 +497,7 @@ class Channel:
                 best = (i, value)
         return best
 
-    def audible_windows(self, direction: str, bits: int, p_min: float = 1e-9) -> tuple[list[float], list[float]]:
+    def audible_windows(self, direction: str, bits: int, p_min: float = 1e-6) -> tuple[list[float], list[float]]:
         """Merged (starts, ends) of the periods in which a frame of ``bits`` could
         arrive with probability above ``p_min``: from each trail's start until
         its envelope falls below the Eb/N0 at which even such a frame fails.
