@@ -271,12 +271,12 @@ class Link:
     # --- classification --------------------------------------------------------------
 
     def _has_something(self) -> bool:
-        """Replies waiting, or messages pending (under stop-and-wait: none
-        still awaiting its acknowledgement)."""
+        """Replies waiting, or messages pending (under stop-and-wait, within a
+        burst: none still awaiting its acknowledgement)."""
         if self._replies:
             return True
-        if self.policy.waits_for_ack and self.sender.awaiting:
-            return False
+        if self.policy.waits_for_ack and self.state is not State.LISTENING and self.sender.awaiting:
+            return False  # within a burst; a new burst presumes the last one's fragment lost
         return self.sender.pending > 0
 
     def _classify_clear(self, now: float) -> Input:

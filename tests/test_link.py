@@ -361,3 +361,15 @@ def test_half_duplex_silence_counts_from_the_end_of_the_terminals_own_frame() ->
     assert link.state is State.WAITING, "deaf while sending is not silence"
     hear(link, link.deadline - 0.1)
     assert link.state is State.TURNAROUND and link.counters.bursts == 1
+
+
+def test_stop_and_wait_carries_on_in_the_next_burst_when_an_acknowledgement_never_came() -> None:
+    link = make_link(messages=1, size=300, policy=StopAndWait())
+    hear(link, 0.0)
+    (first,) = transmitted(fire(link))
+    while link.state is not State.LISTENING:  # the trail dies before any acknowledgement
+        fire(link)
+    effects = hear(link, 60.0)  # the next trail
+    assert isinstance(effects[0], BurstStarted)
+    (again,) = transmitted(fire(link))
+    assert again.offset == first.offset == 0, "the unconfirmed fragment goes again"
