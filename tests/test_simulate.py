@@ -209,3 +209,17 @@ def test_the_invariant_catches_a_sender_that_drops_a_message_silently(monkeypatc
     m = run.report["messages"]
     assert (m["offered"], m["delivered"], m["pending"], m["abandoned"]) == (3, 2, 0, 0)
     assert not invariant_holds(run.report)
+
+
+@pytest.mark.parametrize(("policy", "duplex"), [(p, "full") for p in ("adaptive", "fixed-32", "fixed-256", "stop-and-wait")] + [("adaptive", "half"), ("stop-and-wait", "half")])
+def test_every_policy_keeps_using_the_openings(policy: str, duplex: str) -> None:
+    """Liveness over two hours of demo trails with a backlogged source: bursts
+    keep starting and payload keeps moving, whatever the policy (a stall, such
+    as a fragment waiting forever for an acknowledgement, shows as a collapse).
+    The floor is far below every policy's measured efficiency (ionotrail bench
+    link), so this is not a performance test."""
+    s = scenarios.load(None, ["scenario.duration_hours=2", f"protocol.duplex={duplex}"])
+    report = simulate(s, policy, source="backlog", backlog_size=1001).report
+    assert report["bursts"] >= 0.5 * report["trails"]["used"] > 0
+    assert report["utilisation"] > 0.2
+    assert invariant_holds(report)
