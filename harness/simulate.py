@@ -16,10 +16,10 @@ import dataclasses
 import math
 import random
 import time
-
-import numpy as np
 from collections.abc import Callable
 from typing import Any
+
+import numpy as np
 
 from harness.air import Air
 from harness.channel.model import Channel, TrailSet

@@ -28,7 +28,6 @@ from collections.abc import Callable
 from contextvars import Context
 from typing import Any
 
-
 POLL_EVERY = 16
 
 

@@ -23,7 +23,7 @@ def test_air_end_follows_the_real_frame_length() -> None:
     sender.queue(b"x" * 20, 0.0)  # 24 sealed bytes: one short fragment
     fragment = sender.next_fragment(256, 10.0, 8 / 4800)
     assert fragment is not None and len(fragment.payload) == 24
-    ends = [m for m in sender._queue.values()][0].in_flight
+    ends = next(iter(sender._queue.values())).in_flight
     assert ends[0][0] == 10.0 + (24 + FRAGMENT_OVERHEAD) * 8 / 4800
     # An acknowledgement issued 0.2 s later that does not show the bytes proves them lost.
     sender.on_ack(AckBlock(TERMINAL, fragment.message_id, ()), 10.3, issued=10.25)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import random
 import struct
 
@@ -10,7 +11,17 @@ from hypothesis import strategies as st
 
 from terminal.errors import DecodeError
 from terminal.fragmentation import Priority
-from terminal.source import REPORT, REPORT_INTERVAL_S, SET_INTERVAL, Backlog, DemoGauge, ReportKind, decode_report, encode_report, report_created
+from terminal.source import (
+    REPORT,
+    REPORT_INTERVAL_S,
+    SET_INTERVAL,
+    Backlog,
+    DemoGauge,
+    ReportKind,
+    decode_report,
+    encode_report,
+    report_created,
+)
 from terminal.wire import ReplyStatus
 
 
@@ -25,7 +36,7 @@ def test_reports_every_fifteen_minutes_of_40_to_120_bytes() -> None:
     messages = run(DemoGauge(random.Random(1)), 10 * 86400)
     routine = [(t, p) for t, p, prio in messages if prio is Priority.ROUTINE]
     assert len(routine) == 960
-    gaps = {round(b[0] - a[0], 6) for a, b in zip(routine, routine[1:], strict=False)}
+    gaps = {round(b[0] - a[0], 6) for a, b in itertools.pairwise(routine)}
     assert gaps == {REPORT_INTERVAL_S}
     assert all(40 <= len(p) <= 120 for _, p in routine)
     assert len({len(p) for _, p in routine}) > 30  # sizes vary over the whole range
