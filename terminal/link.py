@@ -203,8 +203,10 @@ class Link:
     # --- inputs ----------------------------------------------------------------------
 
     def on_frame(self, arrival: Arrival) -> list[Effect]:
-        """A frame the modem heard.  Anything but a valid probe from our master
-        is counted and ignored; the terminal does not act on what it cannot trust."""
+        """A frame the modem heard: a probe from our master (its acknowledgement,
+        poll and command included), or a stand-alone acknowledgement or command
+        for us.  Anything else, or anything that fails to decode, is counted and
+        ignored; the terminal does not act on what it cannot trust."""
         raw = arrival.frame
         if raw == self._last_raw:  # the probe stream repeats itself; decoding is pure
             frame = self._last_frame
