@@ -67,8 +67,6 @@ class Air:
         self.used_trails: set[int] = set()
         self.on_uplink: Callable[[float, int, bool, float], None] | None = None
         """Observer of every uplink frame: (start time, bytes, arrived intact, Eb/N0 dB)."""
-        self.on_probe: Callable[[float, float], None] | None = None
-        """Observer of every probe the terminal heard: (time, Eb/N0 dB)."""
         self.probe_filter: Callable[[float, bytes], bool] | None = None
         """Fault hook: a probe that arrived intact reaches the terminal only if
         this returns True for (arrival time, frame); None passes every probe."""
@@ -206,8 +204,6 @@ class Air:
                 strongest = self.channel.strongest("down", emit)
                 snr_db = 10 * math.log10(strongest[1]) if strongest else -math.inf
                 self.counters.probes_delivered += 1
-                if self.on_probe is not None:
-                    self.on_probe(end, snr_db)
                 self.terminal.deliver(Arrival(frame, self.origin + end, snr_db, self._offset("down", strongest)))  # type: ignore[operator]
             else:
                 self.counters.probes_unheard += 1

@@ -13,6 +13,7 @@ from collections.abc import Callable
 from typing import Any
 
 from terminal.crc import using_c_extension
+from terminal.policy import POLICY_NAMES
 from terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus
 from terminal.wire.codec import decode, decode_with_construct, encode, encode_with_construct
 from terminal.wire.frames import Frame
@@ -255,11 +256,10 @@ def format_channel(report: dict[str, Any]) -> str:
 
 # --- the burst link ------------------------------------------------------------------
 
-LINK_POLICIES = ("adaptive", "fixed-32", "fixed-64", "fixed-128", "fixed-256", "stop-and-wait")
 BACKLOG_MESSAGE_BYTES = 1001  # a 9-byte report header and 496 readings
 
 
-def link_benchmark(hours: float = 24.0, policies: tuple[str, ...] = LINK_POLICIES, progress: Callable[[str], None] | None = None) -> dict[str, Any]:
+def link_benchmark(hours: float = 24.0, policies: tuple[str, ...] = POLICY_NAMES, progress: Callable[[str], None] | None = None) -> dict[str, Any]:
     """Every policy on the same demo-day realisation with a backlogged source.
 
     efficiency = payload bits delivered / the channel's capacity bound (uplink

@@ -16,7 +16,7 @@ import dataclasses
 import math
 import random
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
@@ -50,8 +50,6 @@ class Timeline:
     """What the plot draws; recorded only when asked for (it grows with the run)."""
 
     bursts: list[tuple[float, float, float]] = dataclasses.field(default_factory=list)  # start, end, probe Eb/N0 dB
-    uplink: list[tuple[float, bool]] = dataclasses.field(default_factory=list)  # frame start, intact
-    deliveries: list[float] = dataclasses.field(default_factory=list)
     queue: list[tuple[float, int]] = dataclasses.field(default_factory=list)  # time, messages pending
     openings: list[tuple[float, float, float]] = dataclasses.field(default_factory=list)  # trail start, peak Eb/N0 dB, open s (uplink)
 
@@ -127,7 +125,7 @@ def simulate(
     backlog_size: int = 1000,
     seconds: float | None = None,
     configure_air: Callable[[Air], None] | None = None,
-    master_commands: list[tuple[int, int, bytes]] = (),  # type: ignore[assignment]
+    master_commands: Sequence[tuple[int, int, bytes]] = (),
     trails: TrailSet | None = None,
     limits: Limits = DEFAULT_LIMITS,
     realtime: bool = False,
@@ -155,8 +153,6 @@ def simulate(
 
     def delivered(record: DeliveryRecord) -> None:
         deliveries.append(record)
-        if timeline is not None:
-            timeline.deliveries.append(record.delivered_s)
         if on_delivery is not None:
             on_delivery(record)
 
@@ -164,8 +160,6 @@ def simulate(
         loop = asyncio.get_running_loop()
         origin = loop.time()
         air = Air(channel, seed=scenario.seed, half_duplex=scenario.duplex == "half", origin=origin, oscillator_ppm=scenario.oscillator_ppm)
-        if timeline is not None:
-            air.on_uplink = lambda t, n, ok, snr: timeline.uplink.append((t, ok))
         if configure_air is not None:
             configure_air(air)
         master = MasterStation(

@@ -21,19 +21,26 @@ solicit a fresh verdict.
 
 from __future__ import annotations
 
+import bisect
 import collections
 import dataclasses
 import enum
 from collections.abc import Callable
 
 from terminal.errors import UsageError
-from terminal.limits import DEFAULT_LIMITS, FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MESSAGE_ID_BITS, Limits
+from terminal.limits import (
+    DEFAULT_LIMITS,
+    FRAGMENT_HEADER_BYTES,
+    FRAME_CRC_BYTES,
+    MESSAGE_ID_BITS,
+    OUTCOMES_KEPT,
+    Limits,
+)
 from terminal.rangeset import RangeSet
 from terminal.wire.codec import seal_message
 from terminal.wire.frames import AckBlock, Fragment
 
 FRAGMENT_OVERHEAD = FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES
-OUTCOMES_KEPT = 64  # settled-piece records held for the link to read
 
 
 class Priority(enum.IntEnum):
@@ -73,7 +80,7 @@ class _Outgoing:
     acked: RangeSet = dataclasses.field(default_factory=RangeSet)
     sent: RangeSet = dataclasses.field(default_factory=RangeSet)  # since it was last acknowledged
     # Pieces sent by next_fragment and not yet confirmed, as (end of airtime, start, end),
-    # oldest first; at most Limits.max_unconfirmed_pieces (a piece resent after an
+    # in airtime order; at most Limits.max_unconfirmed_pieces (a piece resent after an
     # acknowledgement forgot it may overlap an older one; that costs airtime only).
     in_flight: list[tuple[float, int, int]] = dataclasses.field(default_factory=list)
     last_ack: AckBlock | None = None  # the block last applied (probes repeat it)
@@ -264,7 +271,7 @@ class Sender:
     def _track(self, message: _Outgoing, start: int, take: int, air_end: float) -> Fragment:
         fragment = self._fragment(message, start, take)
         self.counters.fragments += 1
-        message.in_flight.append((air_end, start, start + take))
+        bisect.insort(message.in_flight, (air_end, start, start + take))  # kept in airtime order
         excess = len(message.in_flight) - self.limits.max_unconfirmed_pieces
         if excess > 0:  # the oldest count as lost: nothing waits unboundedly for a verdict
             cutoff = message.in_flight[excess - 1][0]
@@ -332,10 +339,7 @@ class Sender:
         elif not message.in_flight or (issued is not None and message.in_flight[0][0] > issued):
             return []  # a repeat, and nothing it could settle
         acked = message.acked
-        if issued is None:
-            message.in_flight = [p for p in message.in_flight if not acked.contains(p[1], p[2])]
-        else:
-            self._settle(message, lambda piece: acked.contains(piece[1], piece[2]) or piece[0] <= issued)
+        self._settle(message, lambda piece: acked.contains(piece[1], piece[2]) or (issued is not None and piece[0] <= issued))
         return []
 
     def _find(self, wire_id: int) -> _Outgoing | None:

@@ -61,6 +61,10 @@ space, or a receiver cannot tell old from new after wrap-around (the
 selective-repeat bound, window <= 2^(n-1); from memory of any data-link
 textbook)."""
 
+OUTCOMES_KEPT = 64
+"""Settled-fragment records (size, lost) a sender keeps for its fragment
+policy; the link reads them after every acknowledgement, so a few suffice."""
+
 MAX_SERIAL_PAYLOAD = MAX_FRAME_BYTES + 16
 """A host-modem record: one air frame plus up to 16 bytes of modem metadata
 (timestamps, signal quality)."""

@@ -156,7 +156,10 @@ class Adaptive:
         self._fitted = True
         self._exposure_bits = 0.0  # exponentially weighted air bits of settled fragments
         self._losses = 0.0  # and how many of them were lost
-        self._sizes: dict[int, int] = {}  # a in 1 % steps -> payload bytes; bounded by TAU_RANGE_S
+        # a in 1 % steps -> payload bytes.  a lies between one frame's bits (the loss
+        # record: at most one loss per settled fragment) and 2 x 30 s x R (TAU_RANGE_S),
+        # so the cache holds at most about a thousand entries.
+        self._sizes: dict[int, int] = {}
 
     def burst_started(self, now: float) -> None:
         self._refit()

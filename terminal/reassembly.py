@@ -109,7 +109,7 @@ class _Partial:
         end = start + len(payload)
         if self.held.ranges_after_add(start, end) == len(self.chunks) and self.held.contains(start - 1, start):
             # The common case, bytes that extend a held range at its end without
-            # reaching the next one: append to that chunk in place.
+            # reaching the next one: extend that one chunk, no merge needed.
             first = max(s for s in self.chunks if s < start)
             chunk = self.chunks[first]
             if first + len(chunk) == start:

