@@ -11,9 +11,9 @@ from __future__ import annotations
 
 import dataclasses
 
-from terminal.errors import UsageError
+from ionotrail.terminal.errors import UsageError
 
-# --- wire maxima (fixed by the formats in terminal.wire.formats) -------------
+# --- wire maxima (fixed by the formats in ionotrail.terminal.wire.formats) -------------
 
 FORMAT_VERSION = 1
 """Format version carried in the high nibble of every frame's first byte."""

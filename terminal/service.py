@@ -1,10 +1,10 @@
 """The terminal as an asyncio service: the protocol core bound to a port and a clock.
 
 Nothing protocol-related lives here.  The service hands every received frame
-to the :class:`~terminal.link.Link`, carries out the effects it returns
+to the :class:`~ionotrail.terminal.link.terminal.Link`, carries out the effects it returns
 (frames to the port, events to an observer), keeps one timer armed at the
 link's deadline, and moves messages from the application's
-:class:`~terminal.source.MessageSource` into the sender queue.  Time is the
+:class:`MessageSource` into the sender queue.  Time is the
 event loop's clock, so the same code runs in real time on a modem and
 thousands of times faster on a virtual-time loop.
 
@@ -19,11 +19,27 @@ from __future__ import annotations
 import asyncio
 import dataclasses
 from collections.abc import Callable
+from typing import Protocol
 
-from terminal.fragmentation import Priority
-from terminal.link import Arrival, CommandArrived, Effect, Link, Transmit
-from terminal.ports import Port
-from terminal.source import MessageSource
+from ionotrail.terminal.delivery.sender import Priority
+from ionotrail.terminal.link.terminal import Arrival, CommandArrived, Effect, Link, Transmit
+from ionotrail.terminal.ports import Port
+from ionotrail.terminal.wire.formats import ReplyStatus
+
+
+class MessageSource(Protocol):
+    """What the service asks of an application that produces messages."""
+
+    def next_due(self) -> float | None:
+        """Link-clock time of the next message (None: no more)."""
+
+    def take(self, now: float, room: int) -> list[tuple[bytes, Priority]]:
+        """Messages due by ``now``, oldest first.  ``room`` is how many the
+        sender can still queue; a sensor's readings happen regardless (the
+        service reports the overflow as abandoned), a backlog fills only the room."""
+
+    def command(self, opcode: int, arguments: bytes) -> tuple[ReplyStatus, bytes]:
+        """Execute a downlink command once; its reply status and result."""
 
 
 @dataclasses.dataclass(frozen=True, slots=True)

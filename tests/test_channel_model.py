@@ -10,9 +10,8 @@ import math
 
 import numpy as np
 import pytest
-
-from harness.channel import physics, scenario, sky
-from harness.channel.model import Channel, TrailSet
+from ionotrail.harness.channel import physics, scenario, sky
+from ionotrail.harness.channel.model import Channel, TrailSet
 
 NO_SHOWERS = ["channel.showers=false"]
 # A link far above threshold, so that underdense trails run well below the

@@ -10,9 +10,8 @@ import math
 
 import pytest
 from geographiclib.geodesic import Geodesic
-
-from harness.channel import physics
-from harness.channel.geometry import (
+from ionotrail.harness.channel import physics
+from ionotrail.harness.channel.geometry import (
     EARTH_RADIUS_KM,
     central_angle,
     max_single_hop_km,
@@ -115,7 +114,7 @@ def test_great_circle_distance_against_geographiclib(pair: tuple[tuple[float, fl
 
 
 def test_path_beyond_one_hop_is_refused_with_an_explanation() -> None:
-    from harness.channel.geometry import PathError
+    from ionotrail.harness.channel.geometry import PathError
 
     with pytest.raises(PathError, match="beyond the single-hop limit of 2187 km"):
         path_geometry(60.0, 10.0, 40.0, 20.0, 95.0)

@@ -8,14 +8,13 @@ import subprocess
 import sys
 
 import pytest
-
-from harness.cli import _demo_capture, main
-from terminal.serial_framing import encode_record
-from terminal.wire import Fragment, decode, encode, unseal_message
+from ionotrail.harness.cli.main import _demo_capture, main
+from ionotrail.terminal.wire import Fragment, decode, encode, unseal_message
+from ionotrail.terminal.wire.serial_framing import encode_record
 
 
 def run(*args: str) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "harness.cli", *args], capture_output=True, text=True, timeout=120, check=False)
+    return subprocess.run([sys.executable, "-m", "ionotrail.harness.cli.main", *args], capture_output=True, text=True, timeout=120, check=False)
 
 
 def test_decode_demo_prints_fields() -> None:

@@ -11,8 +11,7 @@ import crcmod.predefined
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-
-from terminal.crc import crc16, crc32c, using_c_extension
+from ionotrail.terminal.wire.crc import crc16, crc32c, using_c_extension
 
 CHECK_INPUT = b"123456789"
 

@@ -11,12 +11,23 @@ import tracemalloc
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from ionotrail.harness.testing import strategies
+from ionotrail.harness.testing.fuzz import hostile_inputs
+from ionotrail.terminal.errors import DecodeError, Reason
+from ionotrail.terminal.limits import MAX_FRAME_BYTES
+from ionotrail.terminal.wire import (
+    Ack,
+    AckBlock,
+    Command,
+    CommandBlock,
+    Fragment,
+    Probe,
+    Reply,
+    ReplyStatus,
+    decode,
+    encode,
+)
 
-from harness import strategies
-from harness.fuzz import hostile_inputs
-from terminal.errors import DecodeError, Reason
-from terminal.limits import MAX_FRAME_BYTES
-from terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus, decode, encode
 from tests.conftest import thorough
 
 SEED_FRAMES = [

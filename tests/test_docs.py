@@ -6,8 +6,7 @@ import re
 from pathlib import Path
 
 import pytest
-
-from harness import wiredoc
+from ionotrail.harness.reports import wiredoc
 
 DOCS = Path(__file__).resolve().parent.parent / "docs"
 

@@ -5,8 +5,7 @@ from __future__ import annotations
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-
-from terminal.duplicates import CompletedWindow, DuplicateFilter, Verdict
+from ionotrail.terminal.delivery.duplicates import CompletedWindow, DuplicateFilter, Verdict
 
 
 def _run(window: int, arrivals: list[int]) -> list[str]:
@@ -31,7 +30,7 @@ def test_worked_example_window_of_four() -> None:
 
 def test_sixty_four_is_the_default_and_thirty_two_works() -> None:
     # RFC 4303 s3.4.3: a window of 32 must be supported; 64 is the default.
-    from terminal.limits import DEFAULT_LIMITS
+    from ionotrail.terminal.limits import DEFAULT_LIMITS
 
     assert DEFAULT_LIMITS.duplicate_window == 64
     assert _run(32, [100, 69, 68, 69]) == ["new", "new", "stale", "duplicate"]

@@ -8,8 +8,7 @@ from typing import Any
 import pytest
 from hypothesis import HealthCheck, Phase, settings
 from hypothesis.stateful import run_state_machine_as_test
-
-from harness.stateful import ExactlyOnceMachine, WithoutDuplicateWindow
+from ionotrail.harness.testing.stateful import ExactlyOnceMachine, WithoutDuplicateWindow
 
 
 def suite_settings(**overrides: Any) -> settings:

@@ -14,14 +14,13 @@ from typing import Any
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-
-from harness import strategies
-from harness.fuzz import hostile_inputs
-from terminal.crc import crc16
-from terminal.errors import DecodeError
-from terminal.limits import MAX_FRAME_BYTES
-from terminal.wire import Ack, AckBlock, CommandBlock, Fragment, Probe, fastpath
-from terminal.wire.codec import decode_with_construct, encode_with_construct
+from ionotrail.harness.testing import strategies
+from ionotrail.harness.testing.fuzz import hostile_inputs
+from ionotrail.terminal.errors import DecodeError
+from ionotrail.terminal.limits import MAX_FRAME_BYTES
+from ionotrail.terminal.wire import Ack, AckBlock, CommandBlock, Fragment, Probe, fastpath
+from ionotrail.terminal.wire.codec import decode_with_construct, encode_with_construct
+from ionotrail.terminal.wire.crc import crc16
 
 PATHS: dict[str, tuple[Any, Callable[[Any], bytes], Callable[[bytes], Any], int]] = {
     "fragment": (strategies.fragments(), fastpath.encode_fragment, fastpath.decode_fragment, fastpath.HEAD_BYTE),

@@ -4,13 +4,23 @@ from __future__ import annotations
 
 import pytest
 from hypothesis import given
-
-from harness import strategies
-from terminal.crc import crc16
-from terminal.errors import BadField, BadLength, DecodeError, MessageCrcMismatch, TruncatedFrame, UsageError
-from terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MAX_FRAME_BYTES, MAX_MESSAGE_STREAM
-from terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus, decode, encode
-from terminal.wire.codec import decode_with_construct, encode_with_construct, seal_message, unseal_message
+from ionotrail.harness.testing import strategies
+from ionotrail.terminal.errors import BadField, BadLength, DecodeError, MessageCrcMismatch, TruncatedFrame, UsageError
+from ionotrail.terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MAX_FRAME_BYTES, MAX_MESSAGE_STREAM
+from ionotrail.terminal.wire import (
+    Ack,
+    AckBlock,
+    Command,
+    CommandBlock,
+    Fragment,
+    Probe,
+    Reply,
+    ReplyStatus,
+    decode,
+    encode,
+)
+from ionotrail.terminal.wire.codec import decode_with_construct, encode_with_construct, seal_message, unseal_message
+from ionotrail.terminal.wire.crc import crc16
 
 
 def _with_crc(body: bytes) -> bytes:

@@ -5,11 +5,11 @@ from __future__ import annotations
 import dataclasses
 
 import pytest
-
-from terminal.errors import UsageError
-from terminal.fragmentation import MessageAcknowledged, Sender
-from terminal.limits import DEFAULT_LIMITS, Limits
-from terminal.link import (
+from ionotrail.terminal.delivery.sender import MessageAcknowledged, Sender
+from ionotrail.terminal.errors import UsageError
+from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.link.policy import Fixed, StopAndWait
+from ionotrail.terminal.link.terminal import (
     TRANSITIONS,
     Action,
     Arrival,
@@ -22,8 +22,7 @@ from terminal.link import (
     State,
     Transmit,
 )
-from terminal.policy import Fixed, StopAndWait
-from terminal.wire import AckBlock, CommandBlock, Fragment, Probe, Reply, ReplyStatus, decode, encode
+from ionotrail.terminal.wire import AckBlock, CommandBlock, Fragment, Probe, Reply, ReplyStatus, decode, encode
 
 TERMINAL, OTHER, MASTER = 0x0A31, 0x0B00, 7
 BIT_RATE = 4800.0
@@ -337,7 +336,7 @@ def test_limits_check_the_link_timeouts() -> None:
 
 
 def test_idle_probes_and_a_new_bursts_first_probe_stay_out_of_the_last_bursts_fit() -> None:
-    from terminal.policy import Adaptive
+    from ionotrail.terminal.link.policy import Adaptive
 
     policy = Adaptive(BIT_RATE, prior_tau_s=0.3)
     link = make_link(messages=3, size=1000, policy=policy)

@@ -6,10 +6,9 @@ import math
 import random
 
 import pytest
-
-from harness.channel import physics
-from terminal.errors import UsageError
-from terminal.policy import (
+from ionotrail.harness.channel import physics
+from ionotrail.terminal.errors import UsageError
+from ionotrail.terminal.link.policy import (
     MAX_FRAGMENT_PAYLOAD,
     OVERHEAD_BITS,
     Adaptive,

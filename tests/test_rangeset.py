@@ -5,8 +5,7 @@ from __future__ import annotations
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-
-from terminal.rangeset import RangeSet
+from ionotrail.terminal.delivery.rangeset import RangeSet
 
 spans = st.tuples(st.integers(0, 60), st.integers(0, 60)).map(sorted).map(tuple)
 

@@ -5,15 +5,14 @@ from __future__ import annotations
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from harness.faults import FaultSchedule
-from harness.pair import MASTER, TERMINAL, LinkPair
-from harness.strategies import fault_schedules, workloads
-from terminal.errors import UsageError
-from terminal.fragmentation import FRAGMENT_OVERHEAD, MessageAcknowledged, MessageRefused, Priority, Sender
-from terminal.limits import DEFAULT_LIMITS, MAX_ACK_RANGES, Limits
-from terminal.reassembly import Reassembler
-from terminal.wire import AckBlock, Fragment, seal_message
+from ionotrail.harness.testing.faults import FaultSchedule
+from ionotrail.harness.testing.pair import MASTER, TERMINAL, LinkPair
+from ionotrail.harness.testing.strategies import fault_schedules, workloads
+from ionotrail.terminal.delivery.reassembly import Reassembler
+from ionotrail.terminal.delivery.sender import FRAGMENT_OVERHEAD, MessageAcknowledged, MessageRefused, Priority, Sender
+from ionotrail.terminal.errors import UsageError
+from ionotrail.terminal.limits import DEFAULT_LIMITS, MAX_ACK_RANGES, Limits
+from ionotrail.terminal.wire import AckBlock, Fragment, seal_message
 
 SOURCE = (False, TERMINAL, MASTER)
 
@@ -156,7 +155,7 @@ def test_ids_unwrap_against_the_window_at_completion_not_at_first_fragment() -> 
 
 
 def test_completing_behind_the_window_keeps_the_bitmap_bounded() -> None:
-    from terminal.duplicates import CompletedWindow
+    from ionotrail.terminal.delivery.duplicates import CompletedWindow
 
     window = CompletedWindow(64, top=10_000, bitmap=1)
     window.complete(10_000 - 5_000)

@@ -9,9 +9,8 @@ import sys
 from pathlib import Path
 
 import pytest
-
-from harness.channel import scenario
-from harness.channel.scenario import ScenarioError
+from ionotrail.harness.channel import scenario
+from ionotrail.harness.channel.scenario import ScenarioError
 
 
 def test_builtin_demo_matches_the_schema_defaults() -> None:
@@ -66,7 +65,7 @@ def test_missing_file_is_named(tmp_path: Path) -> None:
 
 
 def _run(*args: str) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([sys.executable, "-m", "harness.cli", *args], capture_output=True, text=True, timeout=300, check=False)
+    return subprocess.run([sys.executable, "-m", "ionotrail.harness.cli.main", *args], capture_output=True, text=True, timeout=300, check=False)
 
 
 def test_channel_command_json_keys_and_trails_file(tmp_path: Path) -> None:

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from terminal.fragmentation import FRAGMENT_OVERHEAD, Priority, Sender
-from terminal.limits import Limits
-from terminal.wire import AckBlock
+from ionotrail.terminal.delivery.sender import FRAGMENT_OVERHEAD, Priority, Sender
+from ionotrail.terminal.limits import Limits
+from ionotrail.terminal.wire import AckBlock
 
 TERMINAL, MASTER = 0x0A31, 7
 

@@ -5,10 +5,9 @@ from __future__ import annotations
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-
-from terminal.errors import BadLineCode, UsageError
-from terminal.limits import MAX_SERIAL_PAYLOAD, cobs_encoded_max
-from terminal.serial_framing import Deframer, decode_record, encode_record
+from ionotrail.terminal.errors import BadLineCode, UsageError
+from ionotrail.terminal.limits import MAX_SERIAL_PAYLOAD, cobs_encoded_max
+from ionotrail.terminal.wire.serial_framing import Deframer, decode_record, encode_record
 
 # Worked examples of COBS encoding [Cheshire and Baker, "Consistent Overhead
 # Byte Stuffing", IEEE/ACM Trans. Networking 7(2), 1999; example set from memory

@@ -7,15 +7,14 @@ import math
 import random
 
 import pytest
-
-from harness.channel import scenario as scenarios
-from harness.channel.model import Opening, TrailSet, with_openings
-from harness.simulate import REPORT_KEYS, invariant_holds, simulate
-from terminal.crc import crc32c
-from terminal.fragmentation import Priority
-from terminal.limits import Limits
-from terminal.source import SET_INTERVAL, DemoGauge
-from terminal.wire import Probe, ReplyStatus, decode
+from ionotrail.harness.channel import scenario as scenarios
+from ionotrail.harness.channel.model import Opening, TrailSet, with_openings
+from ionotrail.harness.demo.gauge import SET_INTERVAL, DemoGauge
+from ionotrail.harness.runners.simulate import REPORT_KEYS, invariant_holds, simulate
+from ionotrail.terminal.delivery.sender import Priority
+from ionotrail.terminal.limits import Limits
+from ionotrail.terminal.wire import Probe, ReplyStatus, decode
+from ionotrail.terminal.wire.crc import crc32c
 
 
 class Messages:
@@ -189,7 +188,7 @@ def test_a_command_reaches_the_demo_gauge_once() -> None:
 
 
 def test_the_invariant_catches_a_sender_that_drops_a_message_silently(monkeypatch: pytest.MonkeyPatch) -> None:
-    from terminal.fragmentation import Sender
+    from ionotrail.terminal.delivery.sender import Sender
 
     queue = Sender.queue
     calls = []

@@ -8,10 +8,7 @@ import struct
 
 from hypothesis import given
 from hypothesis import strategies as st
-
-from terminal.errors import DecodeError
-from terminal.fragmentation import Priority
-from terminal.source import (
+from ionotrail.harness.demo.gauge import (
     REPORT,
     REPORT_INTERVAL_S,
     SET_INTERVAL,
@@ -22,7 +19,9 @@ from terminal.source import (
     encode_report,
     report_created,
 )
-from terminal.wire import ReplyStatus
+from ionotrail.terminal.delivery.sender import Priority
+from ionotrail.terminal.errors import DecodeError
+from ionotrail.terminal.wire import ReplyStatus
 
 
 def run(gauge: DemoGauge, seconds: float) -> list[tuple[float, bytes, Priority]]:

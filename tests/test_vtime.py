@@ -6,8 +6,7 @@ import asyncio
 import time
 
 import pytest
-
-from harness.vtime import VirtualTimeDeadlock, VirtualTimeLoop
+from ionotrail.harness.runners.vtime import VirtualTimeDeadlock, VirtualTimeLoop
 
 
 def run(coro_factory, start: float = 0.0):  # type: ignore[no-untyped-def]

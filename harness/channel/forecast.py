@@ -14,10 +14,9 @@ from collections.abc import Iterator
 from typing import Any, TextIO
 
 import numpy as np
-
-from harness.channel import sky
-from harness.channel.model import DIRECTIONS, TrailSet, exclusive_open
-from terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MESSAGE_CRC_BYTES
+from ionotrail.harness.channel import sky
+from ionotrail.harness.channel.model import DIRECTIONS, TrailSet, exclusive_open
+from ionotrail.terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MESSAGE_CRC_BYTES
 
 PROBE_MESSAGE_BYTES = 100
 """The forecast's waiting time is for one 100-byte message in one fragment."""
@@ -119,9 +118,9 @@ def monthly(trails: TrailSet) -> list[dict[str, Any]]:
     out = []
     start = trails.scenario.start
     end = start + dt.timedelta(seconds=trails.scenario.duration_s)
-    cursor = dt.datetime(start.year, start.month, 1, tzinfo=dt.timezone.utc)
+    cursor = dt.datetime(start.year, start.month, 1, tzinfo=dt.UTC)
     while cursor < end:
-        nxt = dt.datetime(cursor.year + cursor.month // 12, cursor.month % 12 + 1, 1, tzinfo=dt.timezone.utc)
+        nxt = dt.datetime(cursor.year + cursor.month // 12, cursor.month % 12 + 1, 1, tzinfo=dt.UTC)
         lo, hi = max(cursor, start).timestamp(), min(nxt, end).timestamp()
         sel = (stamps >= lo) & (stamps < hi)
         hours = (hi - lo) / 3600.0

@@ -26,11 +26,10 @@ import math
 from collections.abc import Callable
 
 import numpy as np
+from ionotrail.harness.channel import physics, sky
+from ionotrail.harness.channel.geometry import EARTH_RADIUS_KM, PathGeometry, path_geometry
+from ionotrail.harness.channel.scenario import Scenario, Station
 from numpy.typing import NDArray
-
-from harness.channel import physics, sky
-from harness.channel.geometry import EARTH_RADIUS_KM, PathGeometry, path_geometry
-from harness.channel.scenario import Scenario, Station
 
 Array = NDArray[np.float64]
 

@@ -77,12 +77,12 @@ def _instant(value: Any) -> str | None:
 
 def _parse_instant(value: Any) -> dt.datetime | None:
     if isinstance(value, dt.datetime):
-        return value if value.tzinfo else value.replace(tzinfo=dt.timezone.utc)
+        return value if value.tzinfo else value.replace(tzinfo=dt.UTC)
     try:
         parsed = dt.datetime.fromisoformat(str(value).replace("Z", "+00:00"))
     except ValueError:
         return None
-    return parsed if parsed.tzinfo else parsed.replace(tzinfo=dt.timezone.utc)
+    return parsed if parsed.tzinfo else parsed.replace(tzinfo=dt.UTC)
 
 
 def _station(name: str, lat: float, lon: float, power: float) -> dict[str, Field]:
@@ -224,7 +224,7 @@ def parse_override(text: str) -> tuple[str, str, Any]:
 def load(path: str | Path | None = None, overrides: Iterable[str] = ()) -> Scenario:
     """The scenario in ``path`` (the built-in demo when None), with overrides."""
     if path is None:
-        text, origin = resources.files("harness").joinpath("demo/link.toml").read_text(encoding="utf-8"), "built-in demo"
+        text, origin = resources.files("ionotrail.harness.demo").joinpath("link.toml").read_text(encoding="utf-8"), "built-in demo"
     else:
         origin = str(path)
         try:
@@ -257,7 +257,7 @@ def _build(m: dict[str, dict[str, Any]], origin: str) -> Scenario:
     stations = {name: Station(**{k: m[name][k] for k in SCHEMA[name]}) for name in ("terminal", "master")}
     return Scenario(
         name=m["scenario"]["name"],
-        start=start.astimezone(dt.timezone.utc),
+        start=start.astimezone(dt.UTC),
         duration_hours=float(m["scenario"]["duration_hours"]),
         seed=int(m["scenario"]["seed"]),
         terminal=stations["terminal"],

@@ -1,7 +1,7 @@
 """The modem as the service sees it: one small interface, several adapters.
 
 A port sends frames, reports the frames it receives with what the modem
-measured (:class:`~terminal.link.Arrival`: arrival time on the event loop's
+measured (:class:`~ionotrail.terminal.link.terminal.Arrival`: arrival time on the event loop's
 clock, SNR, frequency offset), and can be asked to start or stop listening
 and probing.  Probing is a stream the port owns, as a real modem does it in
 hardware: the master hands it a probe frame and an interval, and replaces the
@@ -9,7 +9,7 @@ frame whenever its content (acknowledgement, poll, command) changes.  A
 simulated port reports only the probes the channel delivers, so silence costs
 nothing.
 
-Adapters: :class:`harness.air.SimulatedPort` over the channel simulator; the
+Adapters: :class:`ionotrail.harness.emulators.air.SimulatedPort` over the channel simulator; the
 serial modem adapter must fit this same interface.
 """
 
@@ -18,7 +18,7 @@ from __future__ import annotations
 import abc
 from collections.abc import Callable
 
-from terminal.link import Arrival
+from ionotrail.terminal.link.terminal import Arrival
 
 Listener = Callable[[Arrival], None]
 

@@ -1,8 +1,8 @@
 """Over-the-air formats: declarations, representations and codecs."""
 
-from terminal.wire.codec import decode, encode, seal_message, unseal_message
-from terminal.wire.formats import FrameType, ReplyStatus
-from terminal.wire.frames import Ack, AckBlock, Command, CommandBlock, Fragment, Frame, Probe, Reply
+from ionotrail.terminal.wire.codec import decode, encode, seal_message, unseal_message
+from ionotrail.terminal.wire.formats import FrameType, ReplyStatus
+from ionotrail.terminal.wire.frames import Ack, AckBlock, Command, CommandBlock, Fragment, Frame, Probe, Reply
 
 __all__ = [
     "Ack",

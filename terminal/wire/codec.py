@@ -3,7 +3,7 @@
 :func:`decode` is the only entry point for received frames.  Its checks run
 in a fixed order: size bounds (before anything is copied), CRC, version,
 type, fields, semantic rules.  Whatever the input, it returns a valid frame
-or raises a :class:`~terminal.errors.DecodeError` subclass.
+or raises a :class:`~ionotrail.terminal.errors.DecodeError` subclass.
 """
 
 from __future__ import annotations
@@ -12,9 +12,7 @@ from collections.abc import Callable
 from typing import Any
 
 from construct import ChecksumError, ConstructError, Container, StreamError
-
-from terminal.crc import crc32c
-from terminal.errors import (
+from ionotrail.terminal.errors import (
     BadField,
     BadLength,
     CrcMismatch,
@@ -26,15 +24,16 @@ from terminal.errors import (
     UnsupportedVersion,
     UsageError,
 )
-from terminal.limits import (
+from ionotrail.terminal.limits import (
     FORMAT_VERSION,
     MAX_FRAME_BYTES,
     MAX_MESSAGE_STREAM,
     MESSAGE_CRC_BYTES,
 )
-from terminal.wire import fastpath
-from terminal.wire.formats import FRAME_FORMATS, FrameType, LeftoverBytes
-from terminal.wire.frames import Ack, AckBlock, Command, CommandBlock, Fragment, Frame, Probe, Reply
+from ionotrail.terminal.wire import fastpath
+from ionotrail.terminal.wire.crc import crc32c
+from ionotrail.terminal.wire.formats import FRAME_FORMATS, FrameType, LeftoverBytes
+from ionotrail.terminal.wire.frames import Ack, AckBlock, Command, CommandBlock, Fragment, Frame, Probe, Reply
 
 _FRAME_CLASSES: dict[FrameType, type] = {
     FrameType.PROBE: Probe,

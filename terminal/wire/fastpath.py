@@ -16,9 +16,8 @@ from __future__ import annotations
 
 import struct
 
-from terminal.crc import crc16
-from terminal.errors import BadField, BadLength, CrcMismatch, FrameTooLong, TruncatedFrame, UsageError
-from terminal.limits import (
+from ionotrail.terminal.errors import BadField, BadLength, CrcMismatch, FrameTooLong, TruncatedFrame, UsageError
+from ionotrail.terminal.limits import (
     FORMAT_VERSION,
     FRAGMENT_HEADER_BYTES,
     FRAME_CRC_BYTES,
@@ -27,8 +26,9 @@ from terminal.limits import (
     MIN_FRAME_BYTES,
     OFFSET_BITS,
 )
-from terminal.wire.formats import FrameType
-from terminal.wire.frames import Ack, AckBlock, CommandBlock, Fragment, Probe, check_fragment_span
+from ionotrail.terminal.wire.crc import crc16
+from ionotrail.terminal.wire.formats import FrameType
+from ionotrail.terminal.wire.frames import Ack, AckBlock, CommandBlock, Fragment, Probe, check_fragment_span
 
 HEAD_BYTE = (FORMAT_VERSION << 4) | FrameType.FRAGMENT
 """First byte of every fragment of this format version."""

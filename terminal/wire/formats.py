@@ -41,9 +41,8 @@ from construct import (
     this,
 )
 from construct.core import StreamError
-
-from terminal.crc import crc16, crc32c
-from terminal.limits import FRAME_CRC_BYTES, MESSAGE_CRC_BYTES, OFFSET_BITS
+from ionotrail.terminal.limits import FRAME_CRC_BYTES, MESSAGE_CRC_BYTES, OFFSET_BITS
+from ionotrail.terminal.wire.crc import crc16, crc32c
 
 
 class FrameType(enum.IntEnum):

@@ -12,14 +12,14 @@ from __future__ import annotations
 
 from typing import NamedTuple
 
-from terminal.errors import UsageError
-from terminal.limits import (
+from ionotrail.terminal.errors import UsageError
+from ionotrail.terminal.limits import (
     MAX_ACK_RANGES,
     MAX_COMMAND_BYTES,
     MAX_FRAGMENT_PAYLOAD,
     MAX_MESSAGE_STREAM,
 )
-from terminal.wire.formats import FrameType, ReplyStatus
+from ionotrail.terminal.wire.formats import FrameType, ReplyStatus
 
 ByteRange = tuple[int, int]
 """Half-open ``(start, end)`` range of bytes in a sealed message."""

@@ -1,7 +1,7 @@
 """The main job: a terminal, a master and the channel between them, for a period.
 
 :func:`simulate` generates the scenario's trails, joins a master emulator and
-a terminal service through :class:`~harness.air.Air`, runs them on a
+a terminal service through :class:`~ionotrail.harness.emulators.air.Air`, runs them on a
 virtual-time loop (or, for the equivalence test, in real time), and reports
 what a link engineer asks: how many messages were offered, delivered,
 pending and abandoned, the latency distribution, how much of the channel's
@@ -20,19 +20,18 @@ from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
-
-from harness.air import Air
-from harness.channel.model import Channel, TrailSet
-from harness.channel.scenario import Scenario
-from harness.master import DeliveryRecord, MasterStation
-from harness.vtime import VirtualTimeLoop
-from terminal.crc import crc32c
-from terminal.fragmentation import MessageAcknowledged, MessageRefused, Sender
-from terminal.limits import DEFAULT_LIMITS, Limits
-from terminal.link import BurstEnded, BurstStarted, Duplex, Link
-from terminal.policy import by_name
-from terminal.service import MessageAbandoned, MessageQueued, ServiceEvent, TerminalService
-from terminal.source import Backlog, DemoGauge, MessageSource
+from ionotrail.harness.channel.model import Channel, TrailSet
+from ionotrail.harness.channel.scenario import Scenario
+from ionotrail.harness.demo.gauge import Backlog, DemoGauge
+from ionotrail.harness.emulators.air import Air
+from ionotrail.harness.emulators.master import DeliveryRecord, MasterStation
+from ionotrail.harness.runners.vtime import VirtualTimeLoop
+from ionotrail.terminal.delivery.sender import MessageAcknowledged, MessageRefused, Sender
+from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.link.policy import by_name
+from ionotrail.terminal.link.terminal import BurstEnded, BurstStarted, Duplex, Link
+from ionotrail.terminal.service import MessageAbandoned, MessageQueued, MessageSource, ServiceEvent, TerminalService
+from ionotrail.terminal.wire.crc import crc32c
 
 REPORT_KEYS = (
     "scenario", "seed", "policy", "sim_seconds", "wall_seconds", "speedup",

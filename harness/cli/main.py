@@ -16,10 +16,10 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
-from terminal.errors import CrcMismatch, DecodeError
-from terminal.serial_framing import Deframer
-from terminal.wire import Frame
-from terminal.wire.codec import decode
+from ionotrail.terminal.errors import CrcMismatch, DecodeError
+from ionotrail.terminal.wire import Frame
+from ionotrail.terminal.wire.codec import decode
+from ionotrail.terminal.wire.serial_framing import Deframer
 
 SAFETY = """\
 safety: meteor-burst links use VHF transmitters of tens to hundreds of watts.
@@ -46,7 +46,7 @@ class UserError(Exception):
 
 
 def _demo_capture() -> str:
-    return resources.files("harness").joinpath("demo/capture.hex").read_text(encoding="utf-8")
+    return resources.files("ionotrail.harness.demo").joinpath("capture.hex").read_text(encoding="utf-8")
 
 
 def _hex_frames(lines: Iterator[str], origin: str) -> Iterator[tuple[str, bytes | str]]:
@@ -116,7 +116,7 @@ def _show(key: str, value: Any) -> str:
 def _describe_error(raw: bytes, exc: DecodeError) -> str:
     detail = exc.message
     if isinstance(exc, CrcMismatch):
-        from terminal.crc import crc16
+        from ionotrail.terminal.wire.crc import crc16
 
         detail += f" (received 0x{raw[-2:].hex()}, computed 0x{crc16(raw[:-2]):04x})"
     return detail
@@ -174,7 +174,7 @@ def _emit_error(args: argparse.Namespace, label: str, raw: bytes | None, reason:
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
-    from harness import bench
+    from ionotrail.harness.bench import suite as bench
 
     progress = None if args.json else (lambda name: print(f"measuring {name} ...", file=sys.stderr, flush=True))
     if args.what == "codec":
@@ -187,7 +187,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
         report = bench.channel_benchmark(progress=progress)
         text = bench.format_channel(report)
     else:
-        from harness.channel.scenario import ScenarioError
+        from ionotrail.harness.channel.scenario import ScenarioError
 
         if not (0.01 <= args.hours <= 24 * 31):
             raise UserError(f"--hours {args.hours:g}: expected 0.01 to {24 * 31} hours")
@@ -207,7 +207,7 @@ DOCUMENTS = ("docs/wire.md", "docs/delivery.md", "docs/scenario.md", "docs/link.
 
 
 def cmd_docs(args: argparse.Namespace) -> int:
-    from harness import wiredoc
+    from ionotrail.harness.reports import wiredoc
 
     stale = 0
     for name in args.path or DOCUMENTS:
@@ -230,7 +230,7 @@ def cmd_docs(args: argparse.Namespace) -> int:
 
 
 def _scenario(args: argparse.Namespace) -> Any:
-    from harness.channel import scenario
+    from ionotrail.harness.channel import scenario
 
     overrides = list(args.set or [])
     if getattr(args, "days", None) is not None:
@@ -257,9 +257,9 @@ def _progress(label: str) -> Any:
 
 
 def cmd_channel(args: argparse.Namespace) -> int:
-    from harness.channel import forecast as fc
-    from harness.channel.geometry import SHORT_PATH_KM, PathError
-    from harness.channel.model import TrailSet
+    from ionotrail.harness.channel import forecast as fc
+    from ionotrail.harness.channel.geometry import SHORT_PATH_KM, PathError
+    from ionotrail.harness.channel.model import TrailSet
 
     scenario = _scenario(args)
     try:
@@ -283,7 +283,7 @@ def cmd_channel(args: argparse.Namespace) -> int:
             raise UserError(f"cannot write {args.trails}: {exc.strerror}") from None
         print(f"wrote {count} trails to {args.trails}", file=sys.stderr)
     if args.plot:
-        from harness.channel.plot import plot_forecast
+        from ionotrail.harness.channel.plot import plot_forecast
 
         plot_forecast(report, Path(args.plot))
         print(f"wrote {args.plot}", file=sys.stderr)
@@ -322,11 +322,11 @@ def _open_output(name: str) -> Any:
 
 
 def cmd_simulate(args: argparse.Namespace) -> int:
-    from harness.channel.geometry import PathError, path_geometry
-    from harness.master import json_lines_sink
-    from harness.simulate import simulate
-    from terminal.errors import UsageError
-    from terminal.policy import by_name
+    from ionotrail.harness.channel.geometry import PathError, path_geometry
+    from ionotrail.harness.emulators.master import json_lines_sink
+    from ionotrail.harness.runners.simulate import simulate
+    from ionotrail.terminal.errors import UsageError
+    from ionotrail.terminal.link.policy import by_name
 
     scenario = _scenario(args)
     try:
@@ -373,7 +373,7 @@ def cmd_simulate(args: argparse.Namespace) -> int:
             json.dump(report, report_file, indent=2)
             report_file.write("\n")
     if args.plot:
-        from harness.timeline import plot_timeline
+        from ionotrail.harness.reports.timeline import plot_timeline
 
         assert run.timeline is not None
         plot_timeline(run.timeline, run.deliveries, report, Path(args.plot))
@@ -461,6 +461,9 @@ def build_parser() -> argparse.ArgumentParser:
         epilog=SAFETY,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
+    from ionotrail import __version__
+
+    parser.add_argument("--version", action="version", version=f"ionotrail {__version__}")
     commands = parser.add_subparsers(dest="command", metavar="COMMAND")
 
     p = commands.add_parser(

@@ -13,9 +13,8 @@ from __future__ import annotations
 import dataclasses
 
 from cobs import cobs
-
-from terminal.errors import BadLineCode, UsageError
-from terminal.limits import MAX_SERIAL_PAYLOAD, cobs_encoded_max
+from ionotrail.terminal.errors import BadLineCode, UsageError
+from ionotrail.terminal.limits import MAX_SERIAL_PAYLOAD, cobs_encoded_max
 
 DELIMITER = b"\x00"
 

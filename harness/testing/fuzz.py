@@ -11,8 +11,8 @@ from __future__ import annotations
 import random
 from collections.abc import Iterator, Sequence
 
-from terminal.crc import crc16
-from terminal.limits import FRAME_CRC_BYTES, MAX_FRAME_BYTES
+from ionotrail.terminal.limits import FRAME_CRC_BYTES, MAX_FRAME_BYTES
+from ionotrail.terminal.wire.crc import crc16
 
 
 def _fix_crc(data: bytes) -> bytes:

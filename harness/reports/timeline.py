@@ -5,8 +5,8 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-from harness.master import DeliveryRecord
-from harness.simulate import Timeline
+from ionotrail.harness.emulators.master import DeliveryRecord
+from ionotrail.harness.runners.simulate import Timeline
 
 
 def plot_timeline(timeline: Timeline, deliveries: list[DeliveryRecord], report: dict[str, Any], path: Path) -> None:

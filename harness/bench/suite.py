@@ -12,11 +12,11 @@ import time
 from collections.abc import Callable
 from typing import Any
 
-from terminal.crc import using_c_extension
-from terminal.policy import POLICY_NAMES
-from terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus
-from terminal.wire.codec import decode, decode_with_construct, encode, encode_with_construct
-from terminal.wire.frames import Frame
+from ionotrail.terminal.link.policy import POLICY_NAMES
+from ionotrail.terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus
+from ionotrail.terminal.wire.codec import decode, decode_with_construct, encode, encode_with_construct
+from ionotrail.terminal.wire.crc import using_c_extension
+from ionotrail.terminal.wire.frames import Frame
 
 
 def _batch_size(fn: Callable[[], object], seconds: float) -> int:
@@ -149,10 +149,10 @@ def reassembly_benchmark(seconds: float = 1.0, progress: Callable[[str], None] |
     """Fragments per second through sender and receiver, and framing efficiency,
     per fragment payload size.  Each fragment is encoded and decoded on the way,
     as on a real link; acknowledgements go back once per message."""
-    from terminal.fragmentation import Sender
-    from terminal.limits import Limits
-    from terminal.reassembly import Reassembler
-    from terminal.wire import Ack
+    from ionotrail.terminal.delivery.reassembly import Reassembler
+    from ionotrail.terminal.delivery.sender import Sender
+    from ionotrail.terminal.limits import Limits
+    from ionotrail.terminal.wire import Ack
 
     payload = bytes(i % 251 for i in range(MESSAGE_BYTES))
     results: dict[str, Any] = {}
@@ -218,8 +218,8 @@ def format_reassembly(report: dict[str, Any]) -> str:
 def channel_benchmark(days: float = 366.0, progress: Callable[[str], None] | None = None) -> dict[str, Any]:
     """Seconds to generate a year (by default) of trails for the demo link on one core,
     and, in the same run, one day, to show that the cost is linear in the period."""
-    from harness.channel import scenario
-    from harness.channel.model import TrailSet
+    from ionotrail.harness.channel import scenario
+    from ionotrail.harness.channel.model import TrailSet
 
     def timed(hours: float) -> tuple[float, TrailSet]:
         start = time.perf_counter()
@@ -268,9 +268,9 @@ def link_benchmark(hours: float = 24.0, policies: tuple[str, ...] = POLICY_NAMES
     wall-clock second of that policy's run (trail generation excluded: it is
     shared, and reported on its own).
     """
-    from harness.channel import scenario
-    from harness.channel.model import TrailSet
-    from harness.simulate import simulate
+    from ionotrail.harness.channel import scenario
+    from ionotrail.harness.channel.model import TrailSet
+    from ionotrail.harness.runners.simulate import simulate
 
     demo = scenario.load(None, [f"scenario.duration_hours={hours}"])
     start = time.perf_counter()

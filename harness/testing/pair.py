@@ -13,12 +13,12 @@ from __future__ import annotations
 import dataclasses
 import random
 
-from harness.faults import FAIR, FaultSchedule, FaultyChannel
-from terminal.errors import DecodeError
-from terminal.fragmentation import Priority, Sender, SenderEvent
-from terminal.limits import DEFAULT_LIMITS, Limits
-from terminal.reassembly import Delivery, Reassembler
-from terminal.wire import Ack, AckBlock, Fragment, decode, encode
+from ionotrail.harness.testing.faults import FAIR, FaultSchedule, FaultyChannel
+from ionotrail.terminal.delivery.reassembly import Delivery, Reassembler
+from ionotrail.terminal.delivery.sender import Priority, Sender, SenderEvent
+from ionotrail.terminal.errors import DecodeError
+from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.wire import Ack, AckBlock, Fragment, decode, encode
 
 TERMINAL = 0x0A31
 MASTER = 7

@@ -2,7 +2,7 @@
 
 Documents keep their prose by hand; each table sits between
 ``<!-- generated: NAME -->`` and ``<!-- end generated -->`` and is rewritten
-from ``terminal.wire.formats`` (frame layouts) or ``terminal.limits`` (link
+from ``ionotrail.terminal.wire.formats`` (frame layouts) or ``ionotrail.terminal.limits`` (link
 limits and the reasons for their defaults).  A test fails when a document is
 stale; run ``ionotrail docs`` to refresh them.
 """
@@ -16,9 +16,8 @@ import itertools
 import re
 
 import construct as cs
-
-from terminal import limits
-from terminal.wire import formats
+from ionotrail.terminal import limits
+from ionotrail.terminal.wire import formats
 
 SECTIONS: dict[str, cs.Construct] = {
     "probe": formats.PROBE,
@@ -106,7 +105,7 @@ def limits_table() -> str:
 
 def link_table() -> str:
     """The link's transition table as a grid: a row per state, a column per input."""
-    from terminal.link import TRANSITIONS, Input, State
+    from ionotrail.terminal.link.terminal import TRANSITIONS, Input, State
 
     lines = ["| state \\ input | " + " | ".join(f"{i.name}" for i in Input) + " |", "| --- |" + " --- |" * len(Input)]
     for state in State:
@@ -125,7 +124,7 @@ def link_table() -> str:
     lines.append("")
     lines.append("| action | what the link does |")
     lines.append("| --- | --- |")
-    from terminal.link import Action
+    from ionotrail.terminal.link.terminal import Action
 
     lines += [f"| `{a.name.lower()}` | {a.value} |" for a in Action]
     return "\n".join(lines) + "\n"
@@ -133,7 +132,7 @@ def link_table() -> str:
 
 def link_diagram() -> str:
     """The same table as a Mermaid state diagram (rendered by GitHub and most viewers)."""
-    from terminal.link import TRANSITIONS, Action, State
+    from ionotrail.terminal.link.terminal import TRANSITIONS, Action, State
 
     lines = ["```mermaid", "stateDiagram-v2", f"    [*] --> {State.LISTENING.name}"]
     for (state, event), (nxt, action) in TRANSITIONS.items():
@@ -146,13 +145,13 @@ def link_diagram() -> str:
 
 
 def _report_table() -> str:
-    from terminal.source import REPORT
+    from ionotrail.harness.demo.gauge import REPORT
 
     return table(REPORT)
 
 
 def _scenario_table() -> str:
-    from harness.channel.scenario import schema_table
+    from ionotrail.harness.channel.scenario import schema_table
 
     return schema_table()
 

@@ -5,7 +5,7 @@ acknowledgement for the message whose fragment arrived last (so a terminal
 in a burst learns within one probe interval what got through), a poll
 address when one terminal is to answer first, and a queued downlink command
 for the polled terminal until that terminal's reply arrives.  Fragments are
-reassembled by the same core the terminal uses (:mod:`terminal.reassembly`);
+reassembled by the same core the terminal uses (:mod:`ionotrail.terminal.delivery.reassembly`);
 every delivered message goes to a sink as one JSON line:
 
 ``{"terminal": 2609, "message_id": 17, "created_s": 901.25, "delivered_s": 1034.5,
@@ -23,14 +23,14 @@ import json
 from collections.abc import Callable
 from typing import IO
 
-from terminal.crc import crc32c
-from terminal.errors import DecodeError
-from terminal.limits import DEFAULT_LIMITS, Limits
-from terminal.link import Arrival
-from terminal.ports import Port
-from terminal.reassembly import Delivery, Reassembler
-from terminal.source import report_created
-from terminal.wire import AckBlock, CommandBlock, Fragment, Probe, Reply, decode, encode
+from ionotrail.harness.demo.gauge import report_created
+from ionotrail.terminal.delivery.reassembly import Delivery, Reassembler
+from ionotrail.terminal.errors import DecodeError
+from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.link.terminal import Arrival
+from ionotrail.terminal.ports import Port
+from ionotrail.terminal.wire import AckBlock, CommandBlock, Fragment, Probe, Reply, decode, encode
+from ionotrail.terminal.wire.crc import crc32c
 
 DEFAULT_PROBE_INTERVAL = 0.1
 """Seconds between probe starts: a 7-byte probe at 4800 bit/s is on the air

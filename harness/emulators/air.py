@@ -1,7 +1,7 @@
 """The simulated air between a master and a terminal: two ports over the channel.
 
-:class:`Air` owns a :class:`~harness.channel.model.Channel` and gives each
-station a :class:`SimulatedPort` that implements :class:`terminal.ports.Port`
+:class:`Air` owns a :class:`~ionotrail.harness.channel.model.Channel` and gives each
+station a :class:`SimulatedPort` that implements :class:`ionotrail.terminal.ports.Port`
 on the running event loop's clock (virtual or real).  A frame sent on a port
 occupies the air for its bits at the scenario's bit rate; whether it arrives
 is drawn from the channel's frame-success probability over the SNR
@@ -26,10 +26,9 @@ import math
 from collections.abc import Callable
 
 import numpy as np
-
-from harness.channel.model import Channel
-from terminal.link import Arrival
-from terminal.ports import Listener, Port
+from ionotrail.harness.channel.model import Channel
+from ionotrail.terminal.link.terminal import Arrival
+from ionotrail.terminal.ports import Listener, Port
 
 DIRECTION_OF = {"terminal": "up", "master": "down"}
 SHORTEST_PROBE_BYTES = 7  # head, master, sequence, flags, CRC: docs/wire.md

@@ -20,10 +20,9 @@ import struct
 from typing import Protocol
 
 from construct import ConstructError, Enum, GreedyRange, Int8ub, Int16sb, Int16ub, Int32ub, StreamError, Struct
-
-from terminal.errors import BadField, UsageError
-from terminal.fragmentation import Priority
-from terminal.wire.formats import ReplyStatus
+from ionotrail.terminal.delivery.sender import Priority
+from ionotrail.terminal.errors import BadField, UsageError
+from ionotrail.terminal.wire.formats import ReplyStatus
 
 
 class ReportKind(enum.IntEnum):
@@ -89,21 +88,6 @@ class Generator(Protocol):
     def random(self) -> float: ...
 
     def randrange(self, start: int, stop: int) -> int: ...
-
-
-class MessageSource(Protocol):
-    """What the service asks of an application that produces messages."""
-
-    def next_due(self) -> float | None:
-        """Link-clock time of the next message (None: no more)."""
-
-    def take(self, now: float, room: int) -> list[tuple[bytes, Priority]]:
-        """Messages due by ``now``, oldest first.  ``room`` is how many the
-        sender can still queue; a sensor's readings happen regardless (the
-        service reports the overflow as abandoned), a backlog fills only the room."""
-
-    def command(self, opcode: int, arguments: bytes) -> tuple[ReplyStatus, bytes]:
-        """Execute a downlink command once; its reply status and result."""
 
 
 class DemoGauge:

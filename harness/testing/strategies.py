@@ -6,11 +6,16 @@ from __future__ import annotations
 import random
 
 from hypothesis import strategies as st
-
-from harness.faults import FaultSchedule
-from terminal.fragmentation import Priority
-from terminal.limits import DEFAULT_LIMITS, MAX_ACK_RANGES, MAX_COMMAND_BYTES, MAX_FRAGMENT_PAYLOAD, MAX_MESSAGE_STREAM
-from terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus
+from ionotrail.harness.testing.faults import FaultSchedule
+from ionotrail.terminal.delivery.sender import Priority
+from ionotrail.terminal.limits import (
+    DEFAULT_LIMITS,
+    MAX_ACK_RANGES,
+    MAX_COMMAND_BYTES,
+    MAX_FRAGMENT_PAYLOAD,
+    MAX_MESSAGE_STREAM,
+)
+from ionotrail.terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus
 
 u8 = st.integers(0, 0xFF)
 u16 = st.integers(0, 0xFFFF)

@@ -21,8 +21,8 @@ from __future__ import annotations
 import math
 from typing import Protocol
 
-from terminal.errors import UsageError
-from terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MAX_FRAGMENT_PAYLOAD
+from ionotrail.terminal.errors import UsageError
+from ionotrail.terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MAX_FRAGMENT_PAYLOAD
 
 OVERHEAD_BITS = 8 * (FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES)
 MIN_PAYLOAD = 8  # bytes; below this a fragment is mostly header (common practice, no source)

@@ -14,7 +14,7 @@ import enum
 from collections import OrderedDict
 from collections.abc import Hashable
 
-from terminal.limits import MESSAGE_ID_BITS
+from ionotrail.terminal.limits import MESSAGE_ID_BITS
 
 _ID_SPACE = 1 << MESSAGE_ID_BITS
 _HALF = _ID_SPACE >> 1

@@ -15,14 +15,13 @@ from __future__ import annotations
 from hypothesis import event
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, precondition, rule
-
-from harness import strategies
-from harness.pair import MASTER, TERMINAL
-from terminal.errors import DecodeError
-from terminal.fragmentation import MessageRefused, Priority, Sender
-from terminal.limits import Limits
-from terminal.reassembly import Reassembler
-from terminal.wire import Ack, Fragment, decode, encode, seal_message
+from ionotrail.harness.testing import strategies
+from ionotrail.harness.testing.pair import MASTER, TERMINAL
+from ionotrail.terminal.delivery.reassembly import Reassembler
+from ionotrail.terminal.delivery.sender import MessageRefused, Priority, Sender
+from ionotrail.terminal.errors import DecodeError
+from ionotrail.terminal.limits import Limits
+from ionotrail.terminal.wire import Ack, Fragment, decode, encode, seal_message
 
 SOURCE = (False, TERMINAL, MASTER)
 MAX_IN_FLIGHT = 64  # frames the simulated air holds before the oldest is lost

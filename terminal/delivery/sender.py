@@ -27,8 +27,9 @@ import dataclasses
 import enum
 from collections.abc import Callable
 
-from terminal.errors import UsageError
-from terminal.limits import (
+from ionotrail.terminal.delivery.rangeset import RangeSet
+from ionotrail.terminal.errors import UsageError
+from ionotrail.terminal.limits import (
     DEFAULT_LIMITS,
     FRAGMENT_HEADER_BYTES,
     FRAME_CRC_BYTES,
@@ -36,9 +37,8 @@ from terminal.limits import (
     OUTCOMES_KEPT,
     Limits,
 )
-from terminal.rangeset import RangeSet
-from terminal.wire.codec import seal_message
-from terminal.wire.frames import AckBlock, Fragment
+from ionotrail.terminal.wire.codec import seal_message
+from ionotrail.terminal.wire.frames import AckBlock, Fragment
 
 FRAGMENT_OVERHEAD = FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES
 

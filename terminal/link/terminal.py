@@ -4,7 +4,7 @@ The master transmits probes continuously.  A terminal hears one only while a
 meteor trail joins the two stations, so a probe means "the path is open now".
 On a probe it may answer (not polling another terminal) and with something to
 send, the terminal waits the radio's turnaround, then sends fragments back to
-back, sized by its :mod:`fragment policy <terminal.policy>`, for as long as
+back, sized by its :mod:`fragment policy <ionotrail.terminal.link.policy>`, for as long as
 probes keep arriving; probes carry the master's acknowledgements, which free
 acknowledged messages and show lost fragments.  When no probe has come for
 ``burst_silence`` it ends the burst and listens again.  In half duplex the
@@ -27,12 +27,12 @@ import enum
 from collections import OrderedDict
 from typing import NamedTuple
 
-from terminal.errors import DecodeError, UsageError
-from terminal.fragmentation import Sender, SenderEvent
-from terminal.limits import DEFAULT_LIMITS, MAX_COMMAND_BYTES, Limits
-from terminal.policy import FragmentPolicy
-from terminal.wire import Ack, AckBlock, Command, Frame, Probe, Reply, decode, encode
-from terminal.wire.formats import ReplyStatus
+from ionotrail.terminal.delivery.sender import Sender, SenderEvent
+from ionotrail.terminal.errors import DecodeError, UsageError
+from ionotrail.terminal.limits import DEFAULT_LIMITS, MAX_COMMAND_BYTES, Limits
+from ionotrail.terminal.link.policy import FragmentPolicy
+from ionotrail.terminal.wire import Ack, AckBlock, Command, Frame, Probe, Reply, decode, encode
+from ionotrail.terminal.wire.formats import ReplyStatus
 
 
 class State(enum.Enum):

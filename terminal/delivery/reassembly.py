@@ -27,12 +27,12 @@ from __future__ import annotations
 import dataclasses
 from collections.abc import Iterator
 
-from terminal.duplicates import DuplicateFilter, Verdict
-from terminal.errors import DecodeError
-from terminal.limits import DEFAULT_LIMITS, Limits
-from terminal.rangeset import RangeSet
-from terminal.wire.codec import unseal_message
-from terminal.wire.frames import AckBlock, Fragment
+from ionotrail.terminal.delivery.duplicates import DuplicateFilter, Verdict
+from ionotrail.terminal.delivery.rangeset import RangeSet
+from ionotrail.terminal.errors import DecodeError
+from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.wire.codec import unseal_message
+from ionotrail.terminal.wire.frames import AckBlock, Fragment
 
 Source = tuple[bool, int, int]
 """A message stream: (downlink, terminal, master).  Ids are per stream, so both

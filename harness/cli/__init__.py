@@ -1,0 +1,1 @@
+"""The ionotrail command."""

@@ -1,0 +1,1 @@
+"""What runs produce: timelines, and the generated tables of docs/."""

@@ -1,0 +1,1 @@
+"""Test machinery: hypothesis strategies and stateful machines, fuzz, faulty channels, endpoint pairs."""

@@ -1,0 +1,1 @@
+"""The fragment sender, the reassembler, range sets and duplicate windows: exactly-once delivery."""

@@ -1,0 +1,1 @@
+"""The burst link: the terminal and master endpoints, their decision tables, fragment policies."""
