@@ -27,6 +27,9 @@ MESSAGE_CRC_BYTES = 4
 FRAGMENT_HEADER_BYTES = 8
 """Data-fragment header; with the CRC the overhead is 10 bytes per fragment."""
 
+FRAGMENT_OVERHEAD_BYTES = FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES
+"""Frame bytes of a data fragment beyond its payload (10): header and CRC."""
+
 MAX_FRAGMENT_PAYLOAD = 256
 """Largest fragment payload.  256 bytes take 0.26 s at 8 kbit/s, about one
 power-decay constant of a typical underdense trail; a longer frame would

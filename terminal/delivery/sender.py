@@ -31,8 +31,7 @@ from ionotrail.terminal.delivery.rangeset import RangeSet
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.limits import (
     DEFAULT_LIMITS,
-    FRAGMENT_HEADER_BYTES,
-    FRAME_CRC_BYTES,
+    FRAGMENT_OVERHEAD_BYTES,
     MESSAGE_ID_BITS,
     OUTCOMES_KEPT,
     Limits,
@@ -40,7 +39,7 @@ from ionotrail.terminal.limits import (
 from ionotrail.terminal.wire.codec import seal_message
 from ionotrail.terminal.wire.frames import AckBlock, Fragment
 
-FRAGMENT_OVERHEAD = FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES
+FRAGMENT_OVERHEAD = FRAGMENT_OVERHEAD_BYTES
 
 
 class Priority(enum.IntEnum):

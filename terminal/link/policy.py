@@ -22,9 +22,9 @@ import math
 from typing import Protocol
 
 from ionotrail.terminal.errors import UsageError
-from ionotrail.terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MAX_FRAGMENT_PAYLOAD
+from ionotrail.terminal.limits import FRAGMENT_OVERHEAD_BYTES, MAX_FRAGMENT_PAYLOAD
 
-OVERHEAD_BITS = 8 * (FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES)
+OVERHEAD_BITS = 8 * FRAGMENT_OVERHEAD_BYTES
 MIN_PAYLOAD = 8  # bytes; below this a fragment is mostly header (common practice, no source)
 DB_PER_NEPER = 10 / math.log(10)  # a power decaying as exp(-t/tau) falls 4.343/tau dB per second
 TAU_RANGE_S = (0.03, 30.0)  # estimates are clamped to plausible trail lifetimes
