@@ -66,6 +66,8 @@ class Air:
         self.used_trails: set[int] = set()
         self.on_uplink: Callable[[float, int, bool, float], None] | None = None
         """Observer of every uplink frame: (start time, bytes, arrived intact, Eb/N0 dB)."""
+        self.on_arrival: Callable[[str, Arrival], None] | None = None
+        """Observer of every frame handed to a station: (receiving role, the arrival)."""
         self.probe_filter: Callable[[float, bytes], bool] | None = None
         """Fault hook: a probe that arrived intact reaches the terminal only if
         this returns True for (arrival time, frame); None passes every probe."""
@@ -260,6 +262,8 @@ class SimulatedPort(Port):
 
     def deliver(self, arrival: Arrival) -> None:
         if self.listener is not None and not self.closed:
+            if self.air.on_arrival is not None:
+                self.air.on_arrival(self.role, arrival)
             self.listener(arrival)
 
     async def close(self) -> None:
