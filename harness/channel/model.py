@@ -6,9 +6,10 @@ sporadic diurnal and seasonal cycles and the showers; per trail a height,
 diffusion coefficient, initial radius, line density from the cumulative
 flux law, a reflection point and an orientation, and from those, per
 direction, the peak signal-to-noise ratio per bit, the decay constant, the
-time open above threshold and the Doppler offset.  :class:`Channel` answers
-the questions a link simulation asks: is the path open at t and until when,
-what SNR does a frame see, did it get through.
+time open above threshold and the Doppler shift (the trail's own: the
+offset between the stations' oscillators is the air's to add).
+:class:`Channel` answers the questions a link simulation asks: is the path
+open at t and until when, what SNR does a frame see, did it get through.
 
 Simplifications, each documented in docs/channel.md: every sampled trail is
 taken as specular for the pair (an effective collecting area stands for the
@@ -332,7 +333,7 @@ class TrailSet:
             margin = np.log(np.maximum(peak[d.name] / d.ebn0_threshold, 1.0))
             open_s[d.name] = np.where(peak[d.name] > d.ebn0_threshold, hold[d.name] + tau[d.name] * margin, 0.0)
             cos_phi = np.sqrt(1.0 - g["sin2_phi"])
-            doppler[d.name] = physics.doppler_hz(wind, cos_phi, d.lam) + self.scenario.oscillator_ppm * d.mhz
+            doppler[d.name] = physics.doppler_hz(wind, cos_phi, d.lam)  # the stations' oscillators are the air's
         shower_code = np.array([0] + [2 + i for i in showers_on])[source]
         kind = np.where(source > 0, shower_code, overdense.astype(int)).astype(np.int16)
         return Trails(

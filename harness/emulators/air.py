@@ -52,6 +52,9 @@ class Air:
     attached sets it when None).  ``half_duplex`` makes the terminal deaf
     while it transmits.  Frame outcomes are drawn from their own generator,
     seeded by ``seed``, so they never disturb the trail draws.
+    ``oscillator_ppm`` is the offset between the two stations' oscillators:
+    a receiver measures it (at its carrier) plus the carrying trail's Doppler,
+    which the channel gives without it.
     """
 
     def __init__(self, channel: Channel, *, seed: int, half_duplex: bool = False, origin: float | None = None, oscillator_ppm: float = 0.0) -> None:
