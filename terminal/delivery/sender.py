@@ -3,13 +3,14 @@
 A meteor trail gives a few hundred bytes at most, at a moment nobody can
 predict.  The sender keeps each queued message as a sealed byte stream
 (payload plus CRC-32C) and a record of which bytes the receiver has said it
-holds.  When an opening comes, :meth:`Sender.fill` spends the byte budget on
-the messages that matter most (alarms before routine, then oldest first):
-within a message, bytes never sent before go first, then bytes sent but not
-acknowledged.  Fragment boundaries are chosen afresh at every opening, so a
+holds.  One method chooses what goes on the air, :meth:`Sender.next_fragment`:
+the next fragment of a burst, from the messages that matter most (alarms
+before routine, then oldest first), carrying only bytes the receiver has not
+acknowledged.  Fragment boundaries are chosen afresh for every fragment, so a
 shorter or longer trail never causes an acknowledged byte to be resent.  No
 more messages are worked on at once than the receiver keeps half-built for
-one source (``max_partials_per_source``).
+one source (``max_partials_per_source``).  :meth:`Sender.fill` is a loop over
+it for an opening whose size is known in bytes.
 
 Acknowledgements *replace* the sender's record rather than add to it: the
 receiver's word is the truth, so when it drops a half-built message (expiry,
@@ -25,9 +26,9 @@ import bisect
 import collections
 import dataclasses
 import enum
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 
-from ionotrail.terminal.delivery.rangeset import RangeSet
+from ionotrail.terminal.delivery.rangeset import ByteRange, RangeSet
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.limits import (
     DEFAULT_LIMITS,
@@ -194,30 +195,27 @@ class Sender:
         return self._eligible_now
 
     def fill(self, budget: int, now: float) -> list[Fragment]:
-        """Fragments for an opening that can carry ``budget`` bytes of frames."""
-        fragments: list[Fragment] = []
-        for message in self._eligible():
-            if budget <= FRAGMENT_OVERHEAD:
-                break
-            budget = self._fill_message(message, budget, fragments)
-        self.counters.fragments += len(fragments)
-        return fragments
+        """Fragments for an opening that can carry ``budget`` bytes of frames.
 
-    def _fill_message(self, message: _Outgoing, budget: int, out: list[Fragment]) -> int:
-        size = len(message.sealed)
-        unacked = list(message.acked.gaps(0, size))
-        if not unacked:  # all held, no verdict yet: ask again with one byte
-            unacked = [(size - 1, size)]
-            self.counters.solicitations += 1
-        fresh = [gap for start, end in unacked for gap in message.sent.gaps(start, end)]
-        resend = [part for start, end in unacked for part in message.sent.overlapping(start, end)]
-        for start, end in fresh + resend:
-            while start < end and budget > FRAGMENT_OVERHEAD:
-                take = min(end - start, budget - FRAGMENT_OVERHEAD, self.limits.max_fragment_payload)
-                out.append(self._fragment(message, start, take))
-                budget -= take + FRAGMENT_OVERHEAD
-                start += take
-        return budget
+        A loop over :meth:`next_fragment`, each fragment as large as the rest
+        of the budget allows; there is no other selection.  Bytes never sent
+        go first; once none remain, pieces sent before ``now`` and still
+        unconfirmed are presumed lost (:meth:`presume_lost`) and go again.  A
+        budget of ``FRAGMENT_OVERHEAD`` bytes or less sends nothing.
+        """
+        fragments: list[Fragment] = []
+        presumed = False
+        while budget > FRAGMENT_OVERHEAD:
+            fragment = self.next_fragment(budget - FRAGMENT_OVERHEAD, now)
+            if fragment is None:
+                if presumed:
+                    break
+                self.presume_lost(now)
+                presumed = True
+                continue
+            fragments.append(fragment)
+            budget -= len(fragment.payload) + FRAGMENT_OVERHEAD
+        return fragments
 
     def _fragment(self, message: _Outgoing, start: int, take: int) -> Fragment:
         message.sent.add(start, start + take)
@@ -252,7 +250,7 @@ class Sender:
         take_most = min(max_payload, self.limits.max_fragment_payload)
         eligible = self._eligible()
         for message in eligible:
-            for start, end in message.acked.gaps(0, len(message.sealed)):
+            for start, end in self._owed(message):
                 for gap_start, gap_end in message.sent.gaps(start, end):
                     take = min(gap_end - gap_start, take_most)
                     return self._track(message, gap_start, take, now + (take + FRAGMENT_OVERHEAD) * seconds_per_byte)
@@ -273,9 +271,16 @@ class Sender:
         bisect.insort(message.in_flight, (air_end, start, start + take))  # kept in airtime order
         excess = len(message.in_flight) - self.limits.max_unconfirmed_pieces
         if excess > 0:  # the oldest count as lost: nothing waits unboundedly for a verdict
-            cutoff = message.in_flight[excess - 1][0]
-            self._settle(message, lambda piece: piece[0] <= cutoff)
+            # By position, not by airtime: pieces of one instant (a zero airtime)
+            # would otherwise all settle at once.
+            oldest = message.in_flight[:excess]
+            message.in_flight = message.in_flight[excess:]
+            self._settle_pieces(message, oldest)
         return fragment
+
+    def _owed(self, message: _Outgoing) -> Iterator[ByteRange]:
+        """The parts of a message the receiver has not acknowledged as held."""
+        return message.acked.gaps(0, len(message.sealed))
 
     def presume_lost(self, sent_before: float) -> None:
         """Treat every unconfirmed piece whose airtime ended before ``sent_before``
@@ -290,19 +295,22 @@ class Sender:
     def _settle(self, message: _Outgoing, due: Callable[[tuple[float, int, int]], bool]) -> None:
         """Settle the in-flight pieces ``due`` says are known: held ones are
         confirmed, the rest lost (their bytes become unsent again)."""
-        keep = []
+        settled: list[tuple[float, int, int]] = []
+        kept: list[tuple[float, int, int]] = []
         for piece in message.in_flight:
-            if due(piece):
-                _, start, end = piece
-                lost = 0
-                for held_start, held_end in message.acked.gaps(start, end):
-                    message.sent.discard(held_start, held_end)
-                    lost += held_end - held_start
-                self.counters.presumed_lost_bytes += lost
-                self.outcomes.append((end - start + FRAGMENT_OVERHEAD, lost > 0))
-            else:
-                keep.append(piece)
-        message.in_flight = keep
+            (settled if due(piece) else kept).append(piece)
+        message.in_flight = kept
+        self._settle_pieces(message, settled)
+
+    def _settle_pieces(self, message: _Outgoing, pieces: list[tuple[float, int, int]]) -> None:
+        """Confirm or declare lost ``pieces``, already removed from ``in_flight``."""
+        for _, start, end in pieces:
+            lost = 0
+            for gap_start, gap_end in message.acked.gaps(start, end):  # not held: lost
+                message.sent.discard(gap_start, gap_end)
+                lost += gap_end - gap_start
+            self.counters.presumed_lost_bytes += lost
+            self.outcomes.append((end - start + FRAGMENT_OVERHEAD, lost > 0))
 
     def on_ack(self, block: AckBlock, now: float, issued: float | None = None) -> list[SenderEvent]:
         """Apply an acknowledgement from the receiver; returns what finished.
