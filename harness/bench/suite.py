@@ -151,7 +151,7 @@ def reassembly_benchmark(seconds: float = 1.0, progress: Callable[[str], None] |
     as on a real link; acknowledgements go back once per message."""
     from ionotrail.terminal.delivery.reassembly import Reassembler
     from ionotrail.terminal.delivery.sender import Sender
-    from ionotrail.terminal.limits import Limits
+    from ionotrail.terminal.limits import MESSAGE_CRC_BYTES, Limits
     from ionotrail.terminal.wire import Ack
 
     payload = bytes(i % 251 for i in range(MESSAGE_BYTES))
@@ -159,7 +159,9 @@ def reassembly_benchmark(seconds: float = 1.0, progress: Callable[[str], None] |
     for size in REASSEMBLY_SIZES:
         if progress:
             progress(f"{size}-byte fragments")
-        limits = Limits(max_fragment_payload=size)
+        # The whole message goes in one opening with no acknowledgement until its
+        # end: every fragment of it stays unconfirmed until then.
+        limits = Limits(max_fragment_payload=size, max_unconfirmed_pieces=-(-(MESSAGE_BYTES + MESSAGE_CRC_BYTES) // size))
         sender, receiver = Sender(0x0A31, 7, limits=limits), Reassembler(limits)
         sender_time = receiver_time = 0.0
         fragments = air = delivered_payload = 0
