@@ -5,7 +5,10 @@ an acknowledgement in about 100 us; the simulator and a master serving many
 terminals need a few microseconds (``ionotrail bench codec`` and ``ionotrail
 bench reassembly`` measure both side by side).  This module encodes and
 decodes exactly the layouts of ``formats.FRAGMENT``, ``formats.PROBE`` and
-``formats.ACK`` with :mod:`struct`; differential property tests
+``formats.ACK`` with :mod:`struct`.  Its struct formats, bit masks and head
+bytes are read from those declarations at import (:mod:`.layout`), and what
+the code assumes beyond them (field order, the offset and range count in the
+low bits) is checked there and then, raising ``StaleLayout``; differential property tests
 (tests/test_fastpath.py) prove each byte-identical to its declaration in both
 directions, and that both refuse the same inputs with the same error class
 (the wording of a message may differ).  Commands and replies are rare and stay on the
@@ -14,36 +17,65 @@ declarations.
 
 from __future__ import annotations
 
-import struct
-
 from ionotrail.terminal.errors import BadField, BadLength, CrcMismatch, FrameTooLong, TruncatedFrame, UsageError
 from ionotrail.terminal.limits import (
-    FORMAT_VERSION,
-    FRAGMENT_HEADER_BYTES,
+    FRAGMENT_OVERHEAD_BYTES,
     FRAME_CRC_BYTES,
     MAX_FRAME_BYTES,
     MAX_MESSAGE_STREAM,
     MIN_FRAME_BYTES,
-    OFFSET_BITS,
 )
+from ionotrail.terminal.wire import formats
 from ionotrail.terminal.wire.crc import crc16
 from ionotrail.terminal.wire.formats import FrameType
 from ionotrail.terminal.wire.frames import Ack, AckBlock, CommandBlock, Fragment, Probe, check_fragment_span
+from ionotrail.terminal.wire.layout import (
+    StaleLayout,
+    bits,
+    element,
+    expect_names,
+    frame_fields,
+    head_byte,
+    member,
+    optional,
+    packer,
+    single,
+    trailer_bytes,
+)
 
-HEAD_BYTE = (FORMAT_VERSION << 4) | FrameType.FRAGMENT
+# Every layout below is read from the declarations at import (see layout.py);
+# what the code assumes beyond that is checked here and raises StaleLayout.
+
+_FRAGMENT = frame_fields(formats.FRAGMENT)
+_PROBE = frame_fields(formats.PROBE)
+_ACK = frame_fields(formats.ACK)
+
+expect_names(_FRAGMENT, ("head", "terminal", "master", "message_id", "position", "payload"), "fragment")
+expect_names(_PROBE, ("head", "master", "sequence", "flags", "poll", "ack", "command"), "probe")
+expect_names(_ACK, ("head", "master", "ack"), "ack")
+for _frame in (formats.FRAGMENT, formats.PROBE, formats.ACK):
+    if trailer_bytes(_frame) != FRAME_CRC_BYTES:
+        raise StaleLayout(f"a frame's CRC is {trailer_bytes(_frame)} bytes; the fast paths read {FRAME_CRC_BYTES}")
+
+HEAD_BYTE = head_byte(FrameType.FRAGMENT)
 """First byte of every fragment of this format version."""
 
-_HEADER = struct.Struct(">BHBHH")  # head, terminal, master, message_id, position
-_CRC = struct.Struct(">H")
+_HEADER = packer(_FRAGMENT, ("head", "terminal", "master", "message_id", "position"), "fragment header")
+_CRC = single(member(formats.FRAGMENT, "crc").checksumfield, "frame CRC")
 _unpack_header = _HEADER.unpack_from
-_FINAL = 1 << 15
-_URGENT = 1 << 14
-_DOWNLINK = 1 << 13
-_OFFSET_MASK = (1 << OFFSET_BITS) - 1
-_OVERHEAD = FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES
+_POSITION = bits(_FRAGMENT, "position")
+_FINAL = _POSITION["final"].mask
+_URGENT = _POSITION["urgent"].mask
+_DOWNLINK = _POSITION["downlink"].mask
+_OFFSET_MASK = _POSITION["offset"].mask
+_HEADER_BYTES = _HEADER.size
+_OVERHEAD = _HEADER_BYTES + FRAME_CRC_BYTES
 _new = tuple.__new__
 
-assert _HEADER.size == FRAGMENT_HEADER_BYTES
+if set(_POSITION) != {"final", "urgent", "downlink", "offset"} or _POSITION["offset"].shift != 0:
+    raise StaleLayout("fragment position: the fast path reads flags final, urgent, downlink and the offset in the low bits")
+if _OVERHEAD != FRAGMENT_OVERHEAD_BYTES:
+    raise StaleLayout(f"the fragment header and CRC are {_OVERHEAD} bytes; limits say {FRAGMENT_OVERHEAD_BYTES}")
 
 
 def _close(body: bytes) -> bytes:
@@ -86,14 +118,14 @@ def decode_fragment(data: bytes) -> Fragment:
             check_fragment_span(offset, size - _OVERHEAD)
         except UsageError as exc:
             raise BadField(f"fragment frame: {exc}") from None
-    return _new(  # type: ignore[no-any-return]
+    return _new(
         Fragment,
         (
             terminal,
             master,
             message_id,
             offset,
-            data[FRAGMENT_HEADER_BYTES:-FRAME_CRC_BYTES],
+            data[_HEADER_BYTES:-FRAME_CRC_BYTES],
             position & _FINAL != 0,
             position & _URGENT != 0,
             position & _DOWNLINK != 0,
@@ -110,15 +142,39 @@ def decode_fragment(data: bytes) -> Fragment:
 # by field, in order, so that the first problem found is the one the
 # declaration would report.
 
-PROBE_HEAD = (FORMAT_VERSION << 4) | FrameType.PROBE
-ACK_HEAD = (FORMAT_VERSION << 4) | FrameType.ACK
+PROBE_HEAD = head_byte(FrameType.PROBE)
+ACK_HEAD = head_byte(FrameType.ACK)
 
-_U16 = struct.Struct(">H")
-_ACK_FIXED = struct.Struct(">HHB")  # terminal, message_id, status
-_RANGE = struct.Struct(">HH")
-_PROBE_FIXED = struct.Struct(">BBHB")  # head, master, sequence, flags
-_STATUS_COMPLETE, _STATUS_DOWNLINK, _STATUS_REFUSED, _STATUS_RESERVED = 0x80, 0x40, 0x20, 0x10
-_FLAG_POLL, _FLAG_ACK, _FLAG_COMMAND, _FLAG_RESERVED = 0x80, 0x40, 0x20, 0x1F
+_PROBE_FIXED = packer(_PROBE, ("head", "master", "sequence", "flags"), "probe")
+_POLL = single(optional(_PROBE, "poll"), "probe poll")
+_ACK_FRAME_FIXED = packer(_ACK, ("head", "master"), "ack")
+_ACK_FIXED = packer(formats.ACK_BLOCK, ("terminal", "message_id", "status"), "ack block")
+_RANGE = packer(element(formats.ACK_BLOCK, "ranges"), ("start", "end"), "ack range")
+_COMMAND_FIXED = packer(formats.COMMAND_BLOCK, ("command_id", "opcode", "length"), "command block")
+_STATUS = bits(formats.ACK_BLOCK, "status")
+_STATUS_COMPLETE = _STATUS["complete"].mask
+_STATUS_DOWNLINK = _STATUS["downlink"].mask
+_STATUS_REFUSED = _STATUS["refused"].mask
+_STATUS_RESERVED = _STATUS["reserved"].mask
+_STATUS_COUNT = _STATUS["count"].mask
+_FLAGS = bits(_PROBE, "flags")
+_FLAG_POLL = _FLAGS["poll"].mask
+_FLAG_ACK = _FLAGS["ack"].mask
+_FLAG_COMMAND = _FLAGS["command"].mask
+_FLAG_RESERVED = _FLAGS["reserved"].mask
+
+expect_names(formats.ACK_BLOCK, ("terminal", "message_id", "status", "ranges"), "ack block")
+expect_names(formats.COMMAND_BLOCK, ("command_id", "opcode", "length", "arguments"), "command block")
+if set(_STATUS) != {"complete", "downlink", "refused", "reserved", "count"} or _STATUS["count"].shift != 0:
+    raise StaleLayout("ack status: the fast path reads three flags, a reserved bit and the range count in the low bits")
+if set(_FLAGS) != {"poll", "ack", "command", "reserved"}:
+    raise StaleLayout("probe flags: the fast path reads poll, ack, command and reserved bits")
+if (
+    optional(_PROBE, "ack") is not formats.ACK_BLOCK
+    or optional(_PROBE, "command") is not formats.COMMAND_BLOCK
+    or member(_ACK, "ack") is not formats.ACK_BLOCK
+):
+    raise StaleLayout("a probe's or an ack frame's blocks are no longer the shared declarations")
 
 
 def check_envelope(data: bytes) -> int:
@@ -137,7 +193,11 @@ def _cut_short(name: str, size: int) -> TruncatedFrame:
     return TruncatedFrame(f"{name} frame of {size} bytes ends inside a field")
 
 
-def _read_ack_block(data: bytes, pos: int, end: int, name: str) -> tuple[tuple[int, ...], int]:
+_AckValues = tuple[int, int, tuple[tuple[int, int], ...], int]
+"""An ack block's terminal, message id, ranges and status byte, not yet checked."""
+
+
+def _read_ack_block(data: bytes, pos: int, end: int, name: str) -> tuple[_AckValues, int]:
     """Raw ack-block fields from ``data[pos:end]``: (values, new position)."""
     if pos + _ACK_FIXED.size > end:
         raise _cut_short(name, end + FRAME_CRC_BYTES)
@@ -145,23 +205,23 @@ def _read_ack_block(data: bytes, pos: int, end: int, name: str) -> tuple[tuple[i
     if status & _STATUS_RESERVED:
         raise BadField(f"{name} frame: reserved bit of the acknowledgement status is set")
     pos += _ACK_FIXED.size
-    count = status & 0x0F
+    count = status & _STATUS_COUNT
     if pos + count * _RANGE.size > end:
         raise _cut_short(name, end + FRAME_CRC_BYTES)
     ranges = tuple(_RANGE.unpack_from(data, pos + i * _RANGE.size) for i in range(count))
     return (terminal, message_id, ranges, status), pos + count * _RANGE.size
 
 
-def _ack_block(values: tuple[object, ...], name: str) -> AckBlock:
+def _ack_block(values: _AckValues, name: str) -> AckBlock:
     terminal, message_id, ranges, status = values
     try:
         return AckBlock(
-            terminal,  # type: ignore[arg-type]
-            message_id,  # type: ignore[arg-type]
-            ranges,  # type: ignore[arg-type]
-            bool(status & _STATUS_COMPLETE),  # type: ignore[operator]
-            bool(status & _STATUS_DOWNLINK),  # type: ignore[operator]
-            bool(status & _STATUS_REFUSED),  # type: ignore[operator]
+            terminal,
+            message_id,
+            ranges,
+            bool(status & _STATUS_COMPLETE),
+            bool(status & _STATUS_DOWNLINK),
+            bool(status & _STATUS_REFUSED),
         )
     except UsageError as exc:
         raise BadField(f"{name} frame: {exc}") from None
@@ -183,19 +243,20 @@ def _pack_ack_block(block: AckBlock) -> bytes:
 
 
 def encode_ack(frame: Ack) -> bytes:
-    return _close(bytes((ACK_HEAD, frame.master)) + _pack_ack_block(frame.ack))
+    return _close(_ACK_FRAME_FIXED.pack(ACK_HEAD, frame.master) + _pack_ack_block(frame.ack))
 
 
 def decode_ack(data: bytes) -> Ack:
     """Decode untrusted bytes whose first byte is :data:`ACK_HEAD`."""
     size = check_envelope(data)
     end = size - FRAME_CRC_BYTES
-    if end < 2:
+    if end < _ACK_FRAME_FIXED.size:
         raise _cut_short("ack", size)
-    values, pos = _read_ack_block(data, 2, end, "ack")
+    _, master = _ACK_FRAME_FIXED.unpack_from(data)
+    values, pos = _read_ack_block(data, _ACK_FRAME_FIXED.size, end, "ack")
     if pos != end:
         raise _leftover("ack", end - pos)
-    return _new(Ack, (data[1], _ack_block(values, "ack")))  # type: ignore[no-any-return]
+    return _new(Ack, (master, _ack_block(values, "ack")))
 
 
 def encode_probe(frame: Probe) -> bytes:
@@ -203,14 +264,14 @@ def encode_probe(frame: Probe) -> bytes:
     parts = [b""]
     if frame.poll is not None:
         flags |= _FLAG_POLL
-        parts.append(_U16.pack(frame.poll))
+        parts.append(_POLL.pack(frame.poll))
     if frame.ack is not None:
         flags |= _FLAG_ACK
         parts.append(_pack_ack_block(frame.ack))
     if frame.command is not None:
         flags |= _FLAG_COMMAND
         c = frame.command
-        parts.append(bytes((c.command_id, c.opcode, len(c.arguments))) + c.arguments)
+        parts.append(_COMMAND_FIXED.pack(c.command_id, c.opcode, len(c.arguments)) + c.arguments)
     parts[0] = _PROBE_FIXED.pack(PROBE_HEAD, frame.master, frame.sequence, flags)
     return _close(b"".join(parts))
 
@@ -227,19 +288,19 @@ def decode_probe(data: bytes) -> Probe:
     pos = _PROBE_FIXED.size
     poll = None
     if flags & _FLAG_POLL:
-        if pos + 2 > end:
+        if pos + _POLL.size > end:
             raise _cut_short("probe", size)
-        poll = _U16.unpack_from(data, pos)[0]
-        pos += 2
+        poll = _POLL.unpack_from(data, pos)[0]
+        pos += _POLL.size
     ack_values = None
     if flags & _FLAG_ACK:
         ack_values, pos = _read_ack_block(data, pos, end, "probe")
     command = None
     if flags & _FLAG_COMMAND:
-        if pos + 3 > end:
+        if pos + _COMMAND_FIXED.size > end:
             raise _cut_short("probe", size)
-        command_id, opcode, length = data[pos], data[pos + 1], data[pos + 2]
-        pos += 3
+        command_id, opcode, length = _COMMAND_FIXED.unpack_from(data, pos)
+        pos += _COMMAND_FIXED.size
         if pos + length > end:
             raise _cut_short("probe", size)
         command = (command_id, opcode, data[pos : pos + length])

@@ -6,6 +6,9 @@ frame type in the low nibble.  Field documentation is attached to each
 declaration with construct's ``*`` operator; docs/wire.md's tables are
 generated from these objects (``ionotrail docs``), so edit here, not there.
 
+Which representation, codec and document entry go with each frame type is
+recorded once, in :mod:`~ionotrail.terminal.wire.registry`.
+
 construct's *compiled* parsers skip checks and must never see untrusted bytes;
 only the interpreted declarations below are used on received data.
 """
@@ -217,13 +220,3 @@ SEALED_MESSAGE = Struct(
 )
 """An application message as fragmented: payload then CRC-32C.  Reassembly
 is complete only when this CRC verifies."""
-
-FRAME_FORMATS: dict[FrameType, Struct] = {
-    FrameType.PROBE: PROBE,
-    FrameType.FRAGMENT: FRAGMENT,
-    FrameType.ACK: ACK,
-    FrameType.COMMAND: COMMAND,
-    FrameType.REPLY: REPLY,
-}
-"""Frame type to declaration; the decoder dispatches on this table."""
-

@@ -6,20 +6,35 @@ value no encoder could send.  Decoders build them only from bytes that passed
 the same rules, so holding a ``Fragment`` means holding a valid fragment.
 (Tuples rather than dataclasses: the data-fragment decoder must run at a few
 microseconds a frame, and a frozen dataclass costs twice a tuple to build.)
+Every frame and block knows its encoded size (``wire_length``) from sizes
+read off the declarations, so a sender can budget airtime without encoding.
 """
 
 from __future__ import annotations
 
-from typing import NamedTuple
+from typing import NamedTuple, Self
 
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.limits import (
+    FRAGMENT_OVERHEAD_BYTES,
     MAX_ACK_RANGES,
     MAX_COMMAND_BYTES,
     MAX_FRAGMENT_PAYLOAD,
     MAX_MESSAGE_STREAM,
 )
+from ionotrail.terminal.wire import formats, layout
 from ionotrail.terminal.wire.formats import FrameType, ReplyStatus
+from ionotrail.terminal.wire.layout import IDLE_PROBE_BYTES
+
+# Encoded sizes, read from the declarations: the fixed part of each frame or
+# block (with its CRC, for a frame) and the size of each repeated or optional part.
+_ACK_BLOCK_FIXED = layout.fixed_bytes(formats.ACK_BLOCK, ("ranges",))
+_RANGE_BYTES = layout.size(layout.element(formats.ACK_BLOCK, "ranges"))
+_COMMAND_BLOCK_FIXED = layout.fixed_bytes(formats.COMMAND_BLOCK, ("arguments",))
+_POLL_BYTES = layout.size(layout.optional(layout.frame_fields(formats.PROBE), "poll"))
+_ACK_FIXED = layout.frame_bytes(formats.ACK, ("ack",))
+_COMMAND_FIXED = layout.frame_bytes(formats.COMMAND, ("command",))
+_REPLY_FIXED = layout.frame_bytes(formats.REPLY, ("result",))
 
 ByteRange = tuple[int, int]
 """Half-open ``(start, end)`` range of bytes in a sealed message."""
@@ -86,7 +101,7 @@ class AckBlock(_AckBlockFields):
         complete: bool = False,
         downlink: bool = False,
         refused: bool = False,
-    ) -> AckBlock:
+    ) -> Self:
         checked = check_ranges(ranges)
         if (complete or refused) and checked:
             raise UsageError("a complete or refused acknowledgement carries no ranges")
@@ -102,6 +117,11 @@ class AckBlock(_AckBlockFields):
             bool(refused),
         )
 
+    @property
+    def wire_length(self) -> int:
+        """Encoded bytes of this block, without encoding it."""
+        return _ACK_BLOCK_FIXED + _RANGE_BYTES * len(self.ranges)
+
 
 class _CommandBlockFields(NamedTuple):
     command_id: int
@@ -114,13 +134,18 @@ class CommandBlock(_CommandBlockFields):
 
     __slots__ = ()
 
-    def __new__(cls, command_id: int, opcode: int, arguments: bytes = b"") -> CommandBlock:
+    def __new__(cls, command_id: int, opcode: int, arguments: bytes = b"") -> Self:
         return super().__new__(
             cls,
             _uint("command_id", command_id, 8),
             _uint("opcode", opcode, 8),
             _bytes("arguments", arguments, MAX_COMMAND_BYTES),
         )
+
+    @property
+    def wire_length(self) -> int:
+        """Encoded bytes of this block, without encoding it."""
+        return _COMMAND_BLOCK_FIXED + len(self.arguments)
 
 
 class _ProbeFields(NamedTuple):
@@ -145,7 +170,7 @@ class Probe(_ProbeFields):
         poll: int | None = None,
         ack: AckBlock | None = None,
         command: CommandBlock | None = None,
-    ) -> Probe:
+    ) -> Self:
         if poll is not None:
             _uint("poll", poll, 16)
         if ack is not None and not isinstance(ack, AckBlock):
@@ -156,6 +181,18 @@ class Probe(_ProbeFields):
             if poll is None:
                 raise UsageError("a probe carries a command only for the terminal it polls; set poll")
         return super().__new__(cls, _uint("master", master, 8), _uint("sequence", sequence, 16), poll, ack, command)
+
+    @property
+    def wire_length(self) -> int:
+        """Bytes on the air, CRC included, without encoding."""
+        length = IDLE_PROBE_BYTES
+        if self.poll is not None:
+            length += _POLL_BYTES
+        if self.ack is not None:
+            length += self.ack.wire_length
+        if self.command is not None:
+            length += self.command.wire_length
+        return length
 
 
 class _FragmentFields(NamedTuple):
@@ -186,7 +223,7 @@ class Fragment(_FragmentFields):
         final: bool = False,
         urgent: bool = False,
         downlink: bool = False,
-    ) -> Fragment:
+    ) -> Self:
         data = _bytes("payload", payload, MAX_FRAGMENT_PAYLOAD)
         check_fragment_span(_uint("offset", offset, 13), len(data))
         return super().__new__(
@@ -205,6 +242,11 @@ class Fragment(_FragmentFields):
     def end(self) -> int:
         """One past the last message byte this fragment carries."""
         return self.offset + len(self.payload)
+
+    @property
+    def wire_length(self) -> int:
+        """Bytes on the air, CRC included, without encoding."""
+        return FRAGMENT_OVERHEAD_BYTES + len(self.payload)
 
 
 def check_fragment_span(offset: int, length: int) -> None:
@@ -226,10 +268,15 @@ class Ack(_AckFields):
     __slots__ = ()
     frame_type = FrameType.ACK
 
-    def __new__(cls, master: int, ack: AckBlock) -> Ack:
+    def __new__(cls, master: int, ack: AckBlock) -> Self:
         if not isinstance(ack, AckBlock):
             raise UsageError(f"ack must be an AckBlock, not {type(ack).__name__}")
         return super().__new__(cls, _uint("master", master, 8), ack)
+
+    @property
+    def wire_length(self) -> int:
+        """Bytes on the air, CRC included, without encoding."""
+        return _ACK_FIXED + self.ack.wire_length
 
 
 class _CommandFields(NamedTuple):
@@ -244,10 +291,15 @@ class Command(_CommandFields):
     __slots__ = ()
     frame_type = FrameType.COMMAND
 
-    def __new__(cls, master: int, terminal: int, command: CommandBlock) -> Command:
+    def __new__(cls, master: int, terminal: int, command: CommandBlock) -> Self:
         if not isinstance(command, CommandBlock):
             raise UsageError(f"command must be a CommandBlock, not {type(command).__name__}")
         return super().__new__(cls, _uint("master", master, 8), _uint("terminal", terminal, 16), command)
+
+    @property
+    def wire_length(self) -> int:
+        """Bytes on the air, CRC included, without encoding."""
+        return _COMMAND_FIXED + self.command.wire_length
 
 
 class _ReplyFields(NamedTuple):
@@ -264,7 +316,7 @@ class Reply(_ReplyFields):
     __slots__ = ()
     frame_type = FrameType.REPLY
 
-    def __new__(cls, terminal: int, master: int, command_id: int, status: ReplyStatus, result: bytes = b"") -> Reply:
+    def __new__(cls, terminal: int, master: int, command_id: int, status: ReplyStatus, result: bytes = b"") -> Self:
         try:
             checked_status = ReplyStatus(status)
         except ValueError:
@@ -277,6 +329,11 @@ class Reply(_ReplyFields):
             checked_status,
             _bytes("result", result, MAX_COMMAND_BYTES),
         )
+
+    @property
+    def wire_length(self) -> int:
+        """Bytes on the air, CRC included, without encoding."""
+        return _REPLY_FIXED + len(self.result)
 
 
 Frame = Probe | Fragment | Ack | Command | Reply
