@@ -25,6 +25,7 @@ class Reason(enum.Enum):
     BAD_FIELD = "bad_field"
     BAD_MESSAGE_CRC = "bad_message_crc"
     BAD_LINE_CODE = "bad_line_code"
+    NO_TRANSITION = "no_transition"
 
 
 class DecodeError(Exception):
@@ -71,6 +72,13 @@ class MessageCrcMismatch(DecodeError):
 
 class BadLineCode(DecodeError):
     reason = Reason.BAD_LINE_CODE
+
+
+class ProtocolError(DecodeError):
+    """What was received drove a state machine to a (state, input) pair its
+    transition table does not allow."""
+
+    reason = Reason.NO_TRANSITION
 
 
 class UsageError(ValueError):

@@ -157,9 +157,37 @@ class Limits:
     second in a burst); past this the oldest count as lost and go again."""
 
     max_remembered_commands: int = 8
-    """Downlink command ids a terminal remembers with their replies, so a
+    """Replies a terminal keeps for the newest commands it executed, so a
     command the master repeats (its probe repeats it until a reply arrives)
-    is executed once and answered again."""
+    is answered again without being executed again (about 70 bytes each)."""
+
+    command_window: int = 64
+    """Downlink command ids a terminal remembers as executed, as an RFC 4303
+    anti-replay window (s3.4.3: 32 must be supported, 64 is the usual
+    default) over the 8-bit id, so at most 2^(8-1) = 128.  The master issues a
+    terminal's next command id only after the last one's reply, so it never
+    runs ahead of the window; a command id seen within it is never executed twice."""
+
+    max_queued_replies: int = 4
+    """Replies a terminal holds waiting for airtime.  The oldest is dropped
+    when a new one would exceed this (counted); the master repeats a command
+    until its reply arrives, and the kept reply is sent again then."""
+
+    probe_interval: float = 0.1
+    """Seconds between the starts of the master's probes: a 7-byte probe at
+    4800 bit/s is on the air 12 ms, so the master still listens most of the
+    time, and a terminal learns of an opening within 0.1 s (common practice,
+    no source)."""
+
+    max_queued_commands: int = 16
+    """Downlink commands a master holds until each is answered; one per
+    terminal is on the air at a time, the rest wait their turn."""
+
+    max_ack_news: int = 16
+    """Messages a master holds acknowledgement news for (a fragment changed
+    what it holds), to announce on its next probes one message per probe
+    interval, oldest news first; past this the oldest news is dropped (the
+    terminal's next fragment of that message brings it back)."""
 
     def __post_init__(self) -> None:
         for name in ("turnaround", "burst_silence", "ack_margin"):
@@ -167,6 +195,12 @@ class Limits:
             if not isinstance(value, (int, float)) or isinstance(value, bool) or not 0 <= value <= 60:
                 raise UsageError(f"limit {name}={value!r} must be a number of seconds from 0 to 60")
         _within("max_remembered_commands", self.max_remembered_commands, 1, 256)
+        _within("command_window", self.command_window, 1, 128)
+        _within("max_queued_replies", self.max_queued_replies, 1, 256)
+        _within("max_queued_commands", self.max_queued_commands, 1, 1 << 16)
+        _within("max_ack_news", self.max_ack_news, 1, 1 << 16)
+        if not isinstance(self.probe_interval, (int, float)) or isinstance(self.probe_interval, bool) or not 0.001 <= self.probe_interval <= 60:
+            raise UsageError(f"limit probe_interval={self.probe_interval!r} must be a number of seconds from 0.001 to 60")
         _within("max_unconfirmed_pieces", self.max_unconfirmed_pieces, 1, 1 << 16)
         _within("max_message_payload", self.max_message_payload, 1, MAX_MESSAGE_PAYLOAD)
         _within("max_fragment_payload", self.max_fragment_payload, 1, MAX_FRAGMENT_PAYLOAD)

@@ -2,7 +2,8 @@
 
 Documents keep their prose by hand; each table sits between
 ``<!-- generated: NAME -->`` and ``<!-- end generated -->`` and is rewritten
-from ``ionotrail.terminal.wire.formats`` (frame layouts) or ``ionotrail.terminal.limits`` (link
+from ``ionotrail.terminal.wire.formats`` (frame layouts), the frame-type
+registry ``ionotrail.terminal.wire.registry``, or ``ionotrail.terminal.limits`` (link
 limits and the reasons for their defaults).  A test fails when a document is
 stale; run ``ionotrail docs`` to refresh them.
 """
@@ -17,14 +18,11 @@ import re
 
 import construct as cs
 from ionotrail.terminal import limits
-from ionotrail.terminal.wire import formats
+from ionotrail.terminal.wire import formats, layout
+from ionotrail.terminal.wire.formats import FrameType
+from ionotrail.terminal.wire.registry import FRAME_KINDS
 
-SECTIONS: dict[str, cs.Construct] = {
-    "probe": formats.PROBE,
-    "fragment": formats.FRAGMENT,
-    "ack": formats.ACK,
-    "command": formats.COMMAND,
-    "reply": formats.REPLY,
+SECTIONS: dict[str, cs.Construct] = {kind.name: kind.declaration for kind in FRAME_KINDS.values()} | {
     "ack-block": formats.ACK_BLOCK,
     "command-block": formats.COMMAND_BLOCK,
     "sealed-message": formats.SEALED_MESSAGE,
@@ -89,6 +87,18 @@ def table(con: cs.Construct) -> str:
     return "\n".join(lines) + "\n"
 
 
+def frame_types_table() -> str:
+    """Markdown table of the frame types (from the registry), then the unassigned type values."""
+    lines = ["| type | value | direction | purpose |", "| --- | --- | --- | --- |"]
+    lines += [f"| {k.name} | {int(t)} | {k.direction} | {k.purpose} |" for t, k in FRAME_KINDS.items()]
+    width = layout.bit_members(formats.HEAD, "the head")["type"].width
+    free = [value for value in range(1 << width) if value not in set(FrameType)]
+    spans = [list(group) for _, group in itertools.groupby(free, key=lambda v, c=itertools.count(): v - next(c))]
+    named = " and ".join(f"{g[0]}" if len(g) == 1 else f"{g[0]}-{g[-1]}" for g in spans)
+    lines += ["", f"Types {named} are unassigned; a frame using them is refused as `unknown_type`."]
+    return "\n".join(lines) + "\n"
+
+
 def limits_table() -> str:
     """Markdown table of every link limit: name, default, and why (its docstring)."""
     tree = ast.parse(inspect.getsource(limits.Limits))
@@ -104,17 +114,19 @@ def limits_table() -> str:
 
 
 def link_table() -> str:
-    """The link's transition table as a grid: a row per state, a column per input."""
-    from ionotrail.terminal.link.terminal import TRANSITIONS, Input, State
+    """The link's transition table as a grid: a row per state, a column per
+    input; a blank cell is a pair that cannot happen (it raises)."""
+    from ionotrail.terminal.link.table import TRANSITIONS, Action, Input, State
 
     lines = ["| state \\ input | " + " | ".join(f"{i.name}" for i in Input) + " |", "| --- |" + " --- |" * len(Input)]
     for state in State:
         cells = []
         for event in Input:
-            nxt, action = TRANSITIONS[(state, event)]
-            if nxt is state and action.name == "NONE":
-                cells.append("·")
+            cell = TRANSITIONS.get((state, event))
+            if cell is None:
+                cells.append("")
             else:
+                nxt, action = cell
                 cells.append(f"{nxt.name}<br>{action.name.lower()}" if nxt is not state else action.name.lower())
         lines.append(f"| **{state.name}** | " + " | ".join(cells) + " |")
     lines.append("")
@@ -124,22 +136,17 @@ def link_table() -> str:
     lines.append("")
     lines.append("| action | what the link does |")
     lines.append("| --- | --- |")
-    from ionotrail.terminal.link.terminal import Action
-
     lines += [f"| `{a.name.lower()}` | {a.value} |" for a in Action]
     return "\n".join(lines) + "\n"
 
 
 def link_diagram() -> str:
     """The same table as a Mermaid state diagram (rendered by GitHub and most viewers)."""
-    from ionotrail.terminal.link.terminal import TRANSITIONS, Action, State
+    from ionotrail.terminal.link.table import TRANSITIONS, State
 
     lines = ["```mermaid", "stateDiagram-v2", f"    [*] --> {State.LISTENING.name}"]
     for (state, event), (nxt, action) in TRANSITIONS.items():
-        if nxt is state and action is Action.NONE:
-            continue
-        label = event.name if action is Action.NONE else f"{event.name} / {action.name.lower()}"
-        lines.append(f"    {state.name} --> {nxt.name}: {label}")
+        lines.append(f"    {state.name} --> {nxt.name}: {event.name} / {action.name.lower()}")
     lines.append("```")
     return "\n".join(lines) + "\n"
 
@@ -157,6 +164,7 @@ def _scenario_table() -> str:
 
 
 GENERATORS = {name: (lambda con=con: table(con)) for name, con in SECTIONS.items()} | {
+    "frame-types": frame_types_table,
     "limits": limits_table,
     "scenario": _scenario_table,
     "link-table": link_table,

@@ -27,6 +27,7 @@ from ionotrail.harness.emulators.air import Air
 from ionotrail.harness.emulators.master import DeliveryRecord, MasterStation
 from ionotrail.harness.runners.vtime import VirtualTimeLoop
 from ionotrail.terminal.delivery.sender import MessageAcknowledged, MessageRefused, Sender
+from ionotrail.terminal.errors import Reason
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link.policy import by_name
 from ionotrail.terminal.link.terminal import BurstEnded, BurstStarted, Duplex, Link
@@ -40,6 +41,7 @@ REPORT_KEYS = (
     "latency_s.p50", "latency_s.p95", "latency_s.p99", "latency_s.max",
     "bits.payload_delivered", "bits.capacity_bound", "utilisation",
     "trails.total", "trails.used", "frames.sent", "frames.received", "frames.crc_failed",
+    *(f"frames.refused.{r.value}" for r in Reason if r is not Reason.BAD_CRC),
 )  # fmt: skip
 PROGRESS_EVERY_S = 600.0  # simulated seconds between progress reports
 
@@ -254,6 +256,7 @@ def _report(scenario: Scenario, policy: str, trails: TrailSet, air: Air, master:
             "sent": air.counters.frames_sent["up"],
             "received": air.counters.frames_delivered["up"],
             "crc_failed": master.counters.crc_failed,
+            "refused": {r.value: master.counters.refused.get(r.value, 0) for r in Reason if r is not Reason.BAD_CRC},
         },
         "probes": {
             "emitted_in_openings": air.counters.probes_emitted_in_openings,

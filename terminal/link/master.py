@@ -1,0 +1,232 @@
+"""The master station's endpoint: probes, polls, acknowledgements, commands, reassembly.
+
+The master keeps a probe stream going; what each probe carries is decided
+here, sans-I/O, so the simulator, a master on a serial modem and a fleet
+runner share one implementation:
+
+* **acknowledgements.**  Every fragment that changes what the master holds
+  of a message (or repeats a finished one) gives that message *news*.  The
+  probe carries the acknowledgement of one message at a time: news goes on
+  the probe at once when the probe has carried its current news for a probe
+  interval, otherwise at the next rotation, oldest news first, so every
+  message with news is announced within a probe interval per message ahead of
+  it.  News for the message already on the probe replaces it at once.
+* **commands.**  :meth:`MasterEndpoint.command` queues a command for a
+  terminal and allocates its 8-bit id (per terminal, in order).  The oldest
+  queued command is put on the probes, polling its terminal (other terminals
+  keep quiet), until the terminal's reply arrives; then the next.
+* **reassembly** of every terminal's messages, with a duplicate window per
+  terminal (:class:`~ionotrail.terminal.delivery.reassembly.Reassembler`), and
+  its deadline: a half-built message expires ``reassembly_lifetime`` after its
+  first fragment whether or not another fragment ever arrives.
+* **refusals** are counted by reason; ``crc_failed`` counts CRC failures only.
+
+Inputs are received frames (:meth:`on_frame`) and the timer
+(:meth:`on_timer`, due at :attr:`timer`); outputs are effects: a new probe
+to transmit, a delivered message, a command's reply.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections import OrderedDict, deque
+from typing import NamedTuple
+
+from ionotrail.terminal.delivery.reassembly import Delivery, Reassembler
+from ionotrail.terminal.errors import DecodeError, Reason, UsageError
+from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.link.timer import Purpose, Timer, due_at
+from ionotrail.terminal.wire import AckBlock, CommandBlock, Fragment, Probe, Reply, decode, encode
+
+COMMAND_ID_SPACE = 256
+
+
+class ProbeChanged(NamedTuple):
+    """Transmit this probe from now on, at the probe interval."""
+
+    frame: bytes
+
+
+class Delivered(NamedTuple):
+    """A message complete and verified, delivered once."""
+
+    delivery: Delivery
+
+
+class ReplyArrived(NamedTuple):
+    """A terminal answered the command on the air."""
+
+    terminal: int
+    command_id: int
+    status: int
+    result: bytes
+    time: float
+
+
+MasterEffect = ProbeChanged | Delivered | ReplyArrived
+
+
+@dataclasses.dataclass(slots=True)
+class MasterCounters:
+    fragments: int = 0
+    deliveries: int = 0
+    replies: int = 0
+    stray_replies: int = 0
+    other_frames: int = 0
+    probe_updates: int = 0
+    news_dropped: int = 0
+    refused: dict[str, int] = dataclasses.field(default_factory=dict)
+    """Frames refused by the decoder, by reason (:class:`~ionotrail.terminal.errors.Reason` values)."""
+
+    @property
+    def crc_failed(self) -> int:
+        return self.refused.get(Reason.BAD_CRC.value, 0)
+
+
+class _Pending(NamedTuple):
+    terminal: int
+    block: CommandBlock
+
+
+class MasterEndpoint:
+    """The master's side of the burst link, for any number of terminals."""
+
+    def __init__(self, address: int, *, limits: Limits = DEFAULT_LIMITS) -> None:
+        Probe(address, 0)  # validates the address
+        self.address = address
+        self.limits = limits
+        self.reassembler = Reassembler(limits)
+        self.counters = MasterCounters()
+        self.timer: Timer | None = None
+        """When :meth:`on_timer` must next be called, and what for."""
+        self._sequence = 0
+        self._ack: AckBlock | None = None
+        self._ack_since = -float("inf")  # when the probe began carrying self._ack
+        self._news: OrderedDict[tuple[int, int], AckBlock] = OrderedDict()  # (terminal, message id) -> latest
+        self._commands: deque[_Pending] = deque()
+        self._next_command_id: dict[int, int] = {}
+        self.probe = self._encode_probe()
+        """The probe frame the master transmits now."""
+
+    @property
+    def deadline(self) -> float | None:
+        return due_at(self.timer)
+
+    @property
+    def poll(self) -> int | None:
+        """The terminal the probes poll (None: any terminal may answer)."""
+        return self._commands[0].terminal if self._commands else None
+
+    # --- what the operator asks --------------------------------------------------------
+
+    def command(self, terminal: int, opcode: int, arguments: bytes, now: float) -> tuple[int, list[MasterEffect]]:
+        """Queue a command for ``terminal``; returns its id and the effects (a new
+        probe when it goes on the air at once)."""
+        if len(self._commands) >= self.limits.max_queued_commands:
+            raise UsageError(f"the master already holds {self.limits.max_queued_commands} unanswered commands")
+        command_id = self._next_command_id.get(terminal, 0)
+        block = CommandBlock(command_id, opcode, arguments)  # validates opcode and arguments
+        Probe(self.address, 0, poll=terminal)  # validates the address
+        self._next_command_id[terminal] = (command_id + 1) % COMMAND_ID_SPACE
+        self._commands.append(_Pending(terminal, block))
+        effects: list[MasterEffect] = []
+        if len(self._commands) == 1:
+            self._probe_changed(effects)
+        return command_id, effects
+
+    # --- inputs ------------------------------------------------------------------------
+
+    def on_frame(self, raw: bytes, now: float) -> list[MasterEffect]:
+        """A frame the master's receiver produced at ``now``."""
+        try:
+            frame = decode(raw)
+        except DecodeError as error:
+            refused = self.counters.refused
+            refused[error.reason.value] = refused.get(error.reason.value, 0) + 1
+            return []
+        effects: list[MasterEffect] = []
+        if isinstance(frame, Fragment) and frame.master == self.address and not frame.downlink:
+            self._fragment(frame, now, effects)
+        elif isinstance(frame, Reply) and frame.master == self.address:
+            self._reply(frame, now, effects)
+        else:
+            self.counters.other_frames += 1
+        self._arm(now)
+        return effects
+
+    def on_timer(self, now: float) -> list[MasterEffect]:
+        """Call at (or after) the timer's time; an early call does nothing."""
+        if self.timer is None or now < self.timer.at:
+            return []
+        effects: list[MasterEffect] = []
+        self.reassembler.expire(now)
+        if self._news and now >= self._ack_since + self.limits.probe_interval:
+            self._announce(now, effects)
+        self._arm(now)
+        return effects
+
+    # --- acknowledgements --------------------------------------------------------------
+
+    def _fragment(self, fragment: Fragment, now: float, effects: list[MasterEffect]) -> None:
+        self.counters.fragments += 1
+        reception = self.reassembler.receive(fragment, now)
+        if reception.delivery is not None:
+            self.counters.deliveries += 1
+            effects.append(Delivered(reception.delivery))
+        ack = reception.ack
+        key = (ack.terminal, ack.message_id)
+        if self._ack is not None and (self._ack.terminal, self._ack.message_id) == key:
+            if ack != self._ack:  # fresher news for the message on the probe: at once
+                self._news.pop(key, None)
+                self._put_on_probe(ack, now, effects)
+            return
+        if ack == self._news.get(key):
+            return
+        self._news[key] = ack
+        self._news.move_to_end(key)
+        while len(self._news) > self.limits.max_ack_news:
+            self._news.popitem(last=False)
+            self.counters.news_dropped += 1
+        if now >= self._ack_since + self.limits.probe_interval:
+            self._announce(now, effects)
+
+    def _announce(self, now: float, effects: list[MasterEffect]) -> None:
+        _, ack = self._news.popitem(last=False)
+        self._put_on_probe(ack, now, effects)
+
+    def _put_on_probe(self, ack: AckBlock, now: float, effects: list[MasterEffect]) -> None:
+        self._ack, self._ack_since = ack, now
+        self._probe_changed(effects)
+
+    # --- commands ----------------------------------------------------------------------
+
+    def _reply(self, reply: Reply, now: float, effects: list[MasterEffect]) -> None:
+        pending = self._commands[0] if self._commands else None
+        if pending is None or pending.terminal != reply.terminal or pending.block.command_id != reply.command_id:
+            self.counters.stray_replies += 1  # a repeat of an answered reply, or not ours
+            return
+        self.counters.replies += 1
+        self._commands.popleft()
+        effects.append(ReplyArrived(reply.terminal, reply.command_id, int(reply.status), reply.result, now))
+        self._probe_changed(effects)
+
+    # --- the probe and the timer -------------------------------------------------------
+
+    def _probe_changed(self, effects: list[MasterEffect]) -> None:
+        self._sequence = (self._sequence + 1) & 0xFFFF
+        self.counters.probe_updates += 1
+        self.probe = self._encode_probe()
+        effects.append(ProbeChanged(self.probe))
+
+    def _encode_probe(self) -> bytes:
+        pending = self._commands[0] if self._commands else None
+        if pending is None:
+            return encode(Probe(self.address, self._sequence, ack=self._ack))
+        return encode(Probe(self.address, self._sequence, poll=pending.terminal, ack=self._ack, command=pending.block))
+
+    def _arm(self, now: float) -> None:
+        """One timer: the earlier of the next news rotation and the reassembly deadline."""
+        due = [t for t in (self.reassembler.next_deadline(),) if t is not None]
+        if self._news:
+            due.append(max(self._ack_since + self.limits.probe_interval, now))
+        self.timer = Timer(Purpose.MASTER, min(due)) if due else None
