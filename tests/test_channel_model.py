@@ -11,7 +11,7 @@ import math
 import numpy as np
 import pytest
 from ionotrail.harness.channel import physics, scenario, sky
-from ionotrail.harness.channel.model import Channel, TrailSet
+from ionotrail.harness.channel.model import Channel, Opening, TrailSet, with_openings
 
 NO_SHOWERS = ["channel.showers=false"]
 # A link far above threshold, so that underdense trails run well below the
@@ -243,3 +243,29 @@ def test_probe_windows_cover_every_opening_and_nothing_audible_lies_outside() ->
         assert inside(t) and inside(t + length * 0.999)  # the threshold-open time is inside
     for end in ends:  # just past a window a short probe all but surely fails
         assert channel.success_probability("down", end + 0.001, 56) < 1e-6
+
+
+def test_a_frame_is_measured_on_the_trail_that_carries_it() -> None:
+    # Trail A (12 dB, tau 0.5 s) has decayed 14 tau, to about -49 dB, when
+    # trail B forms at 10 dB (peaks and decays are the openings' own
+    # definitions; C, much later, holds for 12 s so that, as overdense trails
+    # do on the demo link, it keeps faded trails like A among the candidates).
+    # A 96-bit probe (20 ms at 4800 bit/s, sampled in four 5 ms shares) whose
+    # first bit goes out 0.5 ms before B forms is carried by B as far as the
+    # success model is concerned, so it is measured on B.
+    base = trails("scenario.duration_hours=0.01")
+    openings = [Opening(0.0, 12.0, 0.5), Opening(7.0, 10.0, 0.2), Opening(100.0, 20.0, 0.5, hold=12.0)]
+    channel = Channel(with_openings(base, openings))
+    early = 7.0 - 0.0005
+    assert channel.success_probability("down", early, 96) > 0.99
+    first_bit = channel.strongest("down", early)
+    assert first_bit is not None and first_bit[0] == 0 and 10 * math.log10(first_bit[1]) < -45
+    carrier = channel.frame_carrier("down", early, 96)
+    assert carrier is not None and carrier[0] == 1 and 10 * math.log10(carrier[1]) == pytest.approx(10.0, abs=1e-9)
+    # Formed after the model's first look (mid first share, 2.5 ms in): the
+    # frame's start met only A, it all but surely fails, and it is measured on A.
+    late = 7.0 - 0.004
+    assert channel.success_probability("down", late, 96) < 1e-6
+    assert channel.frame_carrier("down", late, 96) == channel.strongest("down", late)
+    # On B, decaying: measured at the first bit, as ever.
+    assert channel.frame_carrier("down", 7.1, 96) == channel.strongest("down", 7.1)

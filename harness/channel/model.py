@@ -369,6 +369,12 @@ class TrailSet:
 CLEAR_BER = 1e-13  # below this per bit, a frame of at most 2,200 bits fails with p < 3e-10
 
 
+def _sample_count(duration: float) -> int:
+    """Points at which the frame-success model samples a frame of ``duration`` s:
+    one per 5 ms, at least 2 and at most 16, each in the middle of its share."""
+    return int(min(16, max(2, math.ceil(duration / 0.005))))
+
+
 def _ebn0_for_ber(ber_of: Callable[[float], float], ber: float) -> float:
     """Linear Eb/N0 at which a bit-error-rate function falls to ``ber`` (bisection)."""
     low, high = 0.0, 1000.0
@@ -497,6 +503,28 @@ class Channel:
                 best = (i, value)
         return best
 
+    def frame_carrier(self, direction: str, t0: float, bits: int) -> tuple[int, float] | None:
+        """(index, linear Eb/N0) of the trail that carries a frame of ``bits`` sent
+        at t0, and the Eb/N0 the receiver reports for it.  Normally the
+        strongest trail at the first bit, measured there.  The success model
+        first samples a frame in the middle of its first share, so it takes a
+        trail that forms between the first bit and that point as carrying the
+        whole frame; such a trail, measured as it forms, is the carrier when it
+        is the stronger (otherwise the frame would be reported at the Eb/N0 of
+        whatever faded trail its first bit met).  None when neither exists."""
+        best = self.strongest(direction, t0)
+        c = self._columns
+        if c is None:
+            return best
+        duration = bits / self.params[direction].bit_rate
+        first_look = t0 + 0.5 * duration / _sample_count(duration)
+        rows = c.rows[direction]
+        for i in range(bisect.bisect_right(c.t, t0), bisect.bisect_right(c.t, first_look)):
+            value = _envelope_at(rows[i], rows[i][0])
+            if value > 0 and (best is None or value > best[1]):
+                best = (i, value)
+        return best
+
     def audible_windows(self, direction: str, bits: int, p_min: float = 1e-6) -> tuple[list[float], list[float]]:
         """Merged (starts, ends) of the periods in which a frame of ``bits`` could
         arrive with probability above ``p_min``: from each trail's start until
@@ -535,7 +563,7 @@ class Channel:
             return 0.0
         if self._surely_clear(live, t0, t1):
             return 1.0
-        samples = int(min(16, max(2, math.ceil(duration / 0.005))))
+        samples = _sample_count(duration)
         step = duration / samples
         ber, log1p = self._ber, math.log1p
         log_ok = 0.0
@@ -633,7 +661,7 @@ class Channel:
         idx = self._candidates(direction, t0 + duration)
         if not len(idx):
             return 0.0
-        samples = int(min(16, max(2, math.ceil(duration / 0.005))))
+        samples = _sample_count(duration)
         times = t0 + (np.arange(samples) + 0.5) * duration / samples
         grid_t = np.repeat(times, len(idx))
         grid_i = np.tile(idx, samples)

@@ -8,7 +8,9 @@ is drawn from the channel's frame-success probability over the SNR
 trajectory it meets.  A frame that fails while the path was open at its
 start (the receiver synchronised, bits went bad later) is delivered with one
 bit flipped, so the receiver's CRC counts it; a frame sent into a closed path
-is simply not heard.
+is simply not heard.  What the receiver measures, Eb/N0 and frequency offset,
+is that of the trail carrying the frame
+(:meth:`~ionotrail.harness.channel.model.Channel.frame_carrier`).
 
 The master's probe stream is simulated only where it can matter: probes are
 emitted on their fixed cadence, but the loop is woken only for emissions
@@ -105,18 +107,17 @@ class Air:
         end = start + bits / self.bit_rate[direction]
         sender.busy_until = end
         self.counters.frames_sent[direction] += 1
-        strongest = self.channel.strongest(direction, start)
-        snr_db = 10 * math.log10(strongest[1]) if strongest else -math.inf
-        offset = self._offset(direction, strongest)
+        carrier = self.channel.frame_carrier(direction, start, bits)
+        snr_db = _db(carrier)
         p = self.channel.success_probability(direction, start, bits)
         intact = bool(self.rng.random() < p)
         if self.on_uplink is not None and direction == "up":
             self.on_uplink(start, len(frame), intact, snr_db)
         if intact:
-            if direction == "up" and strongest is not None:
-                self.used_trails.add(strongest[0])
+            if direction == "up" and carrier is not None:
+                self.used_trails.add(carrier[0])
             delivered = frame
-        elif strongest is not None and strongest[1] >= self.threshold[direction]:
+        elif self._synchronised(direction, start):
             bit = int(self.rng.integers(0, bits))
             damaged = bytearray(frame)
             damaged[bit // 8] ^= 0x80 >> (bit % 8)
@@ -125,7 +126,7 @@ class Air:
         else:
             return
         receiver = self.terminal if sender is self.master else self.master
-        arrival = Arrival(delivered, self.origin + end, snr_db, offset)  # type: ignore[operator]
+        arrival = Arrival(delivered, self.origin + end, snr_db, self._offset(direction, carrier))  # type: ignore[operator]
         loop.call_at(arrival.time, self._arrive, receiver, arrival, start, direction, intact)
 
     def _arrive(self, receiver: SimulatedPort, arrival: Arrival, start: float, direction: str, intact: bool) -> None:
@@ -135,9 +136,14 @@ class Air:
             self.counters.frames_delivered[direction] += 1
         receiver.deliver(arrival)
 
-    def _offset(self, direction: str, strongest: tuple[int, float] | None) -> float:
-        """Frequency offset the receiver measures: oscillators plus the trail's Doppler."""
-        doppler = self.channel.doppler_of(direction, strongest[0]) if strongest else 0.0
+    def _synchronised(self, direction: str, start: float) -> bool:
+        """Was the path open at a frame's first bit, so the receiver caught it?"""
+        strongest = self.channel.strongest(direction, start)
+        return strongest is not None and strongest[1] >= self.threshold[direction]
+
+    def _offset(self, direction: str, carrier: tuple[int, float] | None) -> float:
+        """Frequency offset the receiver measures: oscillators plus the carrying trail's Doppler."""
+        doppler = self.channel.doppler_of(direction, carrier[0]) if carrier else 0.0
         return self.offset_hz[direction] + doppler
 
     # --- the probe stream ------------------------------------------------------------
@@ -205,12 +211,16 @@ class Air:
             if self.probe_filter is not None and not self.probe_filter(end, frame):
                 self.counters.probes_filtered += 1
             elif self.terminal.hears(emit):
-                strongest = self.channel.strongest("down", emit)
-                snr_db = 10 * math.log10(strongest[1]) if strongest else -math.inf
+                carrier = self.channel.frame_carrier("down", emit, bits)
                 self.counters.probes_delivered += 1
-                self.terminal.deliver(Arrival(frame, self.origin + end, snr_db, self._offset("down", strongest)))  # type: ignore[operator]
+                self.terminal.deliver(Arrival(frame, self.origin + end, _db(carrier), self._offset("down", carrier)))  # type: ignore[operator]
             else:
                 self.counters.probes_unheard += 1
+
+
+def _db(carrier: tuple[int, float] | None) -> float:
+    """The Eb/N0 a receiver reports for a frame, dB (-inf when no trail carried it)."""
+    return 10 * math.log10(carrier[1]) if carrier else -math.inf
 
 
 class SimulatedPort(Port):
