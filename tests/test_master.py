@@ -1,0 +1,144 @@
+"""The master endpoint: probe contents, acknowledgements, commands, reassembly deadline, refusals.
+
+Expectations follow the rules in docs/link.md; the reassembly timer starts at
+the first fragment and is not restarted by later ones (RFC 8200 s4.5).
+"""
+
+from __future__ import annotations
+
+import pytest
+from ionotrail.terminal.errors import UsageError
+from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.link.master import Delivered, MasterEndpoint, ProbeChanged, ReplyArrived
+from ionotrail.terminal.link.timer import Purpose
+from ionotrail.terminal.wire import (
+    AckBlock,
+    CommandBlock,
+    Fragment,
+    Probe,
+    Reply,
+    ReplyStatus,
+    decode,
+    encode,
+    seal_message,
+)
+from ionotrail.terminal.wire.crc import crc16
+
+MASTER, T1, T2 = 7, 0x0A31, 0x0B00
+INTERVAL = DEFAULT_LIMITS.probe_interval
+
+
+def fragment(terminal: int, message_id: int, sealed: bytes, start: int, end: int) -> bytes:
+    return encode(Fragment(terminal, MASTER, message_id, start, sealed[start:end], final=end == len(sealed)))
+
+
+def probe_of(endpoint: MasterEndpoint) -> Probe:
+    frame = decode(endpoint.probe)
+    assert isinstance(frame, Probe)
+    return frame
+
+
+def fire(endpoint: MasterEndpoint) -> list[object]:
+    assert endpoint.timer is not None and endpoint.timer.purpose is Purpose.MASTER
+    now = endpoint.timer.at
+    effects = list(endpoint.on_timer(now))
+    assert endpoint.deadline is None or endpoint.deadline > now, "after on_timer(now) the deadline is None or later than now"
+    return effects
+
+
+def test_a_half_built_message_expires_at_its_deadline_with_no_further_fragment() -> None:
+    master = MasterEndpoint(MASTER)
+    sealed = seal_message(b"x" * 100)
+    master.on_frame(fragment(T1, 0, sealed, 0, 50), 10.0)
+    master.on_frame(fragment(T1, 0, sealed, 50, 60), 20.0)  # a later fragment does not restart the timer
+    assert master.reassembler.partial_count == 1
+    assert master.deadline == pytest.approx(10.0 + DEFAULT_LIMITS.reassembly_lifetime)
+    assert master.on_timer(master.deadline - 1.0) == []  # early: nothing happens
+    assert master.reassembler.partial_count == 1
+    fire(master)
+    assert master.reassembler.partial_count == 0 and master.reassembler.counters.expired == 1
+    assert master.deadline is None
+
+
+def test_every_message_with_news_is_acknowledged_in_turn() -> None:
+    master = MasterEndpoint(MASTER)
+    a, b = seal_message(b"a" * 80), seal_message(b"b" * 80)
+    effects = master.on_frame(fragment(T1, 0, a, 0, 40), 1.0)
+    assert [type(e) for e in effects] == [ProbeChanged]
+    assert probe_of(master).ack == AckBlock(T1, 0, ((0, 40),))
+    assert master.on_frame(fragment(T1, 1, b, 0, 40), 1.02) == []  # news for b waits its turn
+    assert master.on_frame(fragment(T1, 0, a, 40, 60), 1.04) != []  # fresher news for a: at once
+    assert probe_of(master).ack == AckBlock(T1, 0, ((0, 60),))
+    assert master.deadline == pytest.approx(1.04 + INTERVAL)
+    fire(master)
+    assert probe_of(master).ack == AckBlock(T1, 1, ((0, 40),)), "b's news follows a probe interval later"
+    assert master.deadline == pytest.approx(1.0 + DEFAULT_LIMITS.reassembly_lifetime), "no news left: the reassembly deadline"
+
+
+def test_a_complete_message_is_delivered_once_and_acknowledged_complete() -> None:
+    master = MasterEndpoint(MASTER)
+    sealed = seal_message(b"hello")
+    effects = master.on_frame(fragment(T1, 3, sealed, 0, len(sealed)), 5.0)
+    (delivered,) = [e for e in effects if isinstance(e, Delivered)]
+    assert delivered.delivery.payload == b"hello" and delivered.delivery.terminal == T1
+    assert probe_of(master).ack == AckBlock(T1, 3, (), complete=True)
+    again = master.on_frame(fragment(T1, 3, sealed, 0, len(sealed)), 6.0)
+    assert not any(isinstance(e, Delivered) for e in again)
+    assert master.counters.deliveries == 1
+
+
+def test_terminals_have_their_own_ids_and_duplicate_windows() -> None:
+    master = MasterEndpoint(MASTER)
+    one, two = seal_message(b"from one"), seal_message(b"from two")
+    got = []
+    for terminal, sealed in ((T1, one), (T2, two), (T1, one), (T2, two)):
+        for effect in master.on_frame(fragment(terminal, 0, sealed, 0, len(sealed)), 1.0):
+            if isinstance(effect, Delivered):
+                got.append((effect.delivery.terminal, effect.delivery.payload))
+    assert got == [(T1, b"from one"), (T2, b"from two")]
+
+
+def test_crc_failures_are_counted_apart_from_other_refusals() -> None:
+    master = MasterEndpoint(MASTER)
+    good = encode(Reply(T1, MASTER, 0, ReplyStatus.OK))
+    bad_crc = good[:-1] + bytes([good[-1] ^ 0x01])
+    master.on_frame(bad_crc, 1.0)
+    master.on_frame(good[:2], 1.0)  # shorter than any frame
+    body = bytes([0xF0 | good[0] & 0x0F]) + good[1:-2]  # format version 15: nobody speaks it
+    master.on_frame(body + crc16(body).to_bytes(2, "big"), 1.0)
+    assert master.counters.crc_failed == 1
+    assert master.counters.refused == {"bad_crc": 1, "truncated": 1, "unsupported_version": 1}
+
+
+def test_commands_poll_their_terminal_until_the_reply_then_the_next_goes() -> None:
+    master = MasterEndpoint(MASTER)
+    first, effects = master.command(T1, 1, b"\x00\x00\x03\x84", 0.0)
+    assert [type(e) for e in effects] == [ProbeChanged]
+    second, effects = master.command(T2, 2, b"", 0.0)
+    third, _ = master.command(T1, 3, b"", 0.0)
+    assert (first, second, third) == (0, 0, 1), "ids are allocated per terminal, in order"
+    assert effects == [], "the second command waits: one poll at a time"
+    probe = probe_of(master)
+    assert probe.poll == T1 and probe.command == CommandBlock(0, 1, b"\x00\x00\x03\x84")
+    assert master.on_frame(encode(Reply(T2, MASTER, 0, ReplyStatus.OK)), 1.0) == []  # not the one asked
+    effects = master.on_frame(encode(Reply(T1, MASTER, 0, ReplyStatus.OK, b"ok")), 2.0)
+    assert ReplyArrived(T1, 0, int(ReplyStatus.OK), b"ok", 2.0) in effects
+    assert probe_of(master).poll == T2
+    master.on_frame(encode(Reply(T1, MASTER, 0, ReplyStatus.OK, b"ok")), 2.1)  # a repeat of that reply
+    assert master.counters.replies == 1 and master.counters.stray_replies == 2
+
+
+def test_the_command_queue_is_bounded() -> None:
+    master = MasterEndpoint(MASTER, limits=Limits(max_queued_commands=2))
+    master.command(T1, 1, b"", 0.0)
+    master.command(T1, 1, b"", 0.0)
+    with pytest.raises(UsageError, match="2 unanswered commands"):
+        master.command(T1, 1, b"", 0.0)
+
+
+def test_acknowledgement_news_is_bounded() -> None:
+    master = MasterEndpoint(MASTER, limits=Limits(max_ack_news=2, max_partials_per_source=8))
+    for message_id in range(6):
+        sealed = seal_message(bytes([message_id]) * 40)
+        master.on_frame(fragment(T1, message_id, sealed, 0, 10), 1.0)
+    assert master.counters.news_dropped == 3  # one on the probe, two waiting, three dropped
