@@ -115,3 +115,58 @@ def test_channel_by_month_rows_cover_the_period() -> None:
     months = json.loads(result.stdout)["monthly"]
     assert [m["month"] for m in months] == ["2027-01", "2027-02"]
     assert all(m["bursts_per_hour"] > 0 for m in months)
+
+
+# Message creation times are 32-bit unsigned whole seconds since 1970-01-01 UTC
+# (the demo report's created_s, harness/demo/gauge.py), so the last instant one
+# can carry is 2**32 - 1 s = 2106-02-07T06:28:15Z (Python: datetime.fromtimestamp(2**32 - 1, UTC)).
+@pytest.mark.parametrize(
+    "start",
+    [
+        "1969-12-31T23:59:59Z",  # one second before the epoch
+        "1960-01-01T00:00:00Z",
+        "2106-02-07T06:28:16Z",  # one second past the last representable one
+        "2107-01-01T00:00:00Z",
+        "9999-12-31T23:00:00Z",
+        "0001-01-01T00:00:00+01:00",  # in UTC, before Python's datetime range: astimezone overflowed
+    ],
+)
+def test_a_start_the_stack_cannot_carry_is_refused(start: str) -> None:
+    with pytest.raises(ScenarioError) as info:
+        scenario.load(None, [f"scenario.start={start}"])
+    message = str(info.value)
+    assert message.startswith(f"--set scenario.start={start}: scenario.start = ")
+    assert "is not usable; expected a UTC date and time from 1970-01-01T00:00:00Z to 2106-02-07T06:28:15Z" in message
+
+
+def test_a_start_from_a_file_as_a_toml_datetime_is_refused(tmp_path: Path) -> None:
+    path = tmp_path / "old.toml"
+    path.write_text("[scenario]\nstart = 0001-01-01T00:00:00+01:00\n")  # a TOML offset date-time, not a string
+    with pytest.raises(ScenarioError, match=re.escape(f"{path}: scenario.start = 0001-01-01T00:00:00+01:00 is not usable")):
+        scenario.load(path)
+
+
+def test_the_first_and_last_representable_instants_are_accepted() -> None:
+    assert scenario.load(None, ["scenario.start=1970-01-01T00:00:00Z"]).start.timestamp() == 0
+    last = scenario.load(None, ["scenario.start=2106-02-07T06:27:15Z", "scenario.duration_hours=0.01"])
+    assert last.start.timestamp() + last.duration_s < 2**32
+
+
+def test_a_run_that_ends_past_the_last_representable_instant_is_refused() -> None:
+    start = "--set scenario.start=2106-02-07T00:00:00Z"
+    with pytest.raises(ScenarioError) as info:
+        scenario.load(None, [start.removeprefix("--set "), "scenario.duration_hours=24"])
+    message = str(info.value)
+    assert message.startswith(f"{start} and --set scenario.duration_hours=24: scenario.start = 2106-02-07T00:00:00Z and ")
+    assert "scenario.duration_hours = 24.0 end the run at 2106-02-08T00:00:00Z" in message
+    assert "expected a run that ends before 2106-02-07T06:28:16Z" in message
+
+
+@pytest.mark.parametrize("command", ["simulate", "channel"])
+@pytest.mark.parametrize("start", ["1960-01-01T00:00:00Z", "2107-01-01T00:00:00Z", "0001-01-01T00:00:00+01:00"])
+def test_commands_refuse_an_unrepresentable_start_in_one_line(command: str, start: str) -> None:
+    result = _run(command, "--hours", "0.5", "--set", f"scenario.start={start}")
+    assert result.returncode == 2, result.stderr
+    assert result.stdout == "" and "Traceback" not in result.stderr
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and f"scenario.start={start}" in lines[0] and "1970-01-01T00:00:00Z to 2106-02-07T06:28:15Z" in lines[0]

@@ -19,6 +19,8 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
+from ionotrail.harness.demo.gauge import REPORT_HEADER
+
 
 class ScenarioError(ValueError):
     """A scenario file or override that cannot be used; the message says why."""
@@ -27,6 +29,12 @@ class ScenarioError(ValueError):
 ENVIRONMENTS = ("business", "residential", "rural", "quiet_rural")
 MODULATIONS = ("bpsk", "dpsk", "coherent_fsk", "noncoherent_fsk")
 POLARISATIONS = ("horizontal", "vertical")
+END_UNIX_S = 2 ** (8 * REPORT_HEADER.created_s.sizeof())
+"""The first instant a message creation time cannot carry: creation times are
+unsigned whole seconds since 1970-01-01 UTC in 32 bits (the demo report's
+``created_s``), so a run must start at or after 1970 and end before
+2106-02-07T06:28:16Z."""
+_CARRIED = "(message creation times are 32-bit seconds since 1970)"
 
 
 @dataclasses.dataclass(frozen=True)
@@ -69,17 +77,26 @@ def _flag(value: Any) -> str | None:
     return None if isinstance(value, bool) else "true or false"
 
 
+def _utc_text(unix_s: float) -> str:
+    return dt.datetime.fromtimestamp(unix_s, dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
 def _instant(value: Any) -> str | None:
-    if isinstance(value, dt.datetime) or (isinstance(value, str) and _parse_instant(value) is not None):
-        return None
-    return "a UTC date and time such as 2027-01-15T00:00:00Z"
+    parsed = _parse_instant(value) if isinstance(value, (dt.datetime, str)) else None
+    if parsed is None:
+        return "a UTC date and time such as 2027-01-15T00:00:00Z"
+    if not 0 <= parsed.timestamp() < END_UNIX_S:
+        return f"a UTC date and time from {_utc_text(0)} to {_utc_text(END_UNIX_S - 1)} {_CARRIED}"
+    return None
 
 
 def _parse_instant(value: Any) -> dt.datetime | None:
+    """The instant, time-zone aware (UTC when none is given); None when it is not one.
+    It may lie outside what datetime can convert to UTC: compare timestamps."""
     if isinstance(value, dt.datetime):
         return value if value.tzinfo else value.replace(tzinfo=dt.UTC)
     try:
-        parsed = dt.datetime.fromisoformat(str(value).replace("Z", "+00:00"))
+        parsed = dt.datetime.fromisoformat(str(value))
     except ValueError:
         return None
     return parsed if parsed.tzinfo else parsed.replace(tzinfo=dt.UTC)
@@ -200,7 +217,8 @@ def _check(section: str, key: str, value: Any, origin: str) -> None:
         raise ScenarioError(f"{origin}: unknown key {section}.{key}; [{section}] takes {', '.join(fields)}")
     expected = fields[key].check(value)
     if expected is not None:
-        raise ScenarioError(f"{origin}: {section}.{key} = {value!r} is not usable; expected {expected}")
+        shown = value.isoformat() if isinstance(value, dt.datetime) else repr(value)
+        raise ScenarioError(f"{origin}: {section}.{key} = {shown} is not usable; expected {expected}")
 
 
 def parse_override(text: str) -> tuple[str, str, Any]:
@@ -236,16 +254,21 @@ def load(path: str | Path | None = None, overrides: Iterable[str] = ()) -> Scena
     except tomllib.TOMLDecodeError as exc:
         raise ScenarioError(f"{origin}: not valid TOML: {exc}") from None
     merged = _merge(values, origin)
+    given: dict[str, str] = {}  # dotted key -> the override that set it
     for text_override in overrides:
         section, key, value = parse_override(text_override)
         if section not in SCHEMA:
             raise ScenarioError(f"--set {text_override}: unknown section [{section}]; expected one of {', '.join(SCHEMA)}")
         _check(section, key, value, f"--set {text_override}")
         merged[section][key] = value
-    return _build(merged, origin)
+        given[f"{section}.{key}"] = f"--set {text_override}"
+    return _build(merged, origin, given)
 
 
-def _build(m: dict[str, dict[str, Any]], origin: str) -> Scenario:
+def _build(m: dict[str, dict[str, Any]], origin: str, given: dict[str, str] | None = None) -> Scenario:
+    """The scenario from merged values; ``given`` names the override behind a
+    key, for errors that involve more than one key."""
+    given = given or {}
     p = m["protocol"]
     if not p["burst_silence_s"] > max(p["probe_interval_s"], p["turnaround_s"]):
         raise ScenarioError(
@@ -254,6 +277,13 @@ def _build(m: dict[str, dict[str, Any]], origin: str) -> Scenario:
         )
     start = _parse_instant(m["scenario"]["start"])
     assert start is not None
+    end = start.timestamp() + float(m["scenario"]["duration_hours"]) * 3600.0
+    if not end < END_UNIX_S:
+        where = " and ".join(dict.fromkeys(given.get(k, origin) for k in ("scenario.start", "scenario.duration_hours")))
+        raise ScenarioError(
+            f"{where}: scenario.start = {_utc_text(start.timestamp())} and scenario.duration_hours = {m['scenario']['duration_hours']!r} "
+            f"end the run at {_utc_text(end)}, which is not usable; expected a run that ends before {_utc_text(END_UNIX_S)} {_CARRIED}"
+        )
     stations = {name: Station(**{k: m[name][k] for k in SCHEMA[name]}) for name in ("terminal", "master")}
     return Scenario(
         name=m["scenario"]["name"],
