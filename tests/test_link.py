@@ -33,7 +33,7 @@ from ionotrail.terminal.link.terminal import (
     Transmit,
 )
 from ionotrail.terminal.link.timer import Purpose, Timer
-from ionotrail.terminal.wire import AckBlock, CommandBlock, Command, Fragment, Probe, Reply, ReplyStatus, decode, encode
+from ionotrail.terminal.wire import AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus, decode, encode
 
 TERMINAL, OTHER, MASTER = 0x0A31, 0x0B00, 7
 BIT_RATE = 4800.0
@@ -108,7 +108,7 @@ def test_a_pair_that_cannot_happen_raises_a_protocol_error(state: State, event: 
 
 
 def test_timer_classification_follows_the_facts() -> None:
-    never: Callable[[], bool] = lambda: pytest.fail("ready asked when no frame could go")  # noqa: E731
+    never: Callable[[], bool] = lambda: pytest.fail("ready asked when no frame could go")
     yes, no = (lambda: True), (lambda: False)
     assert table.classify_timer(Purpose.AIR_END, silent=True, ours=True, hold=False, ready=never) is Input.SILENT
     assert table.classify_timer(Purpose.TURNAROUND, silent=False, ours=True, hold=True, ready=yes) is Input.GO_READY

@@ -142,3 +142,18 @@ def test_acknowledgement_news_is_bounded() -> None:
         sealed = seal_message(bytes([message_id]) * 40)
         master.on_frame(fragment(T1, message_id, sealed, 0, 10), 1.0)
     assert master.counters.news_dropped == 3  # one on the probe, two waiting, three dropped
+
+
+def test_a_call_at_the_reassembly_deadline_always_expires() -> None:
+    # Found by the endpoints machine: for this first-fragment time, (first + 600) - first
+    # rounds to just under 600, so the old check (now - first >= lifetime) left the
+    # message, and its deadline, due at the very instant on_timer was called.
+    limits = Limits(reassembly_lifetime=600.0)
+    master = MasterEndpoint(MASTER, limits=limits)
+    sealed = seal_message(b"y" * 50)
+    first = 3943.616755677566
+    assert (first + 600.0) - first < 600.0
+    master.on_frame(fragment(T1, 0, sealed, 0, 10), first)
+    assert master.deadline == first + 600.0
+    fire(master)
+    assert master.reassembler.partial_count == 0

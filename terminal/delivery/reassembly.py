@@ -186,7 +186,9 @@ class Reassembler:
     def expire(self, now: float) -> None:
         """Drop partial messages whose lifetime has run out."""
         lifetime = self.limits.reassembly_lifetime
-        for partial in [p for p in self._partials.values() if now - p.first_fragment >= lifetime]:
+        # The same sum as next_deadline(), so a call at the deadline always expires
+        # (now - first >= lifetime can round the other way).
+        for partial in [p for p in self._partials.values() if p.first_fragment + lifetime <= now]:
             self._drop(partial)
             self.counters.expired += 1
 
