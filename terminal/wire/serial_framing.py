@@ -23,7 +23,8 @@ def encode_record(payload: bytes, max_payload: int = MAX_SERIAL_PAYLOAD) -> byte
     """One record as sent on the line: COBS encoding, then the delimiter."""
     if len(payload) > max_payload:
         raise UsageError(f"serial record of {len(payload)} bytes exceeds the {max_payload}-byte limit")
-    return cobs.encode(bytes(payload)) + DELIMITER
+    encoded: bytes = cobs.encode(bytes(payload))
+    return encoded + DELIMITER
 
 
 def decode_record(encoded: bytes, max_payload: int = MAX_SERIAL_PAYLOAD) -> bytes:
@@ -97,7 +98,7 @@ class Deframer:
         if not self._buffer:
             return  # idle delimiters between records are harmless
         try:
-            records.append(decode_record(self._buffer, self.max_payload))
+            records.append(decode_record(bytes(self._buffer), self.max_payload))
             self.counters.records += 1
         except BadLineCode:
             self.counters.bad_records += 1
