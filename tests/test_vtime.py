@@ -6,7 +6,7 @@ import asyncio
 import time
 
 import pytest
-from ionotrail.harness.runners.vtime import VirtualTimeDeadlock, VirtualTimeLoop
+from ionotrail.harness.runners.vtime import CallbackError, VirtualTimeDeadlock, VirtualTimeLoop, raise_callback_errors
 
 
 def run(coro_factory, start: float = 0.0):  # type: ignore[no-untyped-def]
@@ -80,3 +80,58 @@ def test_tasks_interleave_by_virtual_time() -> None:
     # 0.0 and 1.0, against the probe's at 0.75 and 1.75) runs first.
     assert log[3:5] == [(1.0, "report"), (1.0, "probe")]
     assert log[-2:] == [(2.0, "report"), (2.0, "probe")]
+
+
+def test_an_exception_in_a_callback_ends_the_guarded_run() -> None:
+    """asyncio only logs an exception raised in a callback and runs on; under
+    raise_callback_errors it ends the run, with the exception as its cause."""
+    seen: list[float] = []
+
+    def gauge_reading() -> None:
+        seen.append(asyncio.get_running_loop().time())
+        raise ZeroDivisionError("reading / 0")
+
+    async def main() -> str:
+        loop = asyncio.get_running_loop()
+        loop.call_later(10.0, gauge_reading)
+        await asyncio.sleep(100.0)
+        return "ran to the end"
+
+    with pytest.raises(CallbackError, match=r"gauge_reading.*ZeroDivisionError: reading / 0") as info:
+        run(lambda: raise_callback_errors(main()))
+    assert isinstance(info.value.__cause__, ZeroDivisionError)
+    assert seen == [10.0]
+    assert "\n" not in str(info.value), "one line"
+
+
+def test_the_guard_works_on_asyncio_own_loop_too() -> None:
+    def fail() -> None:
+        raise KeyError("terminal 0x0a31")
+
+    async def main() -> None:
+        asyncio.get_running_loop().call_soon(fail)
+        await asyncio.get_running_loop().create_future()  # would wait forever
+
+    with pytest.raises(CallbackError, match="KeyError"):
+        asyncio.run(raise_callback_errors(main()))
+
+
+def test_the_guard_returns_the_result_and_passes_other_reports_on() -> None:
+    reports: list[str] = []
+
+    async def main() -> int:
+        loop = asyncio.get_running_loop()
+        loop.set_exception_handler(lambda _loop, context: reports.append(context["message"]))
+        inner = await raise_callback_errors(_report_without_exception())
+        loop.call_exception_handler({"message": "after the guard"})
+        return inner
+
+    assert run(main) == 42
+    assert reports == ["a report that carries no exception", "after the guard"]
+
+
+async def _report_without_exception() -> int:
+    loop = asyncio.get_running_loop()
+    loop.call_exception_handler({"message": "a report that carries no exception"})
+    await asyncio.sleep(1.0)
+    return 42

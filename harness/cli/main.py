@@ -16,6 +16,7 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
+from ionotrail.harness.runners.vtime import CallbackError
 from ionotrail.terminal.errors import CrcMismatch, DecodeError
 from ionotrail.terminal.wire import Frame
 from ionotrail.terminal.wire.codec import decode
@@ -361,8 +362,9 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     except PathError as exc:
         raise UserError(str(exc)) from None
     except BaseException:
-        if report_file:
+        if report_file:  # a failed run leaves no report behind
             report_file.close()
+            Path(args.json).unlink(missing_ok=True)
         raise
     finally:
         if deliveries_file:
@@ -579,6 +581,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except UserError as exc:
         print(f"ionotrail {args.command}: error: {exc}", file=sys.stderr)
         return 2
+    except CallbackError as exc:  # the run broke; its figures would mean nothing
+        print(f"ionotrail {args.command}: error: the run failed: {exc}", file=sys.stderr)
+        return 1
     except BrokenPipeError:  # output piped into head and the like
         sys.stdout = open(os.devnull, "w")  # silence the flush at exit
         return 0

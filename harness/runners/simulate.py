@@ -25,7 +25,7 @@ from ionotrail.harness.channel.scenario import Scenario
 from ionotrail.harness.demo.gauge import Backlog, DemoGauge
 from ionotrail.harness.emulators.air import Air
 from ionotrail.harness.emulators.master import DeliveryRecord, MasterStation
-from ionotrail.harness.runners.vtime import VirtualTimeLoop
+from ionotrail.harness.runners.vtime import VirtualTimeLoop, raise_callback_errors
 from ionotrail.terminal.delivery.sender import MessageAcknowledged, MessageRefused, Sender
 from ionotrail.terminal.errors import Reason
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
@@ -197,10 +197,10 @@ def simulate(
         return air, master
 
     if realtime:
-        air, master = asyncio.run(main())
+        air, master = asyncio.run(raise_callback_errors(main()))
     else:
         with asyncio.Runner(loop_factory=VirtualTimeLoop) as runner:
-            air, master = runner.run(main())
+            air, master = runner.run(raise_callback_errors(main()))
     wall = time.perf_counter() - wall_start
     if timeline is not None and trails.trails is not None:
         tr = trails.trails

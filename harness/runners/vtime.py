@@ -16,6 +16,11 @@ give:
 Real I/O and virtual time do not mix (a socket does not wait for a jumped
 clock): only the loop's own wake-up pipe is polled, never waited on.
 Use with ``asyncio.Runner(loop_factory=VirtualTimeLoop)``.
+
+asyncio only logs an exception raised in a callback and carries on, so a
+simulation whose callback failed would run to the end and report figures that
+mean nothing.  :func:`raise_callback_errors` (on this loop or any other) ends
+the run instead, with :class:`CallbackError`.
 """
 
 from __future__ import annotations
@@ -24,15 +29,62 @@ import asyncio
 import heapq
 import itertools
 import selectors
-from collections.abc import Callable
+from collections.abc import Awaitable, Callable
 from contextvars import Context
-from typing import Any
+from typing import Any, TypeVar
 
 POLL_EVERY = 16
+T = TypeVar("T")
 
 
 class VirtualTimeDeadlock(RuntimeError):
     """Nothing is scheduled and nothing can arrive: virtual time would stop forever."""
+
+
+class CallbackError(RuntimeError):
+    """An exception escaped a callback of the event loop (its ``__cause__``);
+    the run it belonged to was ended.  The message is one line."""
+
+
+async def raise_callback_errors(awaitable: Awaitable[T]) -> T:
+    """Await ``awaitable`` on the running loop; if any callback of the loop
+    raises meanwhile, cancel it and raise :class:`CallbackError` instead.
+
+    The first such exception ends the run; any raised while it winds down are
+    consequences and are dropped.  Reports that carry no exception go to the
+    loop's previous handler, which is restored on the way out.
+    """
+    loop = asyncio.get_running_loop()
+    failed: asyncio.Future[None] = loop.create_future()
+    previous = loop.get_exception_handler()
+
+    def handler(loop: asyncio.AbstractEventLoop, context: dict[str, Any]) -> None:
+        error = context.get("exception")
+        if error is None:
+            if previous is not None:
+                previous(loop, context)
+            else:
+                loop.default_exception_handler(context)
+        elif not failed.done():
+            where = str(context.get("message") or "a callback failed").splitlines()[0]
+            failure = CallbackError(f"{where}: {type(error).__name__}: {error}".replace("\n", " "))
+            failure.__cause__ = error
+            failed.set_exception(failure)
+
+    loop.set_exception_handler(handler)
+    task = asyncio.ensure_future(awaitable)
+    try:
+        await asyncio.wait((task, failed), return_when=asyncio.FIRST_COMPLETED)
+    finally:
+        if not task.done():
+            task.cancel()
+            await asyncio.wait((task,))
+        loop.set_exception_handler(previous)
+    if failed.done():
+        if not task.cancelled():
+            task.exception()  # retrieved: a consequence of the failure, not news
+        failed.result()
+    return task.result()
 
 
 class _OrderedTimer(asyncio.TimerHandle):
