@@ -20,23 +20,28 @@ def run(*args: str) -> subprocess.CompletedProcess[str]:
 def test_decode_demo_prints_fields() -> None:
     result = run("decode", "--demo")
     assert result.returncode == 0, result.stderr
-    assert "fragment frame, 50 bytes, CRC-16 ok" in result.stdout
+    assert "demo:20  fragment frame, 58 bytes, CRC-16 ok" in result.stdout  # 48 payload bytes and the 10 of docs/wire.md
     assert "terminal    0x0a31 (2609)" in result.stdout
-    assert '"HC1 2026-11-30T06:15Z' in result.stdout
+    assert "command   command_id=0, opcode=1, arguments=00000384" in result.stdout
+    assert "payload     0100016b972ac2012b04b004" in result.stdout, "a binary demo report, shown in hexadecimal only"
 
 
-def test_demo_fragments_reassemble_to_a_sealed_message() -> None:
+def test_demo_fragments_reassemble_to_sealed_messages() -> None:
     frames = [decode(bytes.fromhex(line)) for line in _demo_capture().splitlines() if line and not line.startswith("#")]
-    pieces = sorted((f for f in frames if isinstance(f, Fragment)), key=lambda f: f.offset)
-    assert pieces[-1].final and all(a.end == b.offset for a, b in itertools.pairwise(pieces))
-    assert unseal_message(b"".join(p.payload for p in pieces)).startswith(b"HC1 ")
+    for message_id in {f.message_id for f in frames if isinstance(f, Fragment)}:
+        pieces = sorted((f for f in frames if isinstance(f, Fragment) and f.message_id == message_id), key=lambda f: f.offset)
+        assert pieces[-1].final and all(a.end == b.offset for a, b in itertools.pairwise(pieces))
+        assert unseal_message(b"".join(p.payload for p in pieces))[0] == 1  # a routine demo report (gauge.ReportKind)
 
 
 def test_decode_json_one_object_per_frame() -> None:
     result = run("decode", "--demo", "--json")
     records = [json.loads(line) for line in result.stdout.splitlines()]
-    assert [r["type"] for r in records] == ["probe", "fragment", "fragment", "probe", "reply", "ack"]
-    assert records[1]["fields"]["terminal"] == 0x0A31 and records[1]["crc"] == "ok"
+    assert [r["type"] for r in records] == [
+        "probe", "reply", "probe", "fragment", "fragment", "probe", "fragment", "probe", "fragment", "probe", "probe",
+    ]  # fmt: skip
+    assert records[3]["fields"]["terminal"] == 0x0A31 and records[3]["crc"] == "ok"
+    assert records[0]["fields"]["command"] == {"command_id": 0, "opcode": 1, "arguments": "00000384"}
 
 
 def test_bad_input_is_one_line_and_non_zero() -> None:
