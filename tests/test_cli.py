@@ -8,7 +8,8 @@ import subprocess
 import sys
 
 import pytest
-from ionotrail.harness.cli.main import _demo_capture, main
+from ionotrail.harness.cli.decode import demo_capture
+from ionotrail.harness.cli.main import main
 from ionotrail.terminal.wire import Fragment, decode, encode, unseal_message
 from ionotrail.terminal.wire.serial_framing import encode_record
 
@@ -27,7 +28,7 @@ def test_decode_demo_prints_fields() -> None:
 
 
 def test_demo_fragments_reassemble_to_sealed_messages() -> None:
-    frames = [decode(bytes.fromhex(line)) for line in _demo_capture().splitlines() if line and not line.startswith("#")]
+    frames = [decode(bytes.fromhex(line)) for line in demo_capture().splitlines() if line and not line.startswith("#")]
     for message_id in {f.message_id for f in frames if isinstance(f, Fragment)}:
         pieces = sorted((f for f in frames if isinstance(f, Fragment) and f.message_id == message_id), key=lambda f: f.offset)
         assert pieces[-1].final and all(a.end == b.offset for a, b in itertools.pairwise(pieces))
@@ -158,3 +159,4 @@ def test_simulate_and_bench_refuse_unusable_options_at_once(tmp_path: object) ->
         assert result.returncode == 2, (args, result.stderr)
         assert expected in result.stderr and "Traceback" not in result.stderr, (args, result.stderr)
     assert not (out / "r.json").exists(), "a refused run leaves no report behind"
+

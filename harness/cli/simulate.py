@@ -1,0 +1,156 @@
+"""``ionotrail simulate``: the main job, one run of a link, its summary and files."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+from typing import IO, Any
+
+from ionotrail.harness.cli.common import SAFETY, UserError, add_scenario_options, load_scenario
+
+
+def add_parser(commands: Any) -> None:
+    p = commands.add_parser(
+        "simulate",
+        help="run a terminal and a master over the simulated channel (the main job)",
+        description=(
+            "Simulate the demo link (or --scenario FILE) in virtual time: the reference terminal\n"
+            "reports a sensor reading every 15 minutes (40-120 bytes) and the odd alarm, and\n"
+            "talks through the meteor-burst channel to an emulated master that probes,\n"
+            "acknowledges and reassembles.  Prints what was offered, delivered, pending and\n"
+            "abandoned, the latency distribution, and how much of the channel's capacity the\n"
+            "traffic used.  The same seed replays the same run exactly.\n"
+            "Fragment policies: adaptive (default), fixed-N (N payload bytes), stop-and-wait."
+        ),
+        epilog=SAFETY,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    add_scenario_options(p)
+    p.add_argument("--policy", default="adaptive", metavar="NAME", help="fragment policy: adaptive, fixed-N (8-256) or stop-and-wait")
+    p.add_argument("--json", metavar="FILE", help="write the report as JSON to FILE")
+    p.add_argument("--plot", metavar="FILE.png", help="draw the timeline (bursts, deliveries, queue) to a PNG file")
+    p.add_argument("--deliveries", metavar="FILE.jsonl", help="write every delivered message to FILE, one JSON object a line")
+    p.set_defaults(handler=run)
+
+
+def clock(seconds: float) -> str:
+    whole = int(seconds)
+    days, rest = divmod(whole, 86400)
+    text = f"{rest // 3600:02d}:{rest % 3600 // 60:02d}:{rest % 60:02d}"
+    return f"{days}d {text}" if days else text
+
+
+def _progress() -> Any:
+    if not sys.stderr.isatty():
+        return None
+
+    def show(done: float, total: float, delivered: int) -> None:
+        fraction = min(1.0, done / total) if total else 1.0
+        bar = "#" * int(30 * fraction)
+        end = "\n" if fraction >= 1 else ""
+        print(f"\rsimulating [{bar:<30}] {clock(done)} of {clock(total)}, {delivered} delivered", end=end, file=sys.stderr, flush=True)
+
+    return show
+
+
+def _open_output(name: str) -> IO[str]:
+    try:
+        return open(name, "w", encoding="utf-8")  # closed by run(); opened early so a bad path fails at once
+    except OSError as exc:
+        raise UserError(f"cannot write {name}: {exc.strerror}") from None
+
+
+def run(args: argparse.Namespace) -> int:
+    from ionotrail.harness.channel.geometry import PathError, path_geometry
+    from ionotrail.harness.emulators.master import json_lines_sink
+    from ionotrail.harness.runners.simulate import simulate
+    from ionotrail.terminal.errors import UsageError
+    from ionotrail.terminal.link.policy import by_name
+
+    scenario = load_scenario(args)
+    try:
+        by_name(args.policy, scenario.bit_rate)
+    except UsageError as exc:
+        raise UserError(str(exc)) from None
+    outputs = [name for name in (args.json, args.plot, args.deliveries) if name]
+    for name in outputs:
+        if Path(name).is_dir():
+            raise UserError(f"{name} is a directory; give a file name")
+        if not Path(name).resolve().parent.is_dir():
+            raise UserError(f"cannot write {name}: no such directory {Path(name).resolve().parent}")
+    if len({Path(name).resolve() for name in outputs}) < len(outputs):
+        raise UserError("--json, --plot and --deliveries must name different files")
+    if args.plot and Path(args.plot).suffix.lower() != ".png":
+        raise UserError(f"--plot {args.plot}: the timeline is drawn as PNG; give a name ending in .png")
+    try:  # a path the model cannot use fails now, before any output file is touched
+        path_geometry(scenario.terminal.lat_deg, scenario.terminal.lon_deg, scenario.master.lat_deg, scenario.master.lon_deg, scenario.reflection_height_km)
+    except PathError as exc:
+        raise UserError(str(exc)) from None
+    # Outputs are opened before the run, so a bad path fails at once, not after it.
+    report_file = _open_output(args.json) if args.json else None
+    deliveries_file = _open_output(args.deliveries) if args.deliveries else None
+    try:
+        result = simulate(
+            scenario,
+            args.policy,
+            record_timeline=bool(args.plot),
+            on_delivery=json_lines_sink(deliveries_file) if deliveries_file else None,
+            progress=_progress(),
+        )
+    except PathError as exc:
+        raise UserError(str(exc)) from None
+    except BaseException:
+        if report_file:  # a failed run leaves no report behind
+            report_file.close()
+            Path(args.json).unlink(missing_ok=True)
+        raise
+    finally:
+        if deliveries_file:
+            deliveries_file.close()
+    report = result.report
+    if report_file:
+        with report_file:
+            json.dump(report, report_file, indent=2)
+            report_file.write("\n")
+    if args.plot:
+        from ionotrail.harness.reports.timeline import plot_timeline
+
+        assert result.timeline is not None
+        plot_timeline(result.timeline, result.deliveries, report, Path(args.plot))
+    print(simulation_table(report))
+    for label, name in (("report", args.json), ("timeline", args.plot), ("deliveries", args.deliveries)):
+        if name:
+            print(f"wrote {label} to {name}", file=sys.stderr)
+    return 0
+
+
+def _fmt_s(value: float | None) -> str:
+    return "-" if value is None else f"{value:,.1f} s"
+
+
+def simulation_table(r: dict[str, Any]) -> str:
+    m, lat, bits, fr = r["messages"], r["latency_s"], r["bits"], r["frames"]
+    reasons = ", ".join(f"{k} {v}" for k, v in m["abandoned_reasons"].items())
+    utilisation = "-" if r["utilisation"] is None else f"{100 * r['utilisation']:.2f} %"
+    lines = [
+        f"{r['scenario']}  (seed {r['seed']}, policy {r['policy']})",
+        f"simulated {clock(r['sim_seconds'])} in {r['wall_seconds']:.1f} s of wall time ({r['speedup']:,.0f}x real time)",
+        "",
+        (
+            f"  messages   offered {m['offered']:>7,}   delivered {m['delivered']:>7,}   pending {m['pending']:>5,}   "
+            f"abandoned {m['abandoned']:>5,}{f' ({reasons})' if reasons else ''}   delivered twice {m['duplicates_delivered']}"
+        ),
+        f"  latency    median {_fmt_s(lat['p50'])}   95 % {_fmt_s(lat['p95'])}   99 % {_fmt_s(lat['p99'])}   worst {_fmt_s(lat['max'])}",
+        (
+            f"  channel    {r['trails']['total']:,} trails opened the path, {r['trails']['used']:,} carried data;"
+            f" capacity bound {bits['capacity_bound'] / 1e6:,.2f} Mbit"
+        ),
+        f"  payload    {bits['payload_delivered'] / 1e3:,.1f} kbit delivered = {utilisation} of the capacity bound",
+        (
+            f"  air        {fr['sent']:,} frames sent, {fr['received']:,} received intact, {fr['crc_failed']:,} failed their CRC;"
+            f" {r['probes']['heard']:,} probes heard in {r['bursts']:,} bursts"
+        ),
+    ]
+    return "\n".join(lines)
