@@ -160,3 +160,32 @@ def test_simulate_and_bench_refuse_unusable_options_at_once(tmp_path: object) ->
         assert expected in result.stderr and "Traceback" not in result.stderr, (args, result.stderr)
     assert not (out / "r.json").exists(), "a refused run leaves no report behind"
 
+
+@pytest.mark.parametrize("command", ["simulate", "channel"])
+def test_period_and_seed_errors_name_their_option(command: str) -> None:
+    for args, expected in (
+        (["--days", "-1"], "--days -1: "),
+        (["--days", "abc"], "argument --days: invalid float value: 'abc'"),
+        (["--days", "400"], "--days 400: "),
+        (["--hours", "0"], "--hours 0: "),
+        (["--hours", "nan"], "--hours nan: "),
+        (["--seed", "x"], "argument --seed: invalid int value: 'x'"),
+        (["--seed", "-1"], "--seed -1: "),
+        (["--days", "2", "--set", "scenario.start=2106-02-06T00:00:00Z"], "--set scenario.start=2106-02-06T00:00:00Z and --days 2: "),
+    ):
+        result = run(command, *args)
+        assert result.returncode == 2, (args, result.stderr)
+        last = result.stderr.strip().splitlines()[-1]
+        assert expected in last and "--set scenario.duration_hours" not in last and "--set scenario.seed" not in last, (args, last)
+        assert "Traceback" not in result.stderr
+
+
+def test_simulate_warns_of_a_short_path_as_channel_does() -> None:
+    # SHORT_PATH_KM (harness/channel/geometry.py) is 400 km; this master is about 250 km from the terminal.
+    short = ["--hours", "0.1", "--set", "master.lat_deg=60.0", "--set", "master.lon_deg=18.0"]
+    warnings = []
+    for command in ("channel", "simulate"):
+        result = run(command, *short)
+        assert result.returncode == 0, result.stderr
+        warnings.append([line for line in result.stderr.splitlines() if line.startswith("warning:")])
+    assert warnings[0] == warnings[1] and len(warnings[0]) == 1 and "km path is short for meteor burst" in warnings[0][0]

@@ -239,8 +239,13 @@ def parse_override(text: str) -> tuple[str, str, Any]:
     return section, key, value
 
 
-def load(path: str | Path | None = None, overrides: Iterable[str] = ()) -> Scenario:
-    """The scenario in ``path`` (the built-in demo when None), with overrides."""
+def load(path: str | Path | None = None, overrides: Iterable[str] = (), options: Iterable[tuple[str, str, Any]] = ()) -> Scenario:
+    """The scenario in ``path`` (the built-in demo when None), with overrides.
+
+    ``options`` are command-line shorthands for a key, as (the option as the
+    user gave it, dotted key, value), e.g. ``("--days 2", "scenario.duration_hours", 48.0)``:
+    applied after the overrides, with the same checks, and an error names the option.
+    """
     if path is None:
         text, origin = resources.files("ionotrail.harness.demo").joinpath("link.toml").read_text(encoding="utf-8"), "built-in demo"
     else:
@@ -262,6 +267,11 @@ def load(path: str | Path | None = None, overrides: Iterable[str] = ()) -> Scena
         _check(section, key, value, f"--set {text_override}")
         merged[section][key] = value
         given[f"{section}.{key}"] = f"--set {text_override}"
+    for option, dotted, value in options:
+        section, key = dotted.split(".", 1)
+        _check(section, key, value, option)
+        merged[section][key] = value
+        given[dotted] = option
     return _build(merged, origin, given)
 
 

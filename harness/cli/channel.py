@@ -8,7 +8,14 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from ionotrail.harness.cli.common import SAFETY, UserError, add_scenario_options, load_scenario, progress_bar
+from ionotrail.harness.cli.common import (
+    SAFETY,
+    UserError,
+    add_scenario_options,
+    load_scenario,
+    progress_bar,
+    warn_if_short,
+)
 
 
 def add_parser(commands: Any) -> None:
@@ -35,7 +42,7 @@ def add_parser(commands: Any) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from ionotrail.harness.channel import forecast as fc
-    from ionotrail.harness.channel.geometry import SHORT_PATH_KM, PathError
+    from ionotrail.harness.channel.geometry import PathError
     from ionotrail.harness.channel.model import TrailSet
 
     scenario = load_scenario(args)
@@ -43,12 +50,7 @@ def run(args: argparse.Namespace) -> int:
         trails = TrailSet(scenario, keep="all" if args.trails else "usable", progress=progress_bar("generating trails"))
     except PathError as exc:
         raise UserError(str(exc)) from None
-    if trails.geometry.distance_km < SHORT_PATH_KM:
-        print(
-            f"warning: a {trails.geometry.distance_km:.0f} km path is short for meteor burst; "
-            "expect few usable trails with ordinary antennas",
-            file=sys.stderr,
-        )
+    warn_if_short(trails.geometry.distance_km)
     report = fc.forecast(trails)
     if args.by_month:
         report["monthly"] = fc.monthly(trails)

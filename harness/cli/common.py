@@ -40,17 +40,28 @@ def load_scenario(args: argparse.Namespace) -> Any:
     """The scenario the options name, or :class:`UserError`."""
     from ionotrail.harness.channel import scenario
 
-    overrides = list(args.set or [])
+    options: list[tuple[str, str, Any]] = []  # shorthands, so that an error names the option given
     if getattr(args, "days", None) is not None:
-        overrides.append(f"scenario.duration_hours={args.days * 24}")
+        options.append((f"--days {args.days:g}", "scenario.duration_hours", args.days * 24))
     if getattr(args, "hours", None) is not None:
-        overrides.append(f"scenario.duration_hours={args.hours}")
+        options.append((f"--hours {args.hours:g}", "scenario.duration_hours", args.hours))
     if getattr(args, "seed", None) is not None:
-        overrides.append(f"scenario.seed={args.seed}")
+        options.append((f"--seed {args.seed}", "scenario.seed", args.seed))
     try:
-        return scenario.load(args.scenario, overrides)
+        return scenario.load(args.scenario, args.set or [], options)
     except scenario.ScenarioError as exc:
         raise UserError(str(exc)) from None
+
+
+def warn_if_short(distance_km: float) -> None:
+    """The warning ``channel`` and ``simulate`` print for a path too short for meteor burst."""
+    from ionotrail.harness.channel.geometry import SHORT_PATH_KM
+
+    if distance_km < SHORT_PATH_KM:
+        print(
+            f"warning: a {distance_km:.0f} km path is short for meteor burst; expect few usable trails with ordinary antennas",
+            file=sys.stderr,
+        )
 
 
 def progress_bar(label: str) -> Any:

@@ -8,7 +8,7 @@ import sys
 from pathlib import Path
 from typing import IO, Any
 
-from ionotrail.harness.cli.common import SAFETY, UserError, add_scenario_options, load_scenario
+from ionotrail.harness.cli.common import SAFETY, UserError, add_scenario_options, load_scenario, warn_if_short
 
 
 def add_parser(commands: Any) -> None:
@@ -85,9 +85,12 @@ def run(args: argparse.Namespace) -> int:
     if args.plot and Path(args.plot).suffix.lower() != ".png":
         raise UserError(f"--plot {args.plot}: the timeline is drawn as PNG; give a name ending in .png")
     try:  # a path the model cannot use fails now, before any output file is touched
-        path_geometry(scenario.terminal.lat_deg, scenario.terminal.lon_deg, scenario.master.lat_deg, scenario.master.lon_deg, scenario.reflection_height_km)
+        geometry = path_geometry(
+            scenario.terminal.lat_deg, scenario.terminal.lon_deg, scenario.master.lat_deg, scenario.master.lon_deg, scenario.reflection_height_km
+        )
     except PathError as exc:
         raise UserError(str(exc)) from None
+    warn_if_short(geometry.distance_km)
     # Outputs are opened before the run, so a bad path fails at once, not after it.
     report_file = _open_output(args.json) if args.json else None
     deliveries_file = _open_output(args.deliveries) if args.deliveries else None
