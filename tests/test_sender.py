@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 from ionotrail.terminal.delivery.sender import FRAGMENT_OVERHEAD, Priority, Sender
 from ionotrail.terminal.limits import Limits
-from ionotrail.terminal.wire import AckBlock
+from ionotrail.terminal.wire import AckBlock, Fragment
 
 TERMINAL, MASTER = 0x0A31, 7
 
@@ -63,3 +66,58 @@ def test_unconfirmed_pieces_are_bounded() -> None:
     (message,) = sender._queue.values()
     assert len(message.in_flight) == 4
     assert sender.counters.presumed_lost_bytes == 6 * 16
+
+
+def test_the_bound_settles_only_its_excess_when_pieces_share_an_instant() -> None:
+    # With no airtime given (seconds_per_byte 0) every piece ends at the same
+    # instant; the bound must still count only the oldest piece as lost, not
+    # every piece of that instant (common practice, no source: a bound drops
+    # exactly what exceeds it).
+    sender = Sender(TERMINAL, MASTER, limits=Limits(max_unconfirmed_pieces=4))
+    sender.queue(b"z" * 400, 0.0)
+    offsets = []
+    for _ in range(5):
+        fragment = sender.next_fragment(16, 0.0)
+        assert fragment is not None
+        offsets.append(fragment.offset)
+    assert offsets == [0, 16, 32, 48, 64]
+    (message,) = sender._queue.values()
+    assert [(start, end) for _, start, end in message.in_flight] == [(16, 32), (32, 48), (48, 64), (64, 80)]
+    assert sender.counters.presumed_lost_bytes == 16
+
+
+@pytest.mark.property
+@given(
+    sizes=st.lists(st.integers(1, 600), min_size=1, max_size=5),
+    budgets=st.lists(st.integers(0, 700), min_size=1, max_size=6),
+    acked=st.lists(st.tuples(st.integers(0, 4), st.integers(0, 620), st.integers(0, 620)), max_size=6),
+)
+def test_fill_is_next_fragment_in_a_loop(
+    sizes: list[int], budgets: list[int], acked: list[tuple[int, int, int]]
+) -> None:
+    """fill has no selection of its own: the same fragments come from calling
+    next_fragment with the rest of the budget until it has nothing, presuming
+    earlier pieces lost, and calling it again."""
+    filled, looped = Sender(TERMINAL, MASTER), Sender(TERMINAL, MASTER)
+    ids = [(filled.queue(bytes(n), 0.0), looped.queue(bytes(n), 0.0))[0] for n in sizes]
+    for k, budget in enumerate(budgets):
+        now = float(k)
+        by_fill = filled.fill(budget, now)
+        by_loop: list[Fragment] = []
+        presumed = False
+        while budget > FRAGMENT_OVERHEAD:
+            fragment = looped.next_fragment(budget - FRAGMENT_OVERHEAD, now)
+            if fragment is None:
+                if presumed:
+                    break
+                looped.presume_lost(now)
+                presumed = True
+                continue
+            by_loop.append(fragment)
+            budget -= len(fragment.payload) + FRAGMENT_OVERHEAD
+        assert by_fill == by_loop
+        for which, start, end in acked[k:k + 1]:
+            block = AckBlock(TERMINAL, ids[which % len(ids)], ((min(start, end), max(start, end) + 1),))
+            assert filled.on_ack(block, now + 0.5, issued=now + 0.5) == looped.on_ack(block, now + 0.5, issued=now + 0.5)
+    assert filled.outstanding() == looped.outstanding()
+    assert filled.counters == looped.counters
