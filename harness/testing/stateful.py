@@ -31,6 +31,8 @@ suite can fail).  ``tests/test_exactly_once.py`` runs it.
 
 from __future__ import annotations
 
+import dataclasses
+
 from hypothesis import event
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, precondition, rule
@@ -300,9 +302,9 @@ class ExactlyOnceMachine(RuleBasedStateMachine):
                 self._acknowledge(frame, issued)
             self.now += 5.0
         counters = self.receiver.counters
-        for name in counters.__slots__:  # type: ignore[attr-defined]
-            if getattr(counters, name):
-                event(f"receiver {name}")
+        for field in dataclasses.fields(counters):
+            if getattr(counters, field.name):
+                event(f"receiver {field.name}")
         if self.sender.counters.solicitations:
             event("sender solicited a verdict")
         if self.sender.counters.presumed_lost_bytes:
