@@ -6,7 +6,7 @@ trail openings: the sender is asked for fragments exactly as the burst link
 (``ionotrail.terminal.link.terminal``) asks, fragments cross the uplink,
 every fragment that decodes is received, and the newest acknowledgement for
 each message crosses the downlink back.  It is the harness the property
-suite, the corner-case tests and conformance runs share.
+suite and the corner-case tests share.
 
 What the link calls, and so what :func:`burst` and :meth:`LinkPair.open_trail`
 call, in this order:

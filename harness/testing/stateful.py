@@ -25,8 +25,8 @@ exactly once.
 
 The endpoints come from :meth:`ExactlyOnceMachine.make_sender` and
 :meth:`ExactlyOnceMachine.make_receiver`; :func:`machine_for` builds the
-machine around other ones (a conformance run's, or a mutant that proves the
-suite can fail).  ``tests/test_exactly_once.py`` runs it.
+machine around other ones (another implementation's, or a mutant that proves
+the suite can fail).  ``tests/test_exactly_once.py`` runs it.
 """
 
 from __future__ import annotations

@@ -1,5 +1,5 @@
 """Hypothesis strategies for frames and hostile bytes, shared by the test suite
-and by conformance runs against other implementations."""
+and by anyone's property tests of their own implementation."""
 
 from __future__ import annotations
 
