@@ -57,8 +57,9 @@ def _check(data: bytes) -> None:
     except DecodeError as exc:
         assert exc.message and isinstance(exc.reason, Reason)
         return
-    # Accepted input: it re-encodes to itself and holds no more than it was given.
+    # Accepted input: it re-encodes to itself, knows its length and holds no more than it was given.
     assert encode(frame) == data
+    assert frame.wire_length == len(data)
     assert _payload_bytes(frame) <= min(len(data), MAX_FRAME_BYTES)
 
 

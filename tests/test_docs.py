@@ -7,6 +7,8 @@ from pathlib import Path
 
 import pytest
 from ionotrail.harness.reports import wiredoc
+from ionotrail.terminal import limits
+from ionotrail.terminal.wire import IDLE_PROBE_BYTES, AckBlock
 
 DOCS = Path(__file__).resolve().parent.parent / "docs"
 
@@ -37,3 +39,26 @@ def test_every_field_and_limit_is_documented() -> None:
             assert not row.endswith("|  |"), f"{name}: undocumented field in {row}"
     for row in wiredoc.limits_table().splitlines()[2:]:
         assert not row.endswith("|  |"), f"limit without a reason: {row}"
+
+
+def _prose(name: str) -> str:
+    """A document with its line breaks folded, as a reader sees the sentences."""
+    return " ".join((DOCS / name).read_text(encoding="utf-8").split())
+
+
+def test_sizes_stated_in_prose_match_the_declarations() -> None:
+    # Hand-written sentences restate a few sizes; each is checked against its one definition.
+    wire = _prose("wire.md")
+    overhead = limits.FRAGMENT_OVERHEAD_BYTES
+    stated = [
+        (wire, f"fragment header: {limits.FRAGMENT_HEADER_BYTES} bytes, plus {limits.FRAME_CRC_BYTES} of CRC"),
+        (wire, f"= {overhead} bytes of overhead"),
+        (wire, f"16/{16 + overhead} = {round(100 * 16 / (16 + overhead))} %"),
+        (wire, f"an idle probe is {IDLE_PROBE_BYTES} bytes"),
+        (wire, f"longer than {limits.MAX_FRAME_BYTES} bytes or shorter than {limits.MIN_FRAME_BYTES};"),
+        (wire, f"frames of at most {limits.MAX_FRAME_BYTES} bytes"),
+        (wire, f"{limits.MAX_ACK_RANGES} ranges ({AckBlock(1, 1, tuple((2 * i, 2 * i + 1) for i in range(limits.MAX_ACK_RANGES))).wire_length}-byte block)"),
+        (_prose("delivery.md"), f"budget of {overhead} bytes or less (a fragment's overhead)"),
+    ]
+    for text, sentence in stated:
+        assert sentence in text, f"the documents no longer say: {sentence!r}"

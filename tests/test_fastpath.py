@@ -1,4 +1,5 @@
-"""The hand-written codecs are byte-identical to the construct declarations.
+"""The hand-written codecs are byte-identical to the construct declarations,
+and a changed declaration cannot leave them stale.
 
 Differential, for each fast-path frame type (fragment, probe, ack): for valid
 frames both encoders give the same bytes and both decoders the same frame;
@@ -8,19 +9,23 @@ refuse it with the same error class and reason code (message wording may differ)
 
 from __future__ import annotations
 
+import importlib.util
 from collections.abc import Callable
+from types import ModuleType
 from typing import Any
 
 import pytest
+from construct import BitsInteger, BitStruct, Construct, Flag, GreedyBytes, If, Int16ub, Int32ub, Struct, this
 from hypothesis import given
 from hypothesis import strategies as st
 from ionotrail.harness.testing import strategies
 from ionotrail.harness.testing.fuzz import hostile_inputs
 from ionotrail.terminal.errors import DecodeError
 from ionotrail.terminal.limits import MAX_FRAME_BYTES
-from ionotrail.terminal.wire import Ack, AckBlock, CommandBlock, Fragment, Probe, fastpath
+from ionotrail.terminal.wire import Ack, AckBlock, CommandBlock, Fragment, Probe, fastpath, formats, values
 from ionotrail.terminal.wire.codec import decode_with_construct, encode_with_construct
 from ionotrail.terminal.wire.crc import crc16
+from ionotrail.terminal.wire.layout import StaleLayout
 
 PATHS: dict[str, tuple[Any, Callable[[Any], bytes], Callable[[bytes], Any], int]] = {
     "fragment": (strategies.fragments(), fastpath.encode_fragment, fastpath.decode_fragment, fastpath.HEAD_BYTE),
@@ -93,3 +98,101 @@ def test_decoders_agree_on_fuzzed_frames(name: str) -> None:
             checked += 1
             accepted += fast[0] == "frame"
     assert checked > 1000 and accepted > 10
+
+
+# --- a changed declaration cannot leave the fast path stale ----------------------------
+#
+# The fast path is loaded afresh (a second copy of the module) with one
+# declaration replaced: where its layout can follow the change it does, byte
+# for byte; where the code assumes more than the declaration says, the load
+# fails with StaleLayout.
+
+
+def _load_fastpath_with(monkeypatch: pytest.MonkeyPatch, **declarations: Any) -> ModuleType:
+    for name, declaration in declarations.items():
+        monkeypatch.setattr(formats, name, declaration)
+    spec = importlib.util.spec_from_file_location("fastpath_under_test", fastpath.__file__)
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def _fragment_declaration(*position: Construct, message_id: Construct = Int16ub, swap: bool = False) -> Struct:
+    addresses = ["master" / formats.MASTER, "terminal" / formats.TERMINAL]
+    return formats._framed(
+        formats.HEAD,
+        *(addresses if swap else addresses[::-1]),
+        "message_id" / message_id,
+        "position" / BitStruct(*position),
+        "payload" / GreedyBytes,
+    )
+
+
+FINAL, URGENT, DOWNLINK = "final" / Flag, "urgent" / Flag, "downlink" / Flag
+OFFSET = "offset" / BitsInteger(13)
+
+
+def test_the_unchanged_declarations_load() -> None:
+    copy = importlib.util.spec_from_file_location("fastpath_copy", fastpath.__file__)
+    assert copy is not None and copy.loader is not None
+    module = importlib.util.module_from_spec(copy)
+    copy.loader.exec_module(module)
+    frame = Fragment(0x0A31, 7, 9, 40, b"AB", final=True)
+    assert module.encode_fragment(frame) == fastpath.encode_fragment(frame)
+
+
+@pytest.mark.property
+@given(frame=strategies.fragments())
+def test_moved_flag_bits_are_followed(frame: Fragment) -> None:
+    # Swap the final and urgent bits in the declaration: the fast path reads
+    # its masks from it, so it stays byte-identical to the changed declaration.
+    changed = _fragment_declaration(URGENT, FINAL, DOWNLINK, OFFSET)
+    with pytest.MonkeyPatch.context() as monkeypatch:
+        fresh = _load_fastpath_with(monkeypatch, FRAGMENT=changed)
+    value = values.fragment_fields(frame) | {"head": {"version": 1, "type": 2}}
+    wire = changed.build({"fields": {"value": value}})
+    assert fresh.encode_fragment(frame) == wire
+    assert fresh.decode_fragment(wire) == frame
+    if frame.final != frame.urgent:  # and the old layout would differ
+        assert fastpath.encode_fragment(frame) != wire
+
+
+@pytest.mark.parametrize(
+    ("name", "declaration", "complaint"),
+    [
+        ("FRAGMENT", _fragment_declaration(FINAL, URGENT, DOWNLINK, OFFSET, message_id=Int32ub), "header and CRC"),
+        ("FRAGMENT", _fragment_declaration(FINAL, URGENT, DOWNLINK, OFFSET, swap=True), "fields"),
+        ("FRAGMENT", _fragment_declaration(OFFSET, FINAL, URGENT, DOWNLINK), "low bits"),
+        ("FRAGMENT", _fragment_declaration(FINAL, URGENT, "relay" / Flag, OFFSET), "position"),
+        (
+            "PROBE",
+            formats._framed(
+                formats.HEAD,
+                "master" / formats.MASTER,
+                "sequence" / Int16ub,
+                "flags" / BitStruct("poll" / Flag, "ack" / Flag, "command" / Flag, "relay" / Flag, "r" / BitsInteger(4)),
+                "poll" / If(this.flags.poll, formats.TERMINAL),
+                "ack" / If(this.flags.ack, formats.ACK_BLOCK),
+                "command" / If(this.flags.command, formats.COMMAND_BLOCK),
+            ),
+            "flags",
+        ),
+        (
+            "ACK_BLOCK",
+            Struct(
+                "terminal" / formats.TERMINAL,
+                "message_id" / Int16ub,
+                "status" / BitStruct("count" / BitsInteger(4), "complete" / Flag, "downlink" / Flag, "refused" / Flag, "reserved" / Flag),
+                "ranges" / Struct("start" / Int16ub, "end" / Int16ub)[this.status.count],
+            ),
+            "range count",
+        ),
+    ],
+    ids=["wider-message-id", "addresses-swapped", "offset-in-high-bits", "position-gains-a-flag", "probe-flag-added", "count-in-high-bits"],
+)
+def test_a_change_the_fast_path_cannot_follow_stops_the_import(
+    monkeypatch: pytest.MonkeyPatch, name: str, declaration: Struct, complaint: str
+) -> None:
+    with pytest.raises(StaleLayout, match=complaint):
+        _load_fastpath_with(monkeypatch, **{name: declaration})

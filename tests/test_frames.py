@@ -6,7 +6,13 @@ import pytest
 from hypothesis import given
 from ionotrail.harness.testing import strategies
 from ionotrail.terminal.errors import BadField, BadLength, DecodeError, MessageCrcMismatch, TruncatedFrame, UsageError
-from ionotrail.terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MAX_FRAME_BYTES, MAX_MESSAGE_STREAM
+from ionotrail.terminal.limits import (
+    FRAGMENT_HEADER_BYTES,
+    FRAGMENT_OVERHEAD_BYTES,
+    FRAME_CRC_BYTES,
+    MAX_FRAME_BYTES,
+    MAX_MESSAGE_STREAM,
+)
 from ionotrail.terminal.wire import (
     Ack,
     AckBlock,
@@ -18,6 +24,8 @@ from ionotrail.terminal.wire import (
     ReplyStatus,
     decode,
     encode,
+    formats,
+    values,
 )
 from ionotrail.terminal.wire.codec import decode_with_construct, encode_with_construct, seal_message, unseal_message
 from ionotrail.terminal.wire.crc import crc16
@@ -44,10 +52,42 @@ def test_round_trip_every_frame_type(strategy: object, data: strategies.st.DataO
     assert encode_with_construct(frame) == wire
 
 
+@pytest.mark.property
+@pytest.mark.parametrize(
+    "strategy",
+    [strategies.probes(), strategies.fragments(), strategies.acks, strategies.commands, strategies.replies],
+    ids=["probe", "fragment", "ack", "command", "reply"],
+)
+@given(data=strategies.st.data())
+def test_frames_know_their_wire_length(strategy: object, data: strategies.st.DataObject) -> None:
+    frame = data.draw(strategy)  # type: ignore[arg-type]
+    assert frame.wire_length == len(encode(frame)) == len(encode_with_construct(frame))
+
+
+@pytest.mark.property
+@given(block=strategies.ack_blocks(), command=strategies.command_blocks)
+def test_blocks_know_their_wire_length(block: AckBlock, command: CommandBlock) -> None:
+    # A block's length is what it adds to an ack frame or a command frame.
+    assert len(encode(Ack(7, block))) - len(encode(Ack(7, AckBlock(1, 1)))) == block.wire_length - AckBlock(1, 1).wire_length
+    assert block.wire_length == len(formats.ACK_BLOCK.build(values.ack_fields(Ack(7, block))["ack"]))
+    assert command.wire_length == len(formats.COMMAND_BLOCK.build(values.command_fields(Command(7, 1, command))["command"]))
+
+
+def test_wire_lengths_by_hand() -> None:
+    # From docs/wire.md's tables: fragment 8 + payload + 2; probe 5 + poll 2 +
+    # ack block (5 + 4 per range) + command block (3 + arguments) + 2;
+    # ack 2 + block + 2; command 4 + block + 2; reply 7 + result + 2.
+    assert Fragment(1, 2, 3, 0, b"abc").wire_length == 13
+    assert Probe(7, 1, poll=5, ack=AckBlock(5, 9, ((0, 4), (8, 9))), command=CommandBlock(1, 2, b"xy")).wire_length == 27
+    assert Ack(7, AckBlock(5, 9, complete=True)).wire_length == 9
+    assert Command(7, 5, CommandBlock(1, 2, b"xyz")).wire_length == 12
+    assert Reply(5, 7, 1, ReplyStatus.OK, b"ok").wire_length == 11
+
+
 def test_fragment_overhead_is_ten_bytes() -> None:
     # The design budget: header plus CRC at most 10 bytes (docs/wire.md).
     wire = encode(Fragment(1, 2, 3, 0, b"x"))
-    assert FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES == 10
+    assert FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES == FRAGMENT_OVERHEAD_BYTES == 10
     assert len(wire) == 10 + 1
 
 

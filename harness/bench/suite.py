@@ -12,6 +12,7 @@ import time
 from collections.abc import Callable
 from typing import Any
 
+from ionotrail.terminal.limits import FRAGMENT_OVERHEAD_BYTES
 from ionotrail.terminal.link.policy import POLICY_NAMES
 from ionotrail.terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus
 from ionotrail.terminal.wire.codec import decode, decode_with_construct, encode, encode_with_construct
@@ -191,7 +192,7 @@ def reassembly_benchmark(seconds: float = 1.0, progress: Callable[[str], None] |
             "sender_fragments_per_s": fragments / sender_time,
             "receiver_fragments_per_s": fragments / receiver_time,
             "framing_efficiency": delivered_payload / air,
-            "header_efficiency": size / (size + 10),
+            "header_efficiency": size / (size + FRAGMENT_OVERHEAD_BYTES),
             "messages": sender.counters.acknowledged,
         }
     return {"python": platform.python_version(), "message_bytes": MESSAGE_BYTES, "fragment_sizes": results}
@@ -208,7 +209,7 @@ def format_reassembly(report: dict[str, Any]) -> str:
     lines.append("")
     lines.append(
         f"efficiency = application bytes delivered / fragment bytes on the air, {report['message_bytes']}-byte messages"
-        " (includes each message's 4-byte CRC-32C); per frame = payload / (payload + 10)."
+        f" (includes each message's 4-byte CRC-32C); per frame = payload / (payload + {FRAGMENT_OVERHEAD_BYTES})."
     )
     lines.append(f"one core, python {report['python']}; every fragment is encoded and decoded on the way.")
     return "\n".join(lines)

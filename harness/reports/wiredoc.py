@@ -92,9 +92,15 @@ def frame_types_table() -> str:
     lines = ["| type | value | direction | purpose |", "| --- | --- | --- | --- |"]
     lines += [f"| {k.name} | {int(t)} | {k.direction} | {k.purpose} |" for t, k in FRAME_KINDS.items()]
     width = layout.bit_members(formats.HEAD, "the head")["type"].width
-    free = [value for value in range(1 << width) if value not in set(FrameType)]
-    spans = [list(group) for _, group in itertools.groupby(free, key=lambda v, c=itertools.count(): v - next(c))]
-    named = " and ".join(f"{g[0]}" if len(g) == 1 else f"{g[0]}-{g[-1]}" for g in spans)
+    spans: list[list[int]] = []  # runs of consecutive unassigned values
+    for value in range(1 << width):
+        if value in set(FrameType):
+            continue
+        if spans and spans[-1][-1] == value - 1:
+            spans[-1].append(value)
+        else:
+            spans.append([value])
+    named = " and ".join(f"{run[0]}" if len(run) == 1 else f"{run[0]}-{run[-1]}" for run in spans)
     lines += ["", f"Types {named} are unassigned; a frame using them is refused as `unknown_type`."]
     return "\n".join(lines) + "\n"
 

@@ -167,11 +167,15 @@ def _is_bits(con: cs.Construct) -> bool:
     return isinstance(con, cs.Transformed) and isinstance(con.subcon, cs.Struct)
 
 
-def bits(declaration: cs.Struct, name: str) -> dict[str, Bits]:
+def bits(declaration: cs.Struct, name: str, expected: Iterable[str] | None = None) -> dict[str, Bits]:
     """Members of the bit structure field ``name``, placed in the integer it
     packs into (most significant bit first on the wire, as construct's
-    BitStruct has it)."""
-    return bit_members(member(declaration, name), repr(name))
+    BitStruct has it).  With ``expected``, the members must be exactly those
+    (in any order): the ones the calling code reads."""
+    placed = bit_members(member(declaration, name), repr(name))
+    if expected is not None and set(placed) != set(expected):
+        raise StaleLayout(f"{name}: the declaration has bits {sorted(placed)}, the code reads {sorted(expected)}")
+    return placed
 
 
 def bit_members(con: cs.Construct, what: str) -> dict[str, Bits]:
@@ -204,7 +208,7 @@ flags and CRC (7 bytes), the least a master sends to keep a trail's opening
 known.  The channel's audibility check sizes its probes by this."""
 
 
-def _check_limits() -> None:
+def check_limits() -> None:
     """Sizes stated in ``terminal/limits.py`` (which cannot import the
     declarations it bounds) agree with the declarations."""
     count = bits(formats.ACK_BLOCK, "status")["count"]
@@ -221,4 +225,4 @@ def _check_limits() -> None:
             raise StaleLayout(f"terminal/limits.py states {name} = {value}; the declarations give {declared}")
 
 
-_check_limits()
+check_limits()
