@@ -14,6 +14,12 @@ import dataclasses
 from ionotrail.terminal.errors import UsageError
 
 # --- wire maxima (fixed by the formats in ionotrail.terminal.wire.formats) -------------
+#
+# This module cannot import the declarations it bounds, so the sizes below that
+# a declaration also fixes (CRC trailers, the fragment header and overhead, the
+# smallest frame, the range count, the message CRC) are checked against the declarations when
+# ionotrail.terminal.wire loads (wire/layout.py, check_limits), which refuses
+# to load on a mismatch.
 
 FORMAT_VERSION = 1
 """Format version carried in the high nibble of every frame's first byte."""
@@ -25,7 +31,7 @@ MESSAGE_CRC_BYTES = 4
 """CRC-32C trailer on every reassembled message."""
 
 FRAGMENT_HEADER_BYTES = 8
-"""Data-fragment header; with the CRC the overhead is 10 bytes per fragment."""
+"""Data-fragment header: head, terminal, master, message id, position."""
 
 FRAGMENT_OVERHEAD_BYTES = FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES
 """Frame bytes of a data fragment beyond its payload (10): header and CRC."""

@@ -59,6 +59,9 @@ def test_sizes_stated_in_prose_match_the_declarations() -> None:
         (wire, f"frames of at most {limits.MAX_FRAME_BYTES} bytes"),
         (wire, f"{limits.MAX_ACK_RANGES} ranges ({AckBlock(1, 1, tuple((2 * i, 2 * i + 1) for i in range(limits.MAX_ACK_RANGES))).wire_length}-byte block)"),
         (_prose("delivery.md"), f"budget of {overhead} bytes or less (a fragment's overhead)"),
+        (_prose("delivery.md"), f"a {IDLE_PROBE_BYTES}-byte probe at 4800 bit/s"),
+        (_prose("link.md"), f"({overhead} bytes: header and CRC)"),
+        (_prose("link.md"), f"a {IDLE_PROBE_BYTES}-byte probe outlives"),
     ]
     for text, sentence in stated:
         assert sentence in text, f"the documents no longer say: {sentence!r}"

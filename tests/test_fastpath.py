@@ -133,11 +133,8 @@ FINAL, URGENT, DOWNLINK = "final" / Flag, "urgent" / Flag, "downlink" / Flag
 OFFSET = "offset" / BitsInteger(13)
 
 
-def test_the_unchanged_declarations_load() -> None:
-    copy = importlib.util.spec_from_file_location("fastpath_copy", fastpath.__file__)
-    assert copy is not None and copy.loader is not None
-    module = importlib.util.module_from_spec(copy)
-    copy.loader.exec_module(module)
+def test_the_unchanged_declarations_load(monkeypatch: pytest.MonkeyPatch) -> None:
+    module = _load_fastpath_with(monkeypatch)
     frame = Fragment(0x0A31, 7, 9, 40, b"AB", final=True)
     assert module.encode_fragment(frame) == fastpath.encode_fragment(frame)
 

@@ -111,8 +111,13 @@ def limits_table() -> str:
     body = tree.body[0].body  # type: ignore[attr-defined]
     reasons: dict[str, str] = {}
     for node, after in itertools.pairwise(body):
-        if isinstance(node, ast.AnnAssign) and isinstance(after, ast.Expr) and isinstance(after.value, ast.Constant):
-            reasons[node.target.id] = " ".join(str(after.value.value).split())  # type: ignore[attr-defined]
+        if (
+            isinstance(node, ast.AnnAssign)
+            and isinstance(node.target, ast.Name)
+            and isinstance(after, ast.Expr)
+            and isinstance(after.value, ast.Constant)
+        ):
+            reasons[node.target.id] = " ".join(str(after.value.value).split())
     lines = ["| limit | default | why |", "| --- | --- | --- |"]
     for field in dataclasses.fields(limits.Limits):
         lines.append(f"| `{field.name}` | {field.default} | {reasons.get(field.name, '')} |")

@@ -53,9 +53,8 @@ _ACK = frame_fields(formats.ACK)
 expect_names(_FRAGMENT, ("head", "terminal", "master", "message_id", "position", "payload"), "fragment")
 expect_names(_PROBE, ("head", "master", "sequence", "flags", "poll", "ack", "command"), "probe")
 expect_names(_ACK, ("head", "master", "ack"), "ack")
-for _frame in (formats.FRAGMENT, formats.PROBE, formats.ACK):
-    if trailer_bytes(_frame) != FRAME_CRC_BYTES:
-        raise StaleLayout(f"a frame's CRC is {trailer_bytes(_frame)} bytes; the fast paths read {FRAME_CRC_BYTES}")
+if {trailer_bytes(frame) for frame in (formats.FRAGMENT, formats.PROBE, formats.ACK)} != {FRAME_CRC_BYTES}:
+    raise StaleLayout(f"a frame's CRC is no longer {FRAME_CRC_BYTES} bytes, as the fast paths read it")
 
 HEAD_BYTE = head_byte(FrameType.FRAGMENT)
 """First byte of every fragment of this format version."""
