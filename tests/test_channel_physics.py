@@ -130,7 +130,7 @@ def test_underdense_power_worked_example() -> None:
 
 
 def test_underdense_power_scales_as_q_squared_and_lambda_cubed() -> None:
-    args = dict(sin2_alpha=1.0, r1=5e5, r2=5e5, cos2_beta=0.5, sin2_phi=0.9)
+    args = {"sin2_alpha": 1.0, "r1": 5e5, "r2": 5e5, "cos2_beta": 0.5, "sin2_phi": 0.9}
     p1 = float(physics.underdense_power(100, 5, 5, 6.0, 1e13, **args))
     assert float(physics.underdense_power(100, 5, 5, 6.0, 2e13, **args)) / p1 == pytest.approx(4.0)
     assert float(physics.underdense_power(100, 5, 5, 12.0, 1e13, **args)) / p1 == pytest.approx(8.0)

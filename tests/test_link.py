@@ -17,7 +17,7 @@ from collections.abc import Callable
 import pytest
 from ionotrail.terminal.delivery.sender import MessageAcknowledged, Sender
 from ionotrail.terminal.errors import ProtocolError, UsageError
-from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.limits import DEFAULT_LIMITS, FRAGMENT_OVERHEAD_BYTES, Limits
 from ionotrail.terminal.link import table
 from ionotrail.terminal.link.policy import Adaptive, Fixed, StopAndWait
 from ionotrail.terminal.link.terminal import (
@@ -43,7 +43,7 @@ QUIET = DEFAULT_LIMITS.burst_silence  # 0.25 s
 
 def air(payload: int) -> float:
     """Airtime of a fragment carrying ``payload`` bytes: 10 bytes of header and CRC on top (docs/wire.md)."""
-    return 8 * (payload + 10) / BIT_RATE
+    return 8 * (payload + FRAGMENT_OVERHEAD_BYTES) / BIT_RATE
 
 
 def probe(sequence: int = 0, poll: int | None = None, ack: AckBlock | None = None, command: CommandBlock | None = None) -> bytes:

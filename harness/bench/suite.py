@@ -14,7 +14,7 @@ from typing import Any
 
 from ionotrail.terminal.limits import FRAGMENT_OVERHEAD_BYTES
 from ionotrail.terminal.link.policy import POLICY_NAMES
-from ionotrail.terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus
+from ionotrail.terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus, kind_of
 from ionotrail.terminal.wire.codec import decode, decode_with_construct, encode, encode_with_construct
 from ionotrail.terminal.wire.crc import using_c_extension
 from ionotrail.terminal.wire.frames import Frame
@@ -111,7 +111,7 @@ def codec_benchmark(seconds: float = 0.6, progress: Callable[[str], None] | None
         rest = wire[struct.calcsize(fmt) : struct.calcsize(fmt) + tail]
         row: dict[str, Any] = {"frame_bytes": len(wire)}
         row.update(_rates(_codec_paths(frame, wire, unpack, pack, values, rest), seconds))
-        row["path"] = "struct fast path" if isinstance(frame, (Fragment, Probe, Ack)) else "construct"
+        row["path"] = "struct fast path" if kind_of(frame).fast_decode is not None else "construct"
         row["ratio_to_baseline"] = row["baseline_decode_fps"] / row["decode_fps"]
         row["encode_ratio_to_baseline"] = row["baseline_encode_fps"] / row["encode_fps"]
         results[name] = row
@@ -314,8 +314,8 @@ def link_benchmark(hours: float = 24.0, policies: tuple[str, ...] = POLICY_NAMES
 
 def format_link(report: dict[str, Any]) -> str:
     lines = [
-        f"{report['scenario']}, seed {report['seed']}, {report['sim_seconds'] / 3600:g} h, backlogged source "
-        f"({report['backlog_message_bytes']}-byte messages); capacity bound {report['capacity_bound_bits'] / 1e6:.2f} Mbit",
+        (f"{report['scenario']}, seed {report['seed']}, {report['sim_seconds'] / 3600:g} h, backlogged source "
+        f"({report['backlog_message_bytes']}-byte messages); capacity bound {report['capacity_bound_bits'] / 1e6:.2f} Mbit"),
         "",
         f"{'policy':<14} {'efficiency':>10} {'bits/burst':>10} {'speedup':>9} {'wall s':>7}",
     ]

@@ -16,7 +16,7 @@ from typing import Any, TextIO
 import numpy as np
 from ionotrail.harness.channel import sky
 from ionotrail.harness.channel.model import DIRECTIONS, TrailSet, exclusive_open
-from ionotrail.terminal.limits import FRAGMENT_HEADER_BYTES, FRAME_CRC_BYTES, MESSAGE_CRC_BYTES
+from ionotrail.terminal.limits import FRAGMENT_OVERHEAD_BYTES, MESSAGE_CRC_BYTES
 
 PROBE_MESSAGE_BYTES = 100
 """The forecast's waiting time is for one 100-byte message in one fragment."""
@@ -24,7 +24,7 @@ PROBE_MESSAGE_BYTES = 100
 
 def message_airtime_s(payload: int, bit_rate: float) -> float:
     """Seconds on the air for one fragment carrying a whole sealed message."""
-    return (payload + MESSAGE_CRC_BYTES + FRAGMENT_HEADER_BYTES + FRAME_CRC_BYTES) * 8 / bit_rate
+    return (payload + MESSAGE_CRC_BYTES + FRAGMENT_OVERHEAD_BYTES) * 8 / bit_rate
 
 
 def forecast(trails: TrailSet) -> dict[str, Any]:

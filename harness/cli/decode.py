@@ -12,7 +12,7 @@ from typing import Any
 
 from ionotrail.harness.cli.common import SAFETY, UserError
 from ionotrail.terminal.errors import CrcMismatch, DecodeError
-from ionotrail.terminal.wire import Frame
+from ionotrail.terminal.wire import Frame, kind_of
 from ionotrail.terminal.wire.codec import decode
 from ionotrail.terminal.wire.serial_framing import Deframer
 
@@ -78,7 +78,7 @@ def _field_value(value: Any) -> Any:
 
 
 def _frame_table(label: str, raw: bytes, frame: Frame) -> str:
-    rows = [f"{label}  {frame.frame_type.name.lower()} frame, {len(raw)} bytes, CRC-16 ok"]
+    rows = [f"{label}  {kind_of(frame).name} frame, {len(raw)} bytes, CRC-16 ok"]
     width = max(len(k) for k in frame._fields)
     for key, value in frame._asdict().items():
         if hasattr(value, "_asdict"):  # a nested block
@@ -145,7 +145,7 @@ def run(args: argparse.Namespace) -> int:
             _emit_error(args, label, item, exc.reason.value, _describe_error(item, exc))
             continue
         if args.json:
-            record = {"source": label, "type": frame.frame_type.name.lower(), "length": len(item), "crc": "ok"}
+            record = {"source": label, "type": kind_of(frame).name, "length": len(item), "crc": "ok"}
             record["fields"] = _field_value(frame)
             print(json.dumps(record))
         else:

@@ -31,9 +31,10 @@ import numpy as np
 from ionotrail.harness.channel.model import Channel
 from ionotrail.terminal.link.terminal import Arrival
 from ionotrail.terminal.ports import Listener, Port
+from ionotrail.terminal.wire import IDLE_PROBE_BYTES
 
 DIRECTION_OF = {"terminal": "up", "master": "down"}
-SHORTEST_PROBE_BYTES = 7  # head, master, sequence, flags, CRC: docs/wire.md
+SHORTEST_PROBE_BYTES = IDLE_PROBE_BYTES  # a probe carrying no poll, acknowledgement or command
 
 
 @dataclasses.dataclass
@@ -80,7 +81,7 @@ class Air:
         self.master = SimulatedPort(self, "master")
         self.terminal = SimulatedPort(self, "terminal")
         # Probes are simulated wherever even the shortest could still arrive (a
-        # 7-byte probe outlives the BER threshold that defines "open" by a few tau).
+        # shortest probe outlives the BER threshold that defines "open" by a few tau).
         self._windows = channel.audible_windows("down", 8 * SHORTEST_PROBE_BYTES)
 
     # --- clocks ----------------------------------------------------------------------
