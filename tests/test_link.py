@@ -326,8 +326,8 @@ def test_a_flood_of_commands_executes_each_id_once_and_keeps_bounded_queues() ->
                 link.reply(effect.command_id, ReplyStatus.OK)
     assert sorted(executed) == list(range(40)), "each id executed once"
     assert link.commands.queued <= DEFAULT_LIMITS.max_queued_replies
-    assert len(link.commands._replies) <= DEFAULT_LIMITS.max_remembered_commands
-    assert link.counters.commands_repeated == 5000 - 40
+    assert link.commands.kept <= DEFAULT_LIMITS.max_remembered_commands
+    assert link.commands.counters.repeated == 5000 - 40
 
 
 def test_ids_cycling_through_the_whole_space_keep_the_reply_queue_bounded() -> None:
@@ -337,7 +337,7 @@ def test_ids_cycling_through_the_whole_space_keep_the_reply_queue_bounded() -> N
             if isinstance(effect, CommandArrived):
                 link.reply(effect.command_id, ReplyStatus.OK)
     assert link.commands.queued == DEFAULT_LIMITS.max_queued_replies
-    assert link.counters.replies_dropped == link.counters.commands_executed - DEFAULT_LIMITS.max_queued_replies
+    assert link.commands.counters.replies_dropped == link.commands.counters.executed - DEFAULT_LIMITS.max_queued_replies
 
 
 def test_a_command_older_than_the_window_is_not_executed() -> None:
@@ -346,7 +346,7 @@ def test_a_command_older_than_the_window_is_not_executed() -> None:
         hear(link, 0.0, encode(Command(MASTER, TERMINAL, CommandBlock(command_id, 1))))
         link.reply(command_id, ReplyStatus.OK)
     assert hear(link, 0.1, encode(Command(MASTER, TERMINAL, CommandBlock(0, 1)))) == []  # 100 behind: outside 64
-    assert link.counters.commands_stale == 1 and link.counters.commands_executed == 2
+    assert link.commands.counters.stale == 1 and link.commands.counters.executed == 2
 
 
 def test_the_policy_learns_the_paths_decay_from_bursts_and_not_from_idle_probes() -> None:
@@ -465,7 +465,7 @@ def test_a_command_is_executed_once_and_its_reply_repeated() -> None:
     assert decode(sent.frame) == Reply(TERMINAL, MASTER, 3, ReplyStatus.OK, b"ok")
     hear(link, link.deadline + 0.05, probe(poll=TERMINAL, command=command))  # the master did not hear it
     fire(link)
-    assert link.counters.replies_sent == 2 and link.counters.commands_executed == 1
+    assert link.counters.replies_sent == 2 and link.commands.counters.executed == 1
     with pytest.raises(UsageError):
         link.reply(3, ReplyStatus.OK)
 

@@ -185,8 +185,8 @@ def test_a_command_reaches_the_demo_gauge_once() -> None:
     run = simulate(s, source=gauge, trails=trails, seconds=25.0, master_commands=[(0x0A31, SET_INTERVAL, (900).to_bytes(4, "big"))])
     assert gauge.interval_s == 900.0
     assert [(r.terminal, r.status) for r in run.master.replies] == [(0x0A31, int(ReplyStatus.OK))]
-    assert run.link.counters.commands_executed == 1
-    assert run.link.counters.commands_repeated > 0, "the probes repeated the command until the reply arrived"
+    assert run.link.commands.counters.executed == 1
+    assert run.link.commands.counters.repeated > 0, "the probes repeated the command until the reply arrived"
 
 
 def test_the_invariant_catches_a_sender_that_drops_a_message_silently(monkeypatch: pytest.MonkeyPatch) -> None:

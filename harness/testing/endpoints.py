@@ -106,16 +106,17 @@ class EndpointsMachine(RuleBasedStateMachine):
 
     @rule(ours=st.booleans(), opcode=st.integers(0, 255))
     def command(self, ours: bool, opcode: int) -> None:
-        if len(self.master._commands) >= LIMITS.max_queued_commands:
+        if len(self.master.pending_commands) >= LIMITS.max_queued_commands:
             return
         _, effects = self.master.command(TERMINAL if ours else OTHER, opcode, b"", self.now)
         self._master_effects(effects)
 
     @rule()
     def other_terminal_answers(self) -> None:
-        pending = self.master._commands[0] if self.master._commands else None
-        if pending is not None and pending.terminal == OTHER:
-            self._master_effects(self.master.on_frame(encode(Reply(OTHER, MASTER, pending.block.command_id, ReplyStatus.OK)), self.now))
+        pending = self.master.pending_commands
+        if pending and pending[0][0] == OTHER:
+            command_id = pending[0][1].command_id
+            self._master_effects(self.master.on_frame(encode(Reply(OTHER, MASTER, command_id, ReplyStatus.OK)), self.now))
 
     # --- the channel -------------------------------------------------------------------
 

@@ -104,7 +104,13 @@ class CommandMemory:
 
     @property
     def queued(self) -> int:
+        """Replies waiting for airtime."""
         return len(self._queue)
+
+    @property
+    def kept(self) -> int:
+        """Command ids whose replies are kept for repeats."""
+        return len(self._replies)
 
     def _enqueue(self, reply: bytes) -> None:
         self._queue.append(reply)

@@ -113,6 +113,11 @@ class MasterEndpoint:
         return due_at(self.timer)
 
     @property
+    def pending_commands(self) -> tuple[tuple[int, CommandBlock], ...]:
+        """(terminal, command) of every unanswered command, the one on the air first."""
+        return tuple(self._commands)
+
+    @property
     def poll(self) -> int | None:
         """The terminal the probes poll (None: any terminal may answer)."""
         return self._commands[0].terminal if self._commands else None

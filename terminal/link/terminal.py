@@ -110,10 +110,6 @@ class LinkCounters:
     fragments_sent: int = 0
     replies_sent: int = 0
     bytes_sent: int = 0
-    commands_executed: int = 0
-    commands_repeated: int = 0
-    commands_stale: int = 0
-    replies_dropped: int = 0
     decode_errors: int = 0
     ignored_frames: int = 0
 
@@ -151,6 +147,7 @@ class Link:
         self._last_raw: bytes | None = None  # the last frame decoded, and what it decoded to
         self._last_frame: Frame | None = None
         self.commands = CommandMemory(limits)
+        """Executed command ids, kept replies and replies waiting (its counters count commands)."""
 
     @property
     def deadline(self) -> float | None:
@@ -231,7 +228,6 @@ class Link:
         if len(result) > MAX_COMMAND_BYTES:
             raise UsageError(f"reply result of {len(result)} bytes exceeds {MAX_COMMAND_BYTES}")
         self.commands.answered(command_id, encode(Reply(self.terminal, self.master, command_id, status, result)))
-        self.counters.replies_dropped = self.commands.counters.replies_dropped
 
     # --- facts ------------------------------------------------------------------------
 
@@ -329,11 +325,5 @@ class Link:
             self.policy.fragment_settled(*outcomes.popleft())
 
     def _take_command(self, command_id: int, opcode: int, arguments: bytes, effects: list[Effect]) -> None:
-        verdict = self.commands.arrived(command_id)
-        counters = self.commands.counters
-        self.counters.commands_executed = counters.executed
-        self.counters.commands_repeated = counters.repeated
-        self.counters.commands_stale = counters.stale
-        self.counters.replies_dropped = counters.replies_dropped
-        if verdict is Verdict.NEW:
+        if self.commands.arrived(command_id) is Verdict.NEW:
             effects.append(CommandArrived(command_id, opcode, arguments))
