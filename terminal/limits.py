@@ -74,9 +74,58 @@ OUTCOMES_KEPT = 64
 """Settled-fragment records (size, lost) a sender keeps for its fragment
 policy; the link reads them after every acknowledgement, so a few suffice."""
 
-MAX_SERIAL_PAYLOAD = MAX_FRAME_BYTES + 16
-"""A host-modem record: one air frame plus up to 16 bytes of modem metadata
-(timestamps, signal quality)."""
+# --- host-modem records (declared in ionotrail.terminal.modem.records) ------------
+#
+# The sizes below that the record declarations also fix are checked against
+# them when ionotrail.terminal.modem loads (records.py, check_limits).
+
+RECORD_VERSION = 1
+"""Record format version carried in the high nibble of every record's first byte."""
+
+MAX_RECORD_FRAME_BYTES = MAX_FRAME_BYTES
+"""Air frame carried by a transmit, probe-start or received record: one frame
+of this stack's largest (266 bytes).  A modem that does not read the frames it
+carries still needs one bound for its buffers; this is it."""
+
+MAX_RECORD_METADATA_BYTES = 17
+"""Bytes of the largest record beyond its air frame: a received record's head,
+modem time, SNR, frequency offset and CRC (1 + 8 + 2 + 4 + 2)."""
+
+MAX_SERIAL_PAYLOAD = MAX_RECORD_FRAME_BYTES + MAX_RECORD_METADATA_BYTES
+"""Largest host-modem record before COBS (283 bytes): a received record with a
+maximal frame.  Checked at import to be the largest record any declaration
+allows, so one receive buffer of this size serves every record."""
+
+MAX_MODEM_TIME_US = 1 << 50
+"""Modem clock readings, in microseconds (a 64-bit field on the wire): 2^50 us
+is 35.7 years of uptime, beyond any modem's time between resets, and below it
+a reading survives the trip to float seconds and back exactly (a double's 53
+bits leave three to spare for the rounding of the division by 10^6)."""
+
+MAX_MODEM_DRIFT = 1e-3
+"""Largest clock drift the modem-clock estimate believes (1000 ppm).  Crystal
+and TCXO oscillators are specified within about +-100 ppm over temperature and
+ageing; a slope ten times that comes from too few readings, not from the
+oscillator (common practice, no source)."""
+
+MODEM_CLOCK_WINDOW = 32
+"""Readings of the modem clock kept for the offset and drift estimate (the
+vertices of their lower envelope).  The envelope of uniformly delayed readings
+has a few dozen vertices after a day; 32 pairs of floats is 512 bytes."""
+
+MODEM_CLOCK_HORIZON_S = 3600.0
+"""Seconds of modem time after which a kept reading is forgotten: an
+oscillator's drift follows its temperature, which changes over hours, so an
+hour of readings describes the drift now (common practice, no source)."""
+
+MODEM_CLOCK_MIN_SPAN_S = 10.0
+"""Modem seconds the kept readings must span before a drift is estimated.  Over
+a shorter span the serial delay's jitter (milliseconds) dominates the slope;
+until then the drift is taken as zero and only the offset is estimated."""
+
+MAX_KISS_FRAME_BYTES = 1 + MAX_RECORD_FRAME_BYTES
+"""Unescaped bytes of a KISS frame: the port-and-command byte and one air
+frame.  A KISS receiver holds at most this many; a longer frame is dropped."""
 
 
 def cobs_encoded_max(payload_len: int) -> int:
