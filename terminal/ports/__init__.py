@@ -9,8 +9,9 @@ frame whenever its content (acknowledgement, poll, command) changes.  A
 simulated port reports only the probes the channel delivers, so silence costs
 nothing.
 
-Adapters: :class:`ionotrail.harness.emulators.air.SimulatedPort` over the channel simulator; the
-serial modem adapter must fit this same interface.
+Adapters: :class:`ionotrail.harness.emulators.air.SimulatedPort` over the channel simulator, and
+:class:`ionotrail.terminal.ports.serial.SerialPort`, a radio modem on a serial line (a device, a
+pseudo-terminal or a TCP socket) speaking a host-modem dialect.  The service cannot tell them apart.
 """
 
 from __future__ import annotations
