@@ -1,5 +1,5 @@
 """The ``ionotrail`` command line: the parser assembled from one module per
-sub-command (decode, bench, channel, simulate, docs in this folder), and main().
+sub-command (decode, bench, channel, simulate, emulate, docs in this folder), and main().
 
 Every sub-command is a thin layer over library functions: parse arguments,
 call, print.  Errors a user can fix print one line and exit with status 2;
@@ -14,7 +14,7 @@ import os
 import sys
 from collections.abc import Sequence
 
-from ionotrail.harness.cli import bench, channel, decode, docs, simulate
+from ionotrail.harness.cli import bench, channel, decode, docs, emulate, simulate
 from ionotrail.harness.cli.common import SAFETY, UserError
 from ionotrail.harness.runners.vtime import CallbackError
 
@@ -24,7 +24,7 @@ meteor-burst data-collection terminals (river gauges, weather and snow
 stations, pipeline monitors reporting over ionized meteor trails).
 """
 
-COMMANDS = (decode, bench, channel, simulate, docs)
+COMMANDS = (decode, bench, channel, simulate, emulate, docs)
 """In the order the help lists them; each module adds its parser and handler."""
 
 

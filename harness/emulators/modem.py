@@ -706,8 +706,8 @@ class ModemEmulator:
             raise ValueError(f"noise: {args[-1]!r} is not a whole number of bytes") from None
         if not 0 < count <= 1_000_000:
             raise ValueError("noise: from 1 to 1000000 bytes")
-        names = " ".join(m.role for m in targets)
-        self.say(f"fault: noise {names} {count} bytes {'from' if inbound else 'to'} the host")
+        names = " and ".join(m.role for m in targets)
+        self.say(f"fault: noise {names}: {count} bytes {'from' if inbound else 'to'} the host")
         for modem in targets:
             modem.noise(count, inbound)
 
