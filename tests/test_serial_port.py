@@ -42,7 +42,7 @@ from ionotrail.terminal.modem.records import (
     Transmit,
     Transmitted,
 )
-from ionotrail.terminal.ports.serial import SerialPort
+from ionotrail.terminal.ports.serial import WRITE_BACKLOG_MAX_BYTES, SerialPort
 from ionotrail.terminal.wire.crc import crc16
 from ionotrail.terminal.wire.serial_framing import encode_record
 
@@ -509,3 +509,60 @@ async def test_a_missing_device_fails_to_open() -> None:
     port = SerialPort("/dev/ionotrail-no-such-modem", dialect=dialect("kiss"))
     with pytest.raises(OSError):
         await port.open()
+
+
+# --- a modem behind a TCP socket, and a modem that stops reading ------------------------
+
+
+@pytest.mark.asyncio
+async def test_a_socket_modem_that_hangs_up_is_reconnected() -> None:
+    line = dialect("ionotrail")
+    sessions: list[list[Any]] = []
+    hang_up = asyncio.Event()
+
+    async def modem(reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
+        records: list[Any] = []
+        sessions.append(records)
+        stream = line.stream(Side.MODEM)
+        while data := await reader.read(4096):
+            records.extend(r for r in stream.feed(data) if not isinstance(r, LineError))
+            if len(sessions) == 1 and hang_up.is_set():
+                break
+        writer.close()
+
+    server = await asyncio.start_server(modem, "127.0.0.1", 0)
+    host, tcp_port = server.sockets[0].getsockname()[:2]
+    port = SerialPort(f"socket://{host}:{tcp_port}", dialect=line, configure=CONFIGURE,
+                      backoff_initial_s=0.02, backoff_max_s=0.1)
+    try:
+        await port.open()
+        port.start_listening()
+        await until(lambda: len(sessions) == 1 and len(sessions[0]) == 2, "the first session's state")
+        hang_up.set()
+        port.send(b"goodbye")  # the modem hangs up after reading this
+        await until(lambda: len(sessions) == 2 and len(sessions[1]) == 2, "the second session's state")
+        assert sessions[1] == [CONFIGURE, Listen(on=True)]
+        assert (port.counters.disconnects, port.counters.reconnects) == (1, 1)
+    finally:
+        await port.close()
+        server.close()
+        await server.wait_closed()
+
+
+@pytest.mark.asyncio
+async def test_a_modem_that_stops_reading_costs_dropped_frames_not_memory(ptys: Callable[[], Pty]) -> None:
+    pty = ptys()  # nobody reads the master: the kernel's buffer fills, then the port's
+    port = await opened(pty.path, "ionotrail")
+    try:
+        frame = bytes(range(1, 201))
+        for _ in range(5000):
+            port.send(frame)
+            if port.counters.frames_dropped_backlog:
+                break
+            await asyncio.sleep(0)
+        assert port.counters.frames_dropped_backlog == 1
+        record_bytes = len(dialect("ionotrail").encode(Transmit(host_id=0, frame=frame)))
+        assert 0 < port.unwritten_bytes <= WRITE_BACKLOG_MAX_BYTES + record_bytes
+        assert port.connected
+    finally:
+        await asyncio.wait_for(port.close(), WAIT_S)

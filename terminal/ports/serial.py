@@ -188,6 +188,12 @@ class SerialPort(Port):
         """Is the line open now?"""
         return self._transport is not None and not self._transport.is_closing()
 
+    @property
+    def unwritten_bytes(self) -> int:
+        """Bytes the port holds that the line has not taken yet (bounded by
+        :data:`WRITE_BACKLOG_MAX_BYTES` plus one record)."""
+        return self._transport.get_write_buffer_size() if self._transport is not None else 0
+
     async def open(self) -> None:
         """Open the line and send the modem its configuration and state.
 
@@ -353,7 +359,7 @@ class SerialPort(Port):
         return self.dialect.carries(record_type)
 
     def _backlogged(self) -> bool:
-        return self._transport is not None and self._transport.get_write_buffer_size() > WRITE_BACKLOG_MAX_BYTES
+        return self.unwritten_bytes > WRITE_BACKLOG_MAX_BYTES
 
     def _write(self, record: Record) -> bool:
         """Put ``record`` on the line if it is open; False when it was not."""
