@@ -150,8 +150,9 @@ async def _serve(emulator: Any, duration: float | None) -> int:
                 print(f"error: {error}", flush=True)
 
         def read_stdin() -> None:  # a daemon thread: a blocked read never holds up the exit
-            for text in sys.stdin:
-                loop.call_soon_threadsafe(command, text)
+            with contextlib.suppress(OSError, ValueError, RuntimeError):  # no usable stdin, or the loop closed
+                for text in sys.stdin:
+                    loop.call_soon_threadsafe(command, text)
 
         if sys.stdin is not None and not sys.stdin.closed:
             threading.Thread(target=read_stdin, name="emulate-commands", daemon=True).start()
