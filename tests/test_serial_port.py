@@ -269,15 +269,15 @@ async def test_kiss_probing_is_kept_by_the_host(ptys: Callable[[], Pty]) -> None
         port.start_probing(b"probe-2", 0.02)  # same cadence, new content
         await until(lambda: any(t.frame == b"probe-2" for t in modem.of(Transmit)), "the new probe")
         port.stop_probing()
-        stopped_at = len(modem.of(Transmit))
+        sent = port.counters.probes_sent
         await asyncio.sleep(0.1)  # five intervals: a probe still running would show
+        await until(lambda: len(modem.of(Transmit)) >= sent, "the probes already on the line")
         probes = modem.of(Transmit)
-        assert len(probes) == stopped_at
+        assert len(probes) == sent == port.counters.probes_sent
         frames = [t.frame for t in probes]
         switch = frames.index(b"probe-2")
         assert set(frames[:switch]) == {b"probe-1"} and set(frames[switch:]) == {b"probe-2"}
         assert modem.records == probes  # nothing else went on the line: no Configure, no Listen
-        assert port.counters.probes_sent == len(probes)
 
         # A received KISS frame has no timestamp or SNR: read time and NaN.
         before = loop.time()
@@ -390,6 +390,7 @@ async def test_an_unplugged_modem_is_reopened_with_backoff_and_its_state_restore
         await until(lambda: modem.records == state, "the modem's state")
 
         modem.unplug()
+        link.unlink()  # as udev removes a device's by-id link (and another pty may take the old number)
         await until(lambda: not port.connected, "the port to see the unplug")
         port.send(b"lost in the gap")  # dropped and counted: the link above retransmits
         assert port.counters.frames_dropped_offline == 1
@@ -451,6 +452,7 @@ async def test_close_while_reconnecting_stops_the_attempts(ptys: Callable[[], Pt
     port.start_probing(b"probe", 0.01)
     await until(lambda: modem.of(Transmit) != [], "a probe")
     modem.unplug()
+    link.unlink()
     await until(lambda: port.counters.reopen_failures >= 1, "a failed attempt")
     await asyncio.wait_for(port.close(), WAIT_S)
     failures = port.counters.reopen_failures
