@@ -16,6 +16,7 @@ import contextlib
 import itertools
 import math
 import os
+import tty
 from collections.abc import AsyncIterator, Callable
 from pathlib import Path
 from typing import Any
@@ -26,7 +27,7 @@ from cobs import cobs
 from ionotrail.harness.channel import scenario
 from ionotrail.harness.channel.model import Channel, Opening, TrailSet, with_openings
 from ionotrail.harness.cli.main import main
-from ionotrail.harness.emulators.lines import PtyLine, TcpLine
+from ionotrail.harness.emulators.lines import DeviceLine, PtyLine, TcpLine
 from ionotrail.harness.emulators.modem import ROLES, ModemEmulator
 from ionotrail.terminal.modem import records as r
 from ionotrail.terminal.modem.dialects import Side, dialect
@@ -120,7 +121,7 @@ async def test_a_frame_crosses_an_open_path_with_the_models_snr_and_offset(tmp_p
         # Offset = oscillator ppm x carrier; hand-made trails have no Doppler.  The demo's
         # 2 ppm at the 40.52 MHz uplink: 81.04 Hz (field notes: 2 ppm = 100 Hz at 50 MHz).
         assert got.offset_hz == pytest.approx(2e-6 * 40.52e6, abs=0.05)
-        assert 0 < got.modem_time_s < 5 * SCALE
+        assert 0 < got.modem_time_s < 5
         assert em.terminal.counters.frames_delivered == 1
         # And back down, at the 41.61 MHz downlink.
         master.send(r.Transmit(8, FRAME[:10]))
@@ -152,7 +153,8 @@ async def test_the_modem_runs_the_probe_stream_until_told_to_stop(tmp_path: Path
         assert 35 <= len(probes) <= 60
         times = [p.modem_time_s for p in probes]
         gaps = [b - a for a, b in itertools.pairwise(times)]
-        assert sorted(gaps)[len(gaps) // 2] == pytest.approx(0.1, rel=0.1)  # the modem's clock shows the cadence
+        # The modem's clock counts wall seconds: the 0.1 s cadence shows as 0.01 s at 10x.
+        assert sorted(gaps)[len(gaps) // 2] == pytest.approx(0.1 / SCALE, rel=0.1)
         master.send(r.ProbeStart(0.1, b"probe-2"))  # same cadence, new content from the next probe on
         await terminal.wait_for(lambda x: isinstance(x, r.Received) and x.frame == b"probe-2")
         master.send(r.ProbeStop())
@@ -237,8 +239,8 @@ async def test_malformed_unknown_and_misdirected_records_get_error_answers(tmp_p
     async with emulated(tmp_path, OPEN) as (em, terminal, _, _):
         terminal.port.write(framed(bytes((0x17,))))  # version 1, type 7: no such record
         assert await terminal.wait_for(of(r.ErrorAnswer)) == r.ErrorAnswer(r.ErrorCode.UNKNOWN_TYPE, 7)
-        corrupt = bytearray(framed(bytes((0x16,))))  # a status query ...
-        corrupt[1] ^= 0x01  # ... with a bit flipped in its CRC
+        corrupt = bytearray(framed(bytes((0x16,))))  # a status query with one bit flipped
+        corrupt[1] ^= 0x01  # on the line: its CRC no longer matches
         terminal.port.write(bytes(corrupt))
         assert await terminal.wait_for(of(r.ErrorAnswer)) == r.ErrorAnswer(r.ErrorCode.BAD_CRC, 0)
         terminal.port.write(framed(bytes((0x16, 0x00))))  # a status query with a stray byte
@@ -358,6 +360,36 @@ async def test_a_tcp_line_listens_on_loopback_only() -> None:
         assert [x.frame for x in got if isinstance(x, r.Received)] == [FRAME]
         for _, writer in conns.values():
             writer.close()
+
+
+@pytest.mark.asyncio
+async def test_a_station_can_serve_an_existing_serial_device(tmp_path: Path) -> None:
+    # A development board on a USB-serial adapter, stood in for by a pty pair: the
+    # emulator opens the device; the board (the test) holds the other end.
+    board, device = os.openpty()
+    tty.setraw(board)
+    os.set_blocking(board, False)
+    lines = {"terminal": DeviceLine(os.ttyname(device)), "master": PtyLine(tmp_path / "master")}
+    em = ModemEmulator(channel(OPEN), SCENARIO, lines, {role: dialect("ionotrail") for role in ROLES}, time_scale=SCALE, say=lambda _: None)
+    codec = dialect("ionotrail")
+    try:
+        async with em:
+            master = Host(tmp_path / "master")
+            try:
+                os.write(board, codec.encode(r.Transmit(11, FRAME)))
+                assert (await master.wait_for(of(r.Received))).frame == FRAME
+                stream, got = codec.stream(Side.HOST), []
+                deadline = asyncio.get_running_loop().time() + 2.0
+                while not got and asyncio.get_running_loop().time() < deadline:
+                    await asyncio.sleep(0.01)
+                    with contextlib.suppress(BlockingIOError):
+                        got = [x for x in stream.feed(os.read(board, 4096)) if isinstance(x, r.Transmitted)]
+                assert got == [r.Transmitted(11, True, 320 / 4800)]
+            finally:
+                master.close()
+    finally:
+        os.close(board)
+        os.close(device)
 
 
 def test_emulate_help_carries_the_safety_note(capsys: pytest.CaptureFixture[str]) -> None:

@@ -29,10 +29,11 @@ The modems never look inside the air frames they carry: any air protocol passes.
 
 Time.  Emulated time runs ``time_scale`` times faster than the wall clock:
 channel time = ``start_s`` + ``time_scale`` x (wall seconds since start).
-Everything the emulator expresses in seconds (airtimes, fault durations,
-the fault schedule, the modem clocks) is on that one clock.  Each modem's
-clock counts emulated seconds since its last power-on, with a seeded drift
-of a few ppm, and restarts at a reset.
+Airtimes, the probe cadence, fault durations and the fault schedule are on
+that clock.  Each modem's own clock (the time stamped on Received, Status and
+Reset) is a crystal on its board: it counts wall seconds since its last
+power-on, with a seeded drift of a few ppm, and restarts at a reset; so a
+host's clock estimate (which bounds the drift it accepts) holds at any scale.
 
 Simplifications: a probe does not occupy the transmitter (frames and probes
 may overlap, as in the air simulation); the receiver of the other station is
@@ -161,13 +162,13 @@ class EmulatedModem:
         self._arrivals.clear()
         self._on_air.clear()
         self.busy_until = now
-        self.booted_at = now
+        self.booted_at = self.em.wall_now()
         self.stalled_until = -math.inf
         self.late_until = -math.inf
 
     def modem_time(self) -> float:
-        """This modem's clock: emulated seconds since power-on, with its drift."""
-        return max(0.0, (self.em.now() - self.booted_at) * (1.0 + self.clock_drift))
+        """This modem's clock: wall seconds since power-on, with its drift."""
+        return max(0.0, (self.em.wall_now() - self.booted_at) * (1.0 + self.clock_drift))
 
     def stalled(self) -> bool:
         return self.em.now() < self.stalled_until
@@ -517,6 +518,10 @@ class ModemEmulator:
         if self._loop is None or self.origin is None:
             return self.start_s
         return self.start_s + self.time_scale * (self._loop.time() - self.origin)
+
+    def wall_now(self) -> float:
+        """The loop's (wall) clock."""
+        return self._loop.time() if self._loop is not None else 0.0
 
     def wall(self, t: float) -> float:
         """The loop time at which emulated time reaches ``t``."""
