@@ -17,7 +17,7 @@ from collections.abc import Callable
 import pytest
 from ionotrail.terminal.delivery.sender import MessageAcknowledged, Sender
 from ionotrail.terminal.errors import ProtocolError, UsageError
-from ionotrail.terminal.limits import DEFAULT_LIMITS, FRAGMENT_OVERHEAD_BYTES, Limits
+from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link import table
 from ionotrail.terminal.link.policy import Adaptive, Fixed, StopAndWait
 from ionotrail.terminal.link.terminal import (
@@ -43,7 +43,7 @@ QUIET = DEFAULT_LIMITS.burst_silence  # 0.25 s
 
 def air(payload: int) -> float:
     """Airtime of a fragment carrying ``payload`` bytes: 10 bytes of header and CRC on top (docs/wire.md)."""
-    return 8 * (payload + FRAGMENT_OVERHEAD_BYTES) / BIT_RATE
+    return 8 * (payload + 10) / BIT_RATE
 
 
 def probe(sequence: int = 0, poll: int | None = None, ack: AckBlock | None = None, command: CommandBlock | None = None) -> bytes:
@@ -108,16 +108,18 @@ def test_a_pair_that_cannot_happen_raises_a_protocol_error(state: State, event: 
 
 
 def test_timer_classification_follows_the_facts() -> None:
-    never: Callable[[], bool] = lambda: pytest.fail("ready asked when no frame could go")
-    yes, no = (lambda: True), (lambda: False)
-    assert table.classify_timer(Purpose.AIR_END, silent=True, ours=True, hold=False, ready=never) is Input.SILENT
-    assert table.classify_timer(Purpose.TURNAROUND, silent=False, ours=True, hold=True, ready=yes) is Input.GO_READY
-    assert table.classify_timer(Purpose.TURNAROUND, silent=False, ours=False, hold=False, ready=never) is Input.GO_EMPTY
-    assert table.classify_timer(Purpose.AIR_END, silent=False, ours=True, hold=True, ready=never) is Input.SENT_HOLD
-    assert table.classify_timer(Purpose.AIR_END, silent=False, ours=True, hold=False, ready=no) is Input.SENT_EMPTY
-    assert table.classify_timer(Purpose.AIR_END, silent=False, ours=False, hold=False, ready=never) is Input.SENT_EMPTY
+    classify = table.classify_timer
+    assert classify(Purpose.AIR_END, silent=True, ours=True, hold=False, ready=True) is Input.SILENT
+    assert classify(Purpose.TURNAROUND, silent=True, ours=True, hold=False, ready=True) is Input.SILENT
+    assert classify(Purpose.TURNAROUND, silent=False, ours=True, hold=True, ready=True) is Input.GO_READY  # the probe just heard is the go-ahead
+    assert classify(Purpose.TURNAROUND, silent=False, ours=False, hold=False, ready=True) is Input.GO_EMPTY
+    assert classify(Purpose.TURNAROUND, silent=False, ours=True, hold=False, ready=False) is Input.GO_EMPTY
+    assert classify(Purpose.AIR_END, silent=False, ours=True, hold=True, ready=True) is Input.SENT_HOLD
+    assert classify(Purpose.AIR_END, silent=False, ours=True, hold=False, ready=False) is Input.SENT_EMPTY
+    assert classify(Purpose.AIR_END, silent=False, ours=False, hold=False, ready=True) is Input.SENT_EMPTY
+    assert classify(Purpose.AIR_END, silent=False, ours=True, hold=False, ready=True) is Input.SENT_READY
     with pytest.raises(ProtocolError):
-        table.classify_timer(Purpose.SILENCE, silent=False, ours=True, hold=False, ready=never)
+        classify(Purpose.SILENCE, silent=False, ours=True, hold=False, ready=True)
     assert table.classify_probe(ours=False, ready=True) is Input.PROBE_ELSEWHERE
     assert table.classify_probe(ours=True, ready=True) is Input.PROBE_READY
     assert table.classify_probe(ours=True, ready=False) is Input.PROBE_EMPTY
@@ -331,11 +333,18 @@ def test_a_flood_of_commands_executes_each_id_once_and_keeps_bounded_queues() ->
 
 
 def test_ids_cycling_through_the_whole_space_keep_the_reply_queue_bounded() -> None:
+    # A sender cycling all 256 ids runs ahead of any window an 8-bit id allows
+    # (at most 2^(8-1), RFC 4303's bound for serial numbers): each arrival is new and
+    # runs, until commands are authenticated.  What the terminal bounds is memory.
     link = make_link(messages=0)
+    executed = 0
     for n in range(5000):
         for effect in hear(link, n * 1e-3, encode(Command(MASTER, TERMINAL, CommandBlock(n % 256, 1)))):
             if isinstance(effect, CommandArrived):
+                executed += 1
                 link.reply(effect.command_id, ReplyStatus.OK)
+    assert executed == 5000
+    assert link.commands.kept == DEFAULT_LIMITS.max_remembered_commands
     assert link.commands.queued == DEFAULT_LIMITS.max_queued_replies
     assert link.commands.counters.replies_dropped == link.commands.counters.executed - DEFAULT_LIMITS.max_queued_replies
 
@@ -362,6 +371,7 @@ def test_the_policy_learns_the_paths_decay_from_bursts_and_not_from_idle_probes(
     for k in range(5):  # idle probes from other trails, minutes later, at unrelated levels
         hear(link, 60.0 + k, probe(poll=OTHER), snr=12.0 + 3 * k)
     hear(link, 100.0, snr=30.0)  # the next burst starts: the last one's fit is learnt, 1/8 of the way
+    # The gain 1/8 is RFC 6298's SRTT gain (s2), which the policy borrows.
     assert policy.typical_tau_s == pytest.approx(0.3 + (tau - 0.3) / 8, rel=1e-3)
 
 
@@ -510,3 +520,18 @@ def test_stop_and_wait_carries_on_in_the_next_burst_when_an_acknowledgement_neve
     assert isinstance(effects[0], BurstStarted)
     (again,) = transmitted(fire(link))
     assert again.offset == first.offset == 0, "the unconfirmed fragment goes again"
+
+
+def test_the_command_window_follows_serial_arithmetic_across_the_wrap() -> None:
+    # RFC 4303 s3.4.3 window over 8-bit ids, ahead/behind by RFC 1982 serial arithmetic.
+    from ionotrail.terminal.link.commands import CommandMemory, Verdict
+
+    memory = CommandMemory(Limits(command_window=64))
+    assert memory.arrived(250) is Verdict.NEW
+    assert memory.arrived(3) is Verdict.NEW, "9 ahead across the wrap"
+    assert memory.arrived(250) is Verdict.REPEAT, "9 behind, inside the window"
+    assert memory.arrived(252) is Verdict.NEW, "behind but never seen"
+    assert memory.classify((3 + 127) % 256) is Verdict.NEW, "127 ahead: the last id that is ahead"
+    assert memory.classify((3 + 128) % 256) is Verdict.STALE, "128 ahead counts as behind, and far outside the window"
+    assert memory.classify((3 - 64) % 256) is Verdict.STALE, "exactly the window behind: too old"
+    assert memory.classify((3 - 63) % 256) is Verdict.NEW

@@ -67,9 +67,9 @@ def test_every_message_with_news_is_acknowledged_in_turn() -> None:
     assert [type(e) for e in effects] == [ProbeChanged]
     assert probe_of(master).ack == AckBlock(T1, 0, ((0, 40),))
     assert master.on_frame(fragment(T1, 1, b, 0, 40), 1.02) == []  # news for b waits its turn
-    assert master.on_frame(fragment(T1, 0, a, 40, 60), 1.04) != []  # fresher news for a: at once
+    assert master.on_frame(fragment(T1, 0, a, 40, 60), 1.04) != []  # fresher news for a: at once ...
     assert probe_of(master).ack == AckBlock(T1, 0, ((0, 60),))
-    assert master.deadline == pytest.approx(1.04 + INTERVAL)
+    assert master.deadline == pytest.approx(1.0 + INTERVAL), "... without restarting a's interval"
     fire(master)
     assert probe_of(master).ack == AckBlock(T1, 1, ((0, 40),)), "b's news follows a probe interval later"
     assert master.deadline == pytest.approx(1.0 + DEFAULT_LIMITS.reassembly_lifetime), "no news left: the reassembly deadline"
@@ -157,3 +157,53 @@ def test_a_call_at_the_reassembly_deadline_always_expires() -> None:
     assert master.deadline == first + 600.0
     fire(master)
     assert master.reassembler.partial_count == 0
+
+
+def test_a_stream_of_news_for_one_message_does_not_starve_the_others() -> None:
+    # Terminal 2 keeps sending one message faster than the probe interval; terminal 3's
+    # finished message must still reach the probe within an interval (docs/link.md).
+    master = MasterEndpoint(MASTER)
+    stream, done = seal_message(b"s" * 2000), seal_message(b"done")
+    master.on_frame(fragment(T1, 0, stream, 0, 10), 0.0)
+    master.on_frame(fragment(T2, 0, done, 0, len(done)), 0.01)
+    carried = set()
+    t, offset = 0.0, 10
+    while t < 1.0:
+        t += 0.03
+        master.on_frame(fragment(T1, 0, stream, offset, offset + 10), t)
+        offset += 10
+        while master.deadline is not None and master.deadline <= t:
+            fire(master)
+        ack = probe_of(master).ack
+        assert ack is not None
+        carried.add(ack.terminal)
+    assert T2 in carried
+
+
+def test_a_silent_terminal_cannot_keep_the_others_quiet() -> None:
+    limits = Limits(command_turn=60.0)
+    master = MasterEndpoint(MASTER, limits=limits)
+    master.command(T1, 1, b"", 0.0)  # T1 never answers
+    assert master.poll == T1
+    assert master.deadline == pytest.approx(60.0)
+    fire(master)  # its turn is over: nobody is polled for as long
+    assert master.poll is None and probe_of(master).command is None
+    assert master.deadline == pytest.approx(120.0)
+    fire(master)
+    assert master.poll == T1, "then it gets another turn"
+    master.command(T2, 2, b"", 130.0)
+    master.on_frame(encode(Reply(T2, MASTER, 0, ReplyStatus.OK)), 131.0)  # T2's command has not been on the air
+    assert master.counters.stray_replies == 1
+    fire(master)  # T1's turn ends at 180: T2's turn comes after the rest
+    fire(master)
+    assert master.poll == T2
+    effects = master.on_frame(encode(Reply(T1, MASTER, 0, ReplyStatus.OK, b"late")), 250.0)  # an earlier turn's reply
+    assert ReplyArrived(T1, 0, int(ReplyStatus.OK), b"late", 250.0) in effects
+    assert master.poll == T2
+
+
+def test_a_restarted_master_starts_its_command_ids_where_it_is_told() -> None:
+    master = MasterEndpoint(MASTER, first_command_id=200)
+    assert master.command(T1, 1, b"", 0.0)[0] == 200
+    with pytest.raises(UsageError):
+        MasterEndpoint(MASTER, first_command_id=256)

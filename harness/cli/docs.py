@@ -8,7 +8,7 @@ from typing import Any
 
 from ionotrail.harness.cli.common import UserError
 
-DOCUMENTS = ("docs/wire.md", "docs/delivery.md", "docs/scenario.md", "docs/link.md")
+DOCUMENTS = ("docs/wire.md", "docs/delivery.md", "docs/scenario.md", "docs/link.md", "docs/modem.md")
 
 
 def add_parser(commands: Any) -> None:
@@ -19,7 +19,7 @@ def add_parser(commands: Any) -> None:
             "Rewrite the generated tables of docs/wire.md (frame layouts, from the format\n"
             "declarations), docs/delivery.md (link limits, from terminal/limits.py),\n"
             "docs/scenario.md (scenario keys, from harness/channel/scenario.py) and\n"
-            "docs/link.md (the link's transition table, from terminal/link/terminal.py)."
+            "docs/link.md (the link's transition table, from terminal/link/table.py)."
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )

@@ -38,8 +38,6 @@ from ionotrail.terminal.link.terminal import Arrival
 from ionotrail.terminal.ports import Port
 from ionotrail.terminal.wire.crc import crc32c
 
-DEFAULT_PROBE_INTERVAL = DEFAULT_LIMITS.probe_interval
-
 
 @dataclasses.dataclass(frozen=True, slots=True)
 class DeliveryRecord:
@@ -106,6 +104,7 @@ class MasterStation:
         self.replies: list[ReplyRecord] = []
         self._loop: asyncio.AbstractEventLoop | None = None
         self._timer: asyncio.TimerHandle | None = None
+        self._armed_for: float | None = None  # the endpoint deadline the loop timer stands for
 
     @property
     def counters(self) -> MasterCounters:
@@ -129,7 +128,7 @@ class MasterStation:
     async def stop(self) -> None:
         if self._timer is not None:
             self._timer.cancel()
-            self._timer = None
+            self._timer, self._armed_for = None, None
         self.port.stop_probing()
         self.port.stop_listening()
 
@@ -150,8 +149,12 @@ class MasterStation:
         self._carry_out(self.endpoint.on_frame(arrival.frame, arrival.time - self.origin))
 
     def _fire(self) -> None:
-        self._timer = None
-        self._carry_out(self.endpoint.on_timer(self._now()))
+        # The loop fired at origin + deadline; taking origin off again can round
+        # to just below the deadline, which the endpoint would take for an early
+        # call (and the timer would be armed at the same instant for ever).
+        armed_for, self._timer, self._armed_for = self._armed_for, None, None
+        now = self._now()
+        self._carry_out(self.endpoint.on_timer(now if armed_for is None else max(now, armed_for)))
 
     def _carry_out(self, effects: list[MasterEffect]) -> None:
         for effect in effects:
@@ -174,6 +177,7 @@ class MasterStation:
                 return  # fires early, finds nothing due, and is armed again
             self._timer.cancel()
         self._timer = self._loop.call_at(when, self._fire)
+        self._armed_for = deadline
 
     def _record(self, delivery: Delivery) -> None:
         created = report_created(delivery.payload)

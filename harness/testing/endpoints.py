@@ -5,10 +5,11 @@ real sender and a fragment policy) and a
 :class:`~ionotrail.terminal.link.master.MasterEndpoint` through the same
 methods the service and the master adapter call (``on_frame``, ``on_timer``,
 ``reply``, ``command``), joined by a channel whose rules are its
-misbehaviours: probes lost or corrupted, uplink frames lost, duplicated,
-delivered out of order or corrupted, time jumps of seconds to hours, polls
-for another terminal and commands for both.  Time only moves forward, and
-every timer is served when it comes due, as the shells do.
+misbehaviours: probes lost, corrupted or delivered late (an older probe,
+with its older acknowledgement, after newer ones), uplink frames lost,
+duplicated, delivered out of order or corrupted, time jumps of seconds to
+hours, polls for another terminal and commands for both.  Time only moves
+forward; timers are served when they come due, or late (a busy shell).
 
 After every step the invariants hold:
 
@@ -29,6 +30,7 @@ message must be delivered exactly once.
 
 from __future__ import annotations
 
+from collections import deque
 from collections.abc import Callable
 
 from hypothesis import event
@@ -38,7 +40,7 @@ from ionotrail.terminal.delivery.rangeset import RangeSet
 from ionotrail.terminal.delivery.sender import Sender
 from ionotrail.terminal.errors import DecodeError
 from ionotrail.terminal.limits import Limits
-from ionotrail.terminal.link.master import Delivered, MasterEffect, MasterEndpoint
+from ionotrail.terminal.link.master import Delivered, MasterEffect, MasterEndpoint, ProbeChanged
 from ionotrail.terminal.link.policy import Adaptive, Fixed, FragmentPolicy, StopAndWait
 from ionotrail.terminal.link.terminal import Arrival, CommandArrived, Duplex, Effect, Link, Transmit
 from ionotrail.terminal.wire import Fragment, Probe, Reply, ReplyStatus, decode, encode
@@ -71,6 +73,7 @@ class EndpointsMachine(RuleBasedStateMachine):
         self.uplink: list[tuple[float, bytes]] = []  # (air end, frame) in flight
         self.silenced = False
         self.serial = 0
+        self.old_probes: deque[bytes] = deque(maxlen=8)  # probes the master sent before its current one
 
     @initialize(
         policy=st.sampled_from(sorted(POLICIES)),
@@ -144,9 +147,23 @@ class EndpointsMachine(RuleBasedStateMachine):
             frame = _flip(frame, bit)
         self._master_effects(self.master.on_frame(frame, self.now))
 
+    @rule(age=st.integers(0, 7), gap=st.floats(0.0, 0.3))
+    def late_probe(self, age: int, gap: float) -> None:
+        """An older probe, delayed on its way, arrives after newer ones."""
+        self.advance(self.now + gap)
+        if self.old_probes:
+            self._hear(self.old_probes[-1 - age % len(self.old_probes)])
+
     @rule(seconds=st.sampled_from([0.01, 0.1, 0.3, 5.0, 120.0, 3600.0]))
     def time_passes(self, seconds: float) -> None:
         self.advance(self.now + seconds)
+
+    @rule(delay=st.sampled_from([0.001, 0.05, 0.3, 2.0]))
+    def busy_shell(self, delay: float) -> None:
+        """The shell serves the next due timer late, at ``delay`` after it came due."""
+        due = [d for d in (self.link.deadline, self.master.deadline) if d is not None]
+        if due:
+            self.advance(max(self.now, min(due) + delay), late=True)
 
     @rule()
     def link_timer(self) -> None:
@@ -155,13 +172,14 @@ class EndpointsMachine(RuleBasedStateMachine):
 
     # --- the shells' part: serve every timer when due ------------------------------------
 
-    def advance(self, until: float) -> None:
-        """Move time to ``until``, serving every timer that comes due on the way, in order."""
+    def advance(self, until: float, *, late: bool = False) -> None:
+        """Move time to ``until``, serving every timer that comes due on the way, in
+        order, each when it comes due (or, ``late``, all of them at ``until``)."""
         while True:
             due = [d for d in (self.link.deadline, self.master.deadline) if d is not None and d <= until]
             if not due:
                 break
-            self.now = max(self.now, min(due))
+            self.now = max(self.now, until if late else min(due))
             if self.link.deadline is not None and self.link.deadline <= self.now:
                 self._link_effects(self.link.on_timer(self.now))
                 assert self.link.deadline is None or self.link.deadline > self.now, "link deadline not later than now after on_timer"
@@ -215,6 +233,8 @@ class EndpointsMachine(RuleBasedStateMachine):
 
     def _master_effects(self, effects: list[MasterEffect]) -> None:
         for effect in effects:
+            if isinstance(effect, ProbeChanged):
+                self.old_probes.append(effect.frame)
             if isinstance(effect, Delivered):
                 delivery = effect.delivery
                 assert delivery.message_id not in self.delivered, f"message {delivery.message_id} delivered twice"

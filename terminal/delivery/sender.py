@@ -247,22 +247,37 @@ class Sender:
         """
         if max_payload < 1:
             raise UsageError(f"max_payload must be at least 1 byte, not {max_payload}")
-        take_most = min(max_payload, self.limits.max_fragment_payload)
+        choice = self._choose(min(max_payload, self.limits.max_fragment_payload))
+        if choice is None:
+            return None
+        message, start, take = choice
+        fragment = self._track(message, start, take, now + (take + FRAGMENT_OVERHEAD) * seconds_per_byte)
+        if start + take == len(message.sealed) and message.acked.contains(start, start + take):
+            # A solicitation: the byte is already acknowledged, so it is not "sent,
+            # unconfirmed", or a later acknowledgement that forgets it would leave it
+            # never sent again.
+            self.counters.solicitations += 1
+            message.sent.discard(start, start + take)
+        return fragment
+
+    def can_send(self) -> bool:
+        """Whether :meth:`next_fragment` would give a fragment now (changes nothing)."""
+        return self._choose(1) is not None
+
+    def _choose(self, take_most: int) -> tuple[_Outgoing, int, int] | None:
+        """The selection, without side effects: (message, start, length) of the
+        next fragment, or None.  Bytes owed and not in flight go first, most
+        important message first; then the one-byte solicitation of a message
+        whose every byte is held but whose verdict has not come."""
         eligible = self._eligible()
         for message in eligible:
             for start, end in self._owed(message):
                 for gap_start, gap_end in message.sent.gaps(start, end):
-                    take = min(gap_end - gap_start, take_most)
-                    return self._track(message, gap_start, take, now + (take + FRAGMENT_OVERHEAD) * seconds_per_byte)
+                    return message, gap_start, min(gap_end - gap_start, take_most)
         for message in eligible:
             size = len(message.sealed)
             if message.acked.contains(0, size) and not message.in_flight:
-                self.counters.solicitations += 1
-                fragment = self._track(message, size - 1, 1, now + (1 + FRAGMENT_OVERHEAD) * seconds_per_byte)
-                # The byte is already acknowledged: it is not "sent, unconfirmed", or a
-                # later acknowledgement that forgets it would leave it never sent again.
-                message.sent.discard(size - 1, size)
-                return fragment
+                return message, size - 1, 1
         return None
 
     def _track(self, message: _Outgoing, start: int, take: int, air_end: float) -> Fragment:

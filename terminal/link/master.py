@@ -7,14 +7,21 @@ runner share one implementation:
 * **acknowledgements.**  Every fragment that changes what the master holds
   of a message (or repeats a finished one) gives that message *news*.  The
   probe carries the acknowledgement of one message at a time: news goes on
-  the probe at once when the probe has carried its current news for a probe
-  interval, otherwise at the next rotation, oldest news first, so every
+  the probe at once when the probe has carried its current message for a
+  probe interval, otherwise at the next rotation, oldest news first, so every
   message with news is announced within a probe interval per message ahead of
-  it.  News for the message already on the probe replaces it at once.
+  it.  Fresher news for the message already on the probe replaces it at once,
+  without restarting that message's interval.
 * **commands.**  :meth:`MasterEndpoint.command` queues a command for a
-  terminal and allocates its 8-bit id (per terminal, in order).  The oldest
-  queued command is put on the probes, polling its terminal (other terminals
-  keep quiet), until the terminal's reply arrives; then the next.
+  terminal and allocates its 8-bit id (per terminal, in order, from
+  ``first_command_id``).  The oldest queued command is put on the probes,
+  polling its terminal (other terminals keep quiet), until the terminal's
+  reply arrives; then the next.  A command unanswered after ``command_turn``
+  yields: it goes to the back of the queue and for as long again nobody is
+  polled, so one silent terminal cannot keep the others quiet.  The ids are
+  not kept across a restart of the master: a restarted master must be given
+  a ``first_command_id`` past the ids it used, or a terminal's command window
+  takes its first new command for a repeat of an old one.
 * **reassembly** of every terminal's messages, with a duplicate window per
   terminal (:class:`~ionotrail.terminal.delivery.reassembly.Reassembler`), and
   its deadline: a half-built message expires ``reassembly_lifetime`` after its
@@ -35,10 +42,9 @@ from typing import NamedTuple
 from ionotrail.terminal.delivery.reassembly import Delivery, Reassembler
 from ionotrail.terminal.errors import DecodeError, Reason, UsageError
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.link.commands import ID_SPACE as COMMAND_ID_SPACE
 from ionotrail.terminal.link.timer import Purpose, Timer, due_at
 from ionotrail.terminal.wire import AckBlock, CommandBlock, Fragment, Probe, Reply, decode, encode
-
-COMMAND_ID_SPACE = 256
 
 
 class ProbeChanged(NamedTuple):
@@ -91,7 +97,7 @@ class _Pending(NamedTuple):
 class MasterEndpoint:
     """The master's side of the burst link, for any number of terminals."""
 
-    def __init__(self, address: int, *, limits: Limits = DEFAULT_LIMITS) -> None:
+    def __init__(self, address: int, *, limits: Limits = DEFAULT_LIMITS, first_command_id: int = 0) -> None:
         Probe(address, 0)  # validates the address
         self.address = address
         self.limits = limits
@@ -104,7 +110,13 @@ class MasterEndpoint:
         self._ack_since = -float("inf")  # when the probe began carrying self._ack
         self._news: OrderedDict[tuple[int, int], AckBlock] = OrderedDict()  # (terminal, message id) -> latest
         self._commands: deque[_Pending] = deque()
+        if not isinstance(first_command_id, int) or not 0 <= first_command_id < COMMAND_ID_SPACE:
+            raise UsageError(f"first_command_id={first_command_id!r} must be an integer from 0 to {COMMAND_ID_SPACE - 1}")
+        self._first_command_id = first_command_id
         self._next_command_id: dict[int, int] = {}
+        self._polling = False  # the head command is on the probes
+        self._aired: set[tuple[int, int]] = set()  # (terminal, id) of queued commands that have had a turn
+        self._turn_ends = float("inf")  # when the head command's turn ends, or the rest after one
         self.probe = self._encode_probe()
         """The probe frame the master transmits now."""
 
@@ -120,7 +132,7 @@ class MasterEndpoint:
     @property
     def poll(self) -> int | None:
         """The terminal the probes poll (None: any terminal may answer)."""
-        return self._commands[0].terminal if self._commands else None
+        return self._commands[0].terminal if self._polling else None
 
     # --- what the operator asks --------------------------------------------------------
 
@@ -129,14 +141,15 @@ class MasterEndpoint:
         probe when it goes on the air at once)."""
         if len(self._commands) >= self.limits.max_queued_commands:
             raise UsageError(f"the master already holds {self.limits.max_queued_commands} unanswered commands")
-        command_id = self._next_command_id.get(terminal, 0)
+        command_id = self._next_command_id.get(terminal, self._first_command_id)
         block = CommandBlock(command_id, opcode, arguments)  # validates opcode and arguments
         Probe(self.address, 0, poll=terminal)  # validates the address
         self._next_command_id[terminal] = (command_id + 1) % COMMAND_ID_SPACE
         self._commands.append(_Pending(terminal, block))
         effects: list[MasterEffect] = []
         if len(self._commands) == 1:
-            self._probe_changed(effects)
+            self._start_turn(now, effects)
+        self._arm(now)
         return command_id, effects
 
     # --- inputs ------------------------------------------------------------------------
@@ -167,6 +180,14 @@ class MasterEndpoint:
         self.reassembler.expire(now)
         if self._news and now >= self._ack_since + self.limits.probe_interval:
             self._announce(now, effects)
+        if self._commands and now >= self._turn_ends:
+            if self._polling:  # the turn is over: to the back of the queue, and rest
+                self._commands.rotate(-1)
+                self._polling = False
+                self._turn_ends = now + self.limits.command_turn
+                self._probe_changed(effects)
+            else:
+                self._start_turn(now, effects)
         self._arm(now)
         return effects
 
@@ -181,9 +202,10 @@ class MasterEndpoint:
         ack = reception.ack
         key = (ack.terminal, ack.message_id)
         if self._ack is not None and (self._ack.terminal, self._ack.message_id) == key:
-            if ack != self._ack:  # fresher news for the message on the probe: at once
+            if ack != self._ack:  # fresher news for the message on the probe: at once, same interval
                 self._news.pop(key, None)
-                self._put_on_probe(ack, now, effects)
+                self._ack = ack
+                self._probe_changed(effects)
             return
         if ack == self._news.get(key):
             return
@@ -206,13 +228,31 @@ class MasterEndpoint:
     # --- commands ----------------------------------------------------------------------
 
     def _reply(self, reply: Reply, now: float, effects: list[MasterEffect]) -> None:
-        pending = self._commands[0] if self._commands else None
-        if pending is None or pending.terminal != reply.terminal or pending.block.command_id != reply.command_id:
-            self.counters.stray_replies += 1  # a repeat of an answered reply, or not ours
+        """A reply answers the unanswered command it names (one that had its turn,
+        possibly some turns ago); anything else is a repeat or not ours."""
+        key = (reply.terminal, reply.command_id)
+        position = next((k for k, p in enumerate(self._commands) if (p.terminal, p.block.command_id) == key), None)
+        if position is None or key not in self._aired:
+            self.counters.stray_replies += 1
             return
         self.counters.replies += 1
-        self._commands.popleft()
+        del self._commands[position]
+        self._aired.discard(key)
         effects.append(ReplyArrived(reply.terminal, reply.command_id, int(reply.status), reply.result, now))
+        if position > 0 or not self._polling:
+            return  # the command on the air, or the rest, goes on
+        if self._commands:
+            self._start_turn(now, effects)
+        else:
+            self._polling, self._turn_ends = False, float("inf")
+            self._probe_changed(effects)
+
+    def _start_turn(self, now: float, effects: list[MasterEffect]) -> None:
+        """The head command goes on the probes, polling its terminal, for one turn."""
+        self._polling = True
+        self._turn_ends = now + self.limits.command_turn
+        head = self._commands[0]
+        self._aired.add((head.terminal, head.block.command_id))
         self._probe_changed(effects)
 
     # --- the probe and the timer -------------------------------------------------------
@@ -224,14 +264,17 @@ class MasterEndpoint:
         effects.append(ProbeChanged(self.probe))
 
     def _encode_probe(self) -> bytes:
-        pending = self._commands[0] if self._commands else None
+        pending = self._commands[0] if self._polling else None
         if pending is None:
             return encode(Probe(self.address, self._sequence, ack=self._ack))
         return encode(Probe(self.address, self._sequence, poll=pending.terminal, ack=self._ack, command=pending.block))
 
     def _arm(self, now: float) -> None:
-        """One timer: the earlier of the next news rotation and the reassembly deadline."""
+        """One timer: the earliest of the next news rotation, the end of a command's
+        turn (or of the rest after one) and the reassembly deadline."""
         due = [t for t in (self.reassembler.next_deadline(),) if t is not None]
         if self._news:
             due.append(max(self._ack_since + self.limits.probe_interval, now))
+        if self._commands:
+            due.append(self._turn_ends)
         self.timer = Timer(Purpose.MASTER, min(due)) if due else None

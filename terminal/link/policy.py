@@ -26,6 +26,11 @@ from ionotrail.terminal.limits import FRAGMENT_OVERHEAD_BYTES, MAX_FRAGMENT_PAYL
 
 OVERHEAD_BITS = 8 * FRAGMENT_OVERHEAD_BYTES
 MIN_PAYLOAD = 8  # bytes; below this a fragment is mostly header (common practice, no source)
+LEARNING_GAIN = 1 / 8
+"""How far each burst's fitted decay moves the path's typical one: an
+exponentially weighted average with the gain RFC 6298 (s2) gives TCP's
+smoothed round-trip time, alpha = 1/8, borrowed for the same job of
+following a slowly changing path without chasing every sample."""
 DB_PER_NEPER = 10 / math.log(10)  # a power decaying as exp(-t/tau) falls 4.343/tau dB per second
 TAU_RANGE_S = (0.03, 30.0)  # estimates are clamped to plausible trail lifetimes
 MAX_SNR_SAMPLES = 8  # probes kept per burst for the slope fit
@@ -164,7 +169,7 @@ class Adaptive:
     def burst_started(self, now: float) -> None:
         self._refit()
         if self._tau_s is not None:  # learn the path's typical decay, slowly
-            self.typical_tau_s += (self._tau_s - self.typical_tau_s) / 8
+            self.typical_tau_s += (self._tau_s - self.typical_tau_s) * LEARNING_GAIN
         self._samples.clear()
         self._tau_s = None
         self._fitted = True

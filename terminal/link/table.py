@@ -18,7 +18,6 @@ silence timer only in WAITING.  Probes can arrive in every state.
 from __future__ import annotations
 
 import enum
-from collections.abc import Callable
 
 from ionotrail.terminal.errors import ProtocolError
 from ionotrail.terminal.link.timer import Purpose
@@ -107,22 +106,21 @@ def classify_probe(*, ours: bool, ready: bool) -> Input:
     return Input.PROBE_READY if ready else Input.PROBE_EMPTY
 
 
-def classify_timer(purpose: Purpose, *, silent: bool, ours: bool, hold: bool, ready: Callable[[], bool]) -> Input:
+def classify_timer(purpose: Purpose, *, silent: bool, ours: bool, hold: bool, ready: bool) -> Input:
     """A timer of ``purpose`` came due.
 
     ``silent``: no probe for ``burst_silence``.  ``ours``: the last probe heard
     let us transmit.  ``hold``: after each frame the link must wait for a
-    probe (half duplex, or a stop-and-wait policy).  ``ready`` is asked last,
-    and only when a frame could go now: it prepares the next frame, so
-    "something to send" is a fact, not a guess.
+    probe (half duplex, or a stop-and-wait policy).  ``ready``: a frame could
+    be built now (the sender's own selection says so, not a guess).
     """
     if silent:
         return Input.SILENT
     if purpose is Purpose.TURNAROUND:
-        return Input.GO_READY if ours and ready() else Input.GO_EMPTY
+        return Input.GO_READY if ours and ready else Input.GO_EMPTY
     if purpose is Purpose.AIR_END:
         if hold:
             return Input.SENT_HOLD
-        return Input.SENT_READY if ours and ready() else Input.SENT_EMPTY
+        return Input.SENT_READY if ours and ready else Input.SENT_EMPTY
     # The silence timer is due exactly when silence begins; anything else is not a terminal timer.
     raise ProtocolError(f"the link's {purpose.value} timer came due while the path was not silent")

@@ -140,10 +140,8 @@ class Link:
         """What the link waits for and when (None: only frames matter)."""
         self._last_probe = -float("inf")
         self._last_probe_ours = False
-        self._turnaround_end = -float("inf")
         self._air_end = -float("inf")  # when the last transmitted frame left the antenna
         self._burst_frames = 0
-        self._next: bytes | None = None  # the frame a timer input found ready
         self._last_raw: bytes | None = None  # the last frame decoded, and what it decoded to
         self._last_frame: Frame | None = None
         self.commands = CommandMemory(limits)
@@ -215,7 +213,7 @@ class Link:
             silent=now >= self._silence_since() + self.limits.burst_silence,
             ours=self._last_probe_ours,
             hold=self.duplex is Duplex.HALF or self.policy.waits_for_ack,
-            ready=lambda: self._ready(now),
+            ready=self._ready(),
         )
         self._apply(event, now, effects)
         return effects
@@ -240,12 +238,9 @@ class Link:
             return False  # within a burst; a new burst presumes the last one's fragment lost
         return self.sender.pending > 0
 
-    def _ready(self, now: float) -> bool:
-        """Prepare the next frame; True when there is one."""
-        if not self._has_something():
-            return False
-        self._next = self._prepare(now)
-        return self._next is not None
+    def _ready(self) -> bool:
+        """A frame could be built now: a reply waits, or the sender would give a fragment."""
+        return bool(self.commands.queued) or (self._has_something() and self.sender.can_send())
 
     def _prepare(self, now: float) -> bytes | None:
         reply = self.commands.next_reply()
@@ -275,15 +270,13 @@ class Link:
             self.policy.burst_started(now)
             self.policy.probe_heard(now, snr_db)
             effects.append(BurstStarted(now, snr_db))
-            self._turnaround_end = now + limits.turnaround
-            self.timer = Timer(Purpose.TURNAROUND, self._turnaround_end)
+            self.timer = Timer(Purpose.TURNAROUND, now + limits.turnaround)
         elif action is Action.ARM_TURNAROUND:
-            self._turnaround_end = now + limits.turnaround
-            self.timer = Timer(Purpose.TURNAROUND, self._turnaround_end)
+            self.timer = Timer(Purpose.TURNAROUND, now + limits.turnaround)
         elif action is Action.KEEP_TURNAROUND:
-            self.timer = Timer(Purpose.TURNAROUND, self._turnaround_end)
+            self.timer = self._running(Purpose.TURNAROUND)
         elif action is Action.TRANSMIT:
-            frame, self._next = self._next, None
+            frame = self._prepare(now)
             if frame is None:
                 raise ProtocolError(f"the link's table transmits on {event.name}, an input with no frame ready")
             air_end = self._air_end = now + self._airtime(len(frame))
@@ -292,13 +285,18 @@ class Link:
             effects.append(Transmit(frame, air_end))
             self.timer = Timer(Purpose.AIR_END, air_end)
         elif action is Action.KEEP_AIR_END:
-            self.timer = Timer(Purpose.AIR_END, self._air_end)
+            self.timer = self._running(Purpose.AIR_END)
         elif action is Action.WAIT:
             self.timer = Timer(Purpose.SILENCE, self._silence_since() + limits.burst_silence)
         else:  # Action.END_BURST
             self.timer = None
             effects.append(BurstEnded(now, self._burst_frames))
-        self._next = None  # a frame prepared for an input the table did not transmit on is not kept
+
+    def _running(self, purpose: Purpose) -> Timer:
+        """The timer of ``purpose`` that runs now, which the table keeps."""
+        if self.timer is None or self.timer.purpose is not purpose:
+            raise ProtocolError(f"the link's table keeps a {purpose.value} timer in state {self.state.name}, where none runs")
+        return self.timer
 
     def _silence_since(self) -> float:
         """Since when the terminal has heard no probe: the last probe, or in half
