@@ -11,13 +11,20 @@ from __future__ import annotations
 import binascii
 import math
 import random
+from pathlib import Path
 from typing import Any
 
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 from ionotrail.terminal.errors import DecodeError, Reason, UsageError
-from ionotrail.terminal.limits import MAX_MODEM_TIME_US, MAX_RECORD_FRAME_BYTES, MAX_SERIAL_PAYLOAD
+from ionotrail.terminal.limits import (
+    MAX_MODEM_TIME_US,
+    MAX_RECORD_FRAME_BYTES,
+    MAX_RECORD_METADATA_BYTES,
+    MAX_SERIAL_PAYLOAD,
+    cobs_encoded_max,
+)
 from ionotrail.terminal.modem import records
 from ionotrail.terminal.modem.dialects import (
     DIALECTS,
@@ -350,3 +357,21 @@ def test_decode_never_raises_outside_its_family_on_seeded_noise() -> None:
             decode_record_body(data)
         except DecodeError:
             pass
+
+
+# --- what docs/modem.md and docs/wire.md state in prose -------------------------------------
+
+DOCS = Path(__file__).resolve().parent.parent / "docs"
+
+
+def test_sizes_and_example_stated_in_prose() -> None:
+    modem, wire = (" ".join((DOCS / name).read_text(encoding="utf-8").split()) for name in ("modem.md", "wire.md"))
+    encoded = cobs_encoded_max(MAX_SERIAL_PAYLOAD)
+    frame = MAX_RECORD_FRAME_BYTES
+    assert f"The largest record is {MAX_SERIAL_PAYLOAD} bytes (a received record with a {frame}-byte frame)" in modem
+    assert f"at most {encoded} bytes once encoded" in modem
+    assert f"the modem's {MAX_RECORD_METADATA_BYTES} bytes of metadata" in wire
+    assert f"a record is at most {MAX_SERIAL_PAYLOAD} bytes, at most {encoded} encoded" in wire
+    body = encode_record_body(Transmit(0x0102, bytes.fromhex("1200a1")))
+    assert f"Record: `{body.hex(' ')}`" in modem
+    assert f"on the line: `{encode_record(body).hex(' ')}`" in modem

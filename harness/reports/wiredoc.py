@@ -3,7 +3,8 @@
 Documents keep their prose by hand; each table sits between
 ``<!-- generated: NAME -->`` and ``<!-- end generated -->`` and is rewritten
 from ``ionotrail.terminal.wire.formats`` (frame layouts), the frame-type
-registry ``ionotrail.terminal.wire.registry``, or ``ionotrail.terminal.limits`` (link
+registry ``ionotrail.terminal.wire.registry``, ``ionotrail.terminal.modem``
+(host-modem records, line errors), or ``ionotrail.terminal.limits`` (link
 limits and the reasons for their defaults).  A test fails when a document is
 stale; run ``ionotrail docs`` to refresh them.
 """
@@ -18,6 +19,7 @@ import re
 
 import construct as cs
 from ionotrail.terminal import limits
+from ionotrail.terminal.modem import dialects, records
 from ionotrail.terminal.wire import formats, layout
 from ionotrail.terminal.wire.formats import FrameType
 from ionotrail.terminal.wire.registry import FRAME_KINDS
@@ -26,7 +28,7 @@ SECTIONS: dict[str, cs.Construct] = {kind.name: kind.declaration for kind in FRA
     "ack-block": formats.ACK_BLOCK,
     "command-block": formats.COMMAND_BLOCK,
     "sealed-message": formats.SEALED_MESSAGE,
-}
+} | {f"record-{kind.name.replace('_', '-')}": kind.declaration for kind in records.RECORD_KINDS.values()}
 
 _BLOCK_NAMES = {id(formats.ACK_BLOCK): "ack block", id(formats.COMMAND_BLOCK): "command block"}
 _MARK = re.compile(r"(<!-- generated: ([a-z-]+) -->\n).*?(<!-- end generated -->)", re.DOTALL)
@@ -105,6 +107,50 @@ def frame_types_table() -> str:
     return "\n".join(lines) + "\n"
 
 
+def record_types_table() -> str:
+    """Markdown table of the host-modem record types, then the unassigned type values."""
+    lines = ["| type | value | direction | purpose |", "| --- | --- | --- | --- |"]
+    lines += [f"| {k.name} | {int(t)} | {k.direction} | {k.purpose} |" for t, k in records.RECORD_KINDS.items()]
+    width = layout.bit_members(records.HEAD, "the record head")["type"].width
+    free = [str(value) for value in range(1 << width) if value not in set(records.RecordType)]
+    lines += ["", f"Types {', '.join(free)} are unassigned; a record using them is refused as `unknown_type`."]
+    return "\n".join(lines) + "\n"
+
+
+MODEM_LIMITS = (
+    "RECORD_VERSION", "MAX_RECORD_FRAME_BYTES", "MAX_RECORD_METADATA_BYTES", "MAX_SERIAL_PAYLOAD",
+    "MAX_MODEM_TIME_US", "MAX_KISS_FRAME_BYTES", "MODEM_CLOCK_WINDOW", "MODEM_CLOCK_HORIZON_S",
+    "MODEM_CLOCK_MIN_SPAN_S", "MAX_MODEM_DRIFT",
+)
+
+
+def modem_limits_table() -> str:
+    """Markdown table of the host-modem bounds in terminal/limits.py: value and why (its docstring)."""
+    body = ast.parse(inspect.getsource(limits)).body
+    reasons: dict[str, str] = {}
+    for node, after in itertools.pairwise(body):
+        if (
+            isinstance(node, ast.Assign)
+            and isinstance(node.targets[0], ast.Name)
+            and isinstance(after, ast.Expr)
+            and isinstance(after.value, ast.Constant)
+        ):
+            reasons[node.targets[0].id] = " ".join(str(after.value.value).split())
+    lines = ["| bound | value | why |", "| --- | --- | --- |"]
+    lines += [f"| `{name}` | {getattr(limits, name)} | {reasons.get(name, '')} |" for name in MODEM_LIMITS]
+    return "\n".join(lines) + "\n"
+
+
+def line_errors_table() -> str:
+    """Markdown table of the line errors a record stream returns and counts, and their answers."""
+    lines = ["| reason | when | answer |", "| --- | --- | --- |"]
+    for reason, meaning in dialects.LINE_ERROR_MEANINGS.items():
+        code = dialects.ANSWER_CODES.get(reason)
+        answer = f"error record, code {int(code)} ({code.name.lower()})" if code is not None else "none: counted only"
+        lines.append(f"| `{reason}` | {meaning} | {answer} |")
+    return "\n".join(lines) + "\n"
+
+
 def limits_table() -> str:
     """Markdown table of every link limit: name, default, and why (its docstring)."""
     tree = ast.parse(inspect.getsource(limits.Limits))
@@ -176,6 +222,9 @@ def _scenario_table() -> str:
 
 GENERATORS = {name: (lambda con=con: table(con)) for name, con in SECTIONS.items()} | {
     "frame-types": frame_types_table,
+    "record-types": record_types_table,
+    "modem-limits": modem_limits_table,
+    "line-errors": line_errors_table,
     "limits": limits_table,
     "scenario": _scenario_table,
     "link-table": link_table,

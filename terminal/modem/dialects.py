@@ -60,9 +60,18 @@ class LineError(NamedTuple):
     """True when the receiving side should answer with an :class:`ErrorAnswer`."""
 
 
-LINE_ERROR_REASONS = (
-    "bad_crc", "unknown_type", "malformed", "unsupported_version", "bad_line_code", "overrun", "wrong_direction",
-)
+LINE_ERROR_MEANINGS = {
+    "bad_crc": "the record's CRC-16 does not match its bytes",
+    "unknown_type": "the record type is not assigned",
+    "malformed": "a field is cut short, bytes are left over, or a value is out of range",
+    "unsupported_version": "the record format version is not one this side reads",
+    "bad_line_code": "the bytes between two delimiters are not valid COBS (KISS: a broken escape)",
+    "overrun": "more bytes than the largest record arrived without a delimiter; dropped up to the next",
+    "wrong_direction": "a valid record that only the other side accepts (a modem record sent to a modem)",
+}
+"""What each :attr:`LineError.reason` means."""
+
+LINE_ERROR_REASONS = tuple(LINE_ERROR_MEANINGS)
 """Every :attr:`LineError.reason`, each also a key of :attr:`RecordStream.counters`."""
 
 ANSWER_CODES: dict[str, ErrorCode] = {

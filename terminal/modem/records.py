@@ -139,7 +139,7 @@ UNKNOWN_U16 = (1 << 16) - 1
 
 _HOST_ID = Int16ub * "the host's number for this transmission; the transmitted record echoes it"
 _FRAME = GreedyBytes * f"the air frame, 1 to {MAX_RECORD_FRAME_BYTES} bytes; the record's length gives the count"
-_MODEM_TIME = Int64ub * "modem clock, microseconds since the modem started (at most 2^50)"
+_MODEM_TIME = Int64ub
 _RESERVED_7 = Const(0, BitsInteger(7)) * "zero"
 
 TRANSMIT = _record(HEAD, "host_id" / _HOST_ID, "frame" / _FRAME)
@@ -185,7 +185,7 @@ TRANSMITTED = _record(
 
 RECEIVED = _record(
     HEAD,
-    "modem_time_us" / _MODEM_TIME * "when the frame's last bit arrived, on the modem's clock",
+    "modem_time_us" / _MODEM_TIME * "when the frame's last bit arrived: modem clock, microseconds since it started",
     "snr_cdb" / Int16sb * "signal-to-noise ratio, hundredths of a dB; -32768 not measured",
     "offset_dhz" / Int32sb * "carrier frequency offset, tenths of a hertz; -2^31 not measured",
     "frame" / _FRAME,
@@ -194,7 +194,7 @@ RECEIVED = _record(
 
 STATUS = _record(
     HEAD,
-    "modem_time_us" / _MODEM_TIME,
+    "modem_time_us" / _MODEM_TIME * "when measured: modem clock, microseconds since it started",
     "temperature_dc" / Int16sb * "modem temperature, tenths of a degree Celsius; -32768 not measured",
     "supply_mv" / Int16ub * "supply voltage, millivolts; 65535 not measured",
     "pa" / Int8ub * "power amplifier: 0 off, 1 on, 2 fault",
@@ -204,7 +204,7 @@ STATUS = _record(
 
 RESET = _record(
     HEAD,
-    "modem_time_us" / _MODEM_TIME * "modem clock after the restart",
+    "modem_time_us" / _MODEM_TIME * "modem clock after the restart, microseconds (small: it has just started)",
     "reason" / Int8ub * "0 power on, 1 watchdog, 2 brown-out, 3 commanded, 4 other",
 )
 """Modem to host, unsolicited: the modem restarted and lost its settings."""
