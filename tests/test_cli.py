@@ -10,6 +10,7 @@ import sys
 import pytest
 from ionotrail.harness.cli.decode import demo_capture
 from ionotrail.harness.cli.main import main
+from ionotrail.terminal.modem.records import Transmit, encode_record_body
 from ionotrail.terminal.wire import Fragment, decode, encode, unseal_message
 from ionotrail.terminal.wire.serial_framing import encode_record
 
@@ -66,9 +67,11 @@ def test_missing_file_is_a_usage_error() -> None:
 
 def test_decode_cobs_capture(tmp_path: object, capsys: pytest.CaptureFixture[str]) -> None:
     capture = tmp_path / "line.bin"  # type: ignore[operator]
-    capture.write_bytes(b"\x00" + encode_record(encode(Fragment(1, 2, 3, 0, b"ok"))))
+    record = encode_record_body(Transmit(7, encode(Fragment(1, 2, 3, 0, b"ok"))))  # docs/modem.md
+    capture.write_bytes(b"\x00" + encode_record(record))
     assert main(["decode", "--cobs", "--file", str(capture)]) == 0
-    assert "fragment frame" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert "transmit record" in out and "fragment frame" in out
 
 
 def test_help_carries_the_safety_note() -> None:

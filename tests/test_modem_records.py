@@ -9,6 +9,7 @@ byte at a time and with trailing bytes (the h11 habit, docs/guide style).
 from __future__ import annotations
 
 import binascii
+import json
 import math
 import random
 from pathlib import Path
@@ -375,3 +376,34 @@ def test_sizes_and_example_stated_in_prose() -> None:
     body = encode_record_body(Transmit(0x0102, bytes.fromhex("1200a1")))
     assert f"Record: `{body.hex(' ')}`" in modem
     assert f"on the line: `{encode_record(body).hex(' ')}`" in modem
+
+
+# --- ionotrail decode --cobs reads records ---------------------------------------------------
+
+
+def test_decode_cobs_prints_records_and_their_frames(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from ionotrail.harness.cli.main import main
+    from ionotrail.terminal.wire import Fragment, encode
+
+    frame = encode(Fragment(1, 2, 3, 0, b"ok"))
+    ours = dialect("ionotrail")
+    capture = tmp_path / "line.bin"
+    capture.write_bytes(ours.encode(Received(1.5, 8.25, math.nan, frame)) + ours.encode(Status(2.0, 21.5, 12.1, PaState.ON, math.nan)))
+    assert main(["decode", "--cobs", "--file", str(capture)]) == 0
+    out = capsys.readouterr().out
+    assert "#1  received record" in out and "offset_hz     not measured" in out
+    assert "#1.frame  fragment frame" in out and "#2  status record" in out and "pa             on" in out
+    assert main(["decode", "--cobs", "--json", "--file", str(capture)]) == 0
+    lines = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    assert [line.get("record") or line.get("type") for line in lines] == ["received", "fragment", "status"]
+    assert lines[0]["fields"]["offset_hz"] is None and lines[0]["fields"]["frame"] == frame.hex()
+
+
+def test_decode_cobs_refused_records_exit_1(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from ionotrail.harness.cli.main import main
+
+    capture = tmp_path / "line.bin"
+    capture.write_bytes(encode_record(bytes.fromhex("13 0000")) + encode_record(sealed(bytes.fromhex("19 00"))))
+    assert main(["decode", "--cobs", "--file", str(capture)]) == 1
+    err = capsys.readouterr().err
+    assert "#1: error: bad_crc: record" in err and "#2: error: truncated: record" in err

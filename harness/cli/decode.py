@@ -4,14 +4,16 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import sys
 from collections.abc import Iterator
 from importlib import resources
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 from ionotrail.harness.cli.common import SAFETY, UserError
 from ionotrail.terminal.errors import CrcMismatch, DecodeError
+from ionotrail.terminal.modem.records import Record, decode_record_body, record_type_of
 from ionotrail.terminal.wire import Frame, kind_of
 from ionotrail.terminal.wire.codec import decode
 from ionotrail.terminal.wire.serial_framing import Deframer
@@ -25,7 +27,8 @@ def add_parser(commands: Any) -> None:
             "Decode over-the-air frames and print every field, with the CRC status.\n"
             "Frames are hexadecimal (spaces and colons allowed), one per argument or,\n"
             "with --file, one per line ('#' starts a comment).  With --cobs, --file\n"
-            "is a raw capture of the host-modem serial line (COBS records).\n"
+            "is a raw capture of the host-modem serial line (COBS records, docs/modem.md):\n"
+            "each record's type and fields, and the air frame a record carries, decoded.\n"
             "Exit status: 0 all frames decoded, 1 some frame refused, 2 bad usage."
         ),
         epilog=SAFETY,
@@ -56,10 +59,16 @@ def _hex_frames(lines: Iterator[str], origin: str) -> Iterator[tuple[str, bytes 
             yield label, f"not a hexadecimal frame: {text[:40]!r}"
 
 
-def _cobs_frames(data: bytes, origin: str) -> Iterator[tuple[str, bytes | str]]:
+class _LineRecord(NamedTuple):
+    """The bytes of one host-modem record (COBS removed)."""
+
+    data: bytes
+
+
+def _cobs_frames(data: bytes, origin: str) -> Iterator[tuple[str, bytes | str | _LineRecord]]:
     deframer = Deframer()
     for number, record in enumerate(deframer.feed(data + b"\x00"), 1):
-        yield f"{origin}#{number}", record
+        yield f"{origin}#{number}", _LineRecord(record)
     lost = deframer.counters.bad_records + deframer.counters.overruns
     if lost:
         yield f"{origin}", f"{lost} serial records were not valid COBS or too long; skipped"
@@ -107,6 +116,21 @@ def _show(key: str, value: Any) -> str:
     return str(value)
 
 
+def _record_table(label: str, raw: bytes, record: Record) -> str:
+    name = record_type_of(record).name.lower()
+    rows = [f"{label}  {name} record, {len(raw)} bytes, CRC-16 ok"]
+    width = max((len(k) for k in record._fields), default=0)
+    for key, value in record._asdict().items():
+        if key == "frame":
+            shown = f"{len(value)} bytes, decoded below"
+        elif isinstance(value, float) and math.isnan(value):
+            shown = "not measured"
+        else:
+            shown = _show(key, value)
+        rows.append(f"  {key:<{width}}  {shown}")
+    return "\n".join(rows)
+
+
 def _describe_error(raw: bytes, exc: DecodeError) -> str:
     detail = exc.message
     if isinstance(exc, CrcMismatch):
@@ -117,7 +141,7 @@ def _describe_error(raw: bytes, exc: DecodeError) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
-    sources: list[tuple[str, bytes | str]] = []
+    sources: list[tuple[str, bytes | str | _LineRecord]] = []
     if args.demo:
         sources += _hex_frames(iter(demo_capture().splitlines()), "demo")
     for path in args.file or []:
@@ -138,6 +162,25 @@ def run(args: argparse.Namespace) -> int:
             failures += 1
             _emit_error(args, label, None, "bad_input", item)
             continue
+        if isinstance(item, _LineRecord):
+            try:
+                record = decode_record_body(item.data)
+            except DecodeError as exc:
+                failures += 1
+                _emit_error(args, label, item.data, exc.reason.value, "record: " + _describe_error(item.data, exc))
+                continue
+            if args.json:
+                print(json.dumps({
+                    "source": label, "record": record_type_of(record).name.lower(), "length": len(item.data),
+                    "crc": "ok", "fields": {k: _json_number(v) for k, v in _field_value(record).items()},
+                }))
+            else:
+                print(("" if first else "\n") + _record_table(label, item.data, record))
+                first = False
+            frame_bytes = getattr(record, "frame", None)
+            if frame_bytes is None:
+                continue
+            label, item = f"{label}.frame", frame_bytes
         try:
             frame = decode(item)
         except DecodeError as exc:
@@ -152,6 +195,11 @@ def run(args: argparse.Namespace) -> int:
             print(("" if first else "\n") + _frame_table(label, item, frame))
             first = False
     return 1 if failures else 0
+
+
+def _json_number(value: Any) -> Any:
+    """NaN (not measured) as JSON null."""
+    return None if isinstance(value, float) and math.isnan(value) else value
 
 
 def _emit_error(args: argparse.Namespace, label: str, raw: bytes | None, reason: str, message: str) -> None:
