@@ -18,12 +18,13 @@ def add_parser(commands: Any) -> None:
         description=(
             "Rewrite the generated tables of docs/wire.md (frame layouts, from the format\n"
             "declarations), docs/delivery.md (link limits, from terminal/limits.py),\n"
-            "docs/scenario.md (scenario keys, from harness/channel/scenario.py) and\n"
-            "docs/link.md (the link's transition table, from terminal/link/table.py)."
+            "docs/scenario.md (scenario keys, from harness/channel/scenario.py),\n"
+            "docs/link.md (the link's transition table, from terminal/link/table.py) and\n"
+            "docs/modem.md (host-modem records, from terminal/modem/records.py)."
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--path", action="append", help="a document to refresh (repeatable; default: all four)")
+    p.add_argument("--path", action="append", help="a document to refresh (repeatable; default: all of them)")
     p.add_argument("--check", action="store_true", help="only report whether the document is stale (exit 1 if so)")
     p.set_defaults(handler=run)
 
