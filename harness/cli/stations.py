@@ -1,0 +1,177 @@
+"""``ionotrail serve`` and ``ionotrail master``: the reference terminal, or the master,
+on a radio modem over a serial line (a device, a pseudo-terminal, socket://host:port)."""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import math
+import signal
+import sys
+from typing import IO, Any
+
+from ionotrail.harness.cli.common import SAFETY, UserError, load_scenario
+
+DIALECT_HELP = "host-modem dialect: ionotrail (default; docs/modem.md) or kiss"
+
+
+def _common(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--port", required=True, metavar="URL", help="the modem: a device path, a pseudo-terminal, socket://HOST:PORT")
+    p.add_argument("--dialect", default="ionotrail", metavar="NAME", help=DIALECT_HELP)
+    p.add_argument("--scenario", metavar="FILE", help="scenario file (TOML) for addresses, frequencies, bit rate, power; default: the demo link")
+    p.add_argument("--set", action="append", metavar="KEY=VALUE", help="override a scenario value (repeatable)")
+    p.add_argument("--seed", type=int, help="seed (overrides scenario.seed)")
+    p.add_argument("--duration", type=float, metavar="S", help="stop after S seconds (default: run until interrupted)")
+
+
+def add_parser(commands: Any) -> None:
+    p = commands.add_parser(
+        "serve",
+        help="run the reference terminal on a radio modem",
+        description=(
+            "Run the reference terminal (the demo river gauge's reports, the burst link, the\n"
+            "adaptive fragment policy) on a modem over a serial line, in real time, until\n"
+            "interrupted or --duration.  Prints a summary line at the end."
+        ),
+        epilog=SAFETY,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    _common(p)
+    p.add_argument("--policy", default="adaptive", metavar="NAME", help="fragment policy: adaptive, fixed-N or stop-and-wait")
+    p.add_argument("--every", type=float, metavar="S", help="report every S seconds (default: every 15 minutes)")
+    p.set_defaults(handler=run_serve)
+    p = commands.add_parser(
+        "master",
+        help="run the master station on a radio modem",
+        description=(
+            "Run the master station (probes, polls, acknowledgements, reassembly) on a modem\n"
+            "over a serial line, in real time, until interrupted or --duration.  Every\n"
+            "delivered message goes to --deliveries as one JSON line."
+        ),
+        epilog=SAFETY,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    _common(p)
+    p.add_argument("--deliveries", metavar="FILE.jsonl", help="write every delivered message to FILE, one JSON object a line")
+    p.set_defaults(handler=run_master)
+
+
+def _check(args: argparse.Namespace) -> Any:
+    from ionotrail.terminal.errors import UsageError
+    from ionotrail.terminal.modem.dialects import dialect
+
+    if args.duration is not None and not (math.isfinite(args.duration) and args.duration > 0):
+        raise UserError(f"--duration {args.duration:g}: expected a positive number of seconds")
+    if getattr(args, "every", None) is not None and not (math.isfinite(args.every) and args.every > 0):
+        raise UserError(f"--every {args.every:g}: expected a positive number of seconds")
+    try:
+        dialect(args.dialect)
+    except UsageError as exc:
+        raise UserError(f"--dialect {args.dialect}: {exc}") from None
+    return load_scenario(args)
+
+
+async def _until(duration: float | None) -> None:
+    """Until ``duration`` has passed, or Ctrl-C or SIGTERM (then the run still ends with its summary)."""
+    loop = asyncio.get_running_loop()
+    stop = asyncio.Event()
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        loop.add_signal_handler(sig, stop.set)
+    try:
+        await asyncio.wait_for(stop.wait(), duration)
+    except TimeoutError:
+        pass
+    finally:
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            loop.remove_signal_handler(sig)
+
+
+async def _open(port: Any, url: str) -> None:
+    from ionotrail.terminal.errors import UsageError
+
+    try:
+        await port.open()
+    except (OSError, UsageError) as exc:
+        raise UserError(f"--port {url}: cannot open: {exc}") from None
+
+
+def run_serve(args: argparse.Namespace) -> int:
+    from ionotrail.harness.demo.gauge import REPORT_INTERVAL_S
+    from ionotrail.harness.runners.stations import serial_port, terminal_station
+    from ionotrail.terminal.service import MessageAbandoned, MessageQueued
+
+    scenario = _check(args)
+    counts = {"queued": 0, "abandoned": 0}
+
+    def observe(_now: float, event: object) -> None:
+        if isinstance(event, MessageQueued):
+            counts["queued"] += 1
+        elif isinstance(event, MessageAbandoned):
+            counts["abandoned"] += 1
+
+    async def main() -> str:
+        loop = asyncio.get_running_loop()
+        port = serial_port(args.port, args.dialect, scenario, "terminal")
+        await _open(port, args.port)
+        print(f"terminal {scenario.terminal_address:#06x} on {args.port} ({args.dialect}); Ctrl-C to stop", file=sys.stderr)
+        every = args.every if args.every is not None else REPORT_INTERVAL_S
+        service = terminal_station(port, scenario, policy=args.policy, report_every_s=every, origin=loop.time(), observer=observe)
+        run = asyncio.create_task(service.run())
+        try:
+            await _until(args.duration)
+        finally:
+            service.stop()
+            await run
+            await port.close()
+        sender, c = service.link.sender.counters, port.counters
+        return (
+            f"terminal: {counts['queued']} messages queued, {sender.acknowledged} acknowledged, {service.link.sender.pending} pending, "
+            f"{counts['abandoned']} abandoned; {service.link.counters.bursts} bursts, {service.link.counters.fragments_sent} fragments; "
+            f"modem resets {c.resets}, reconnects {c.reconnects}, line errors {sum(c.line_errors.values())}"
+        )
+
+    print(_run(main()))
+    return 0
+
+
+def run_master(args: argparse.Namespace) -> int:
+    from ionotrail.harness.emulators.master import json_lines_sink
+    from ionotrail.harness.runners.stations import master_station, serial_port
+
+    scenario = _check(args)
+    out: IO[str] | None = None
+    if args.deliveries:
+        try:
+            out = open(args.deliveries, "w", encoding="utf-8")  # noqa: SIM115 - closed below, opened early so a bad path fails at once
+        except OSError as exc:
+            raise UserError(f"--deliveries {args.deliveries}: {exc.strerror}") from None
+
+    async def main() -> str:
+        loop = asyncio.get_running_loop()
+        port = serial_port(args.port, args.dialect, scenario, "master")
+        await _open(port, args.port)
+        print(f"master {scenario.master_address} on {args.port} ({args.dialect}); Ctrl-C to stop", file=sys.stderr)
+        sink = json_lines_sink(out) if out is not None else None
+        station = master_station(port, scenario, origin=loop.time(), sink=sink)
+        station.start()
+        try:
+            await _until(args.duration)
+        finally:
+            await station.stop()
+            await port.close()
+        c, m = port.counters, station.counters
+        return (
+            f"master: {m.deliveries} messages delivered, {m.fragments} fragments, {m.crc_failed} CRC failures; "
+            f"modem resets {c.resets}, reconnects {c.reconnects}, line errors {sum(c.line_errors.values())}"
+        )
+
+    try:
+        print(_run(main()))
+    finally:
+        if out is not None:
+            out.close()
+    return 0
+
+
+def _run(coroutine: Any) -> str:
+    return str(asyncio.run(coroutine))
