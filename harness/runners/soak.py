@@ -6,8 +6,9 @@ gauge reports every ``report_every_s``; after ``duration_s`` it stops
 reporting and the run waits up to ``drain_s`` for the last messages to be
 delivered.  The ledger compares what the terminal queued with what the
 master delivered: a message delivered twice is *duplicated*, one neither
-delivered nor still pending at the end (or abandoned for want of queue room)
-is *lost*.  Frames the master hears are binned by reported SNR to give the
+delivered nor still pending at the end is *lost*, and so is a reading the
+terminal abandoned for want of queue room (counted apart too, as
+``messages.abandoned``: the gauge reported faster than the channel carried).  Frames the master hears are binned by reported SNR to give the
 frame error rate against SNR.  Resident memory is read at the start and the end.
 
 :data:`SOAK_KEYS` are a contract: scripts and CI read them.
@@ -27,6 +28,7 @@ from ionotrail.harness.channel.scenario import Scenario
 from ionotrail.harness.emulators.master import DeliveryRecord, MasterStation
 from ionotrail.harness.runners.stations import master_station, serial_port, terminal_station
 from ionotrail.terminal.errors import DecodeError, Reason
+from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link.terminal import Arrival
 from ionotrail.terminal.service import MessageAbandoned, MessageQueued, ServiceEvent
 from ionotrail.terminal.wire import decode
@@ -125,6 +127,7 @@ async def soak(
     policy: str = "adaptive",
     progress: Callable[[dict[str, Any]], None] | None = None,
     progress_every_s: float = 5.0,
+    limits: Limits = DEFAULT_LIMITS,
 ) -> dict[str, Any]:
     """Run the soak and return its report (:data:`SOAK_KEYS` and more)."""
     loop = asyncio.get_running_loop()
@@ -137,7 +140,9 @@ async def soak(
     ports = (terminal_port, master_port)
     await terminal_port.open()
     await master_port.open()
-    service = terminal_station(terminal_port, scenario, policy=policy, report_every_s=report_every_s, origin=origin, observer=ledger.queued)
+    service = terminal_station(
+        terminal_port, scenario, policy=policy, report_every_s=report_every_s, origin=origin, observer=ledger.queued, limits=limits
+    )
     master: MasterStation = master_station(master_port, scenario, origin=origin, sink=ledger.delivery)
     master.start()
     station_listener = master._arrived
@@ -205,6 +210,7 @@ async def soak(
             "lost": lost,
             "duplicated": ledger.duplicated,
             "pending": len(pending),
+            "abandoned": ledger.abandoned,
         },
         "latency_s": {"p50": _percentile(ledger.latencies, 0.5), "p95": _percentile(ledger.latencies, 0.95),
                       "max": _percentile(ledger.latencies, 1.0)},

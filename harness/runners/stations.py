@@ -54,10 +54,11 @@ def terminal_station(
     report_every_s: float = REPORT_INTERVAL_S,
     origin: float,
     observer: Observer | None = None,
+    limits: Limits = DEFAULT_LIMITS,
 ) -> TerminalService:
     """The reference terminal with the demo gauge, on ``port``; ``origin`` is the loop
     time at which it starts (its reports carry Unix creation times)."""
-    limits = link_limits(scenario)
+    limits = link_limits(scenario, limits)
     sender = Sender(scenario.terminal_address, scenario.master_address, limits=limits)
     fragment_policy = by_name(policy, scenario.bit_rate, tau_scale=(scenario.down_mhz / scenario.up_mhz) ** 2)
     link = Link(sender, fragment_policy, bit_rate=scenario.bit_rate, duplex=Duplex(scenario.duplex), limits=limits)
