@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import io
 import json
 import subprocess
 import sys
@@ -81,9 +82,10 @@ def run_soak(run_dir: Path, faults: list[tuple[float, str]], process: subprocess
 
 
 def test_messages_cross_the_emulator_exactly_once_through_an_unplug_a_reset_and_line_noise(tmp_path: Path) -> None:
+    trace = io.StringIO()
     with emulator(tmp_path) as process:
         faults = [(4.0, "unplug terminal 2"), (9.0, "reset master"), (12.0, "noise 10000")]
-        report = run_soak(tmp_path, faults, process, duration_s=18.0, drain_s=40.0, report_every_s=1.0)
+        report = run_soak(tmp_path, faults, process, duration_s=18.0, drain_s=40.0, report_every_s=1.0, trace=trace)
     m = report["messages"]
     assert isinstance(m, dict)
     assert set(SOAK_KEYS) <= set(flat(report))
@@ -92,6 +94,8 @@ def test_messages_cross_the_emulator_exactly_once_through_an_unplug_a_reset_and_
     assert flat(report)["serial.reconnects"] >= 1, "the unplugged terminal modem was reopened"
     assert flat(report)["modem.resets"] >= 1, "the master modem's reset was seen and its settings restored"
     assert flat(report)["serial.errors"] > 0, "the noise cost damaged records, counted"
+    seen = {(line["station"], line["direction"]) for line in map(json.loads, trace.getvalue().splitlines())}
+    assert seen == {("terminal", "in"), ("terminal", "out"), ("master", "in"), ("master", "out")}
 
 
 @pytest.mark.parametrize(

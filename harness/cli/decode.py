@@ -38,6 +38,7 @@ def add_parser(commands: Any) -> None:
     p.add_argument("--file", action="append", metavar="FILE", help="read frames from FILE (repeatable)")
     p.add_argument("--cobs", action="store_true", help="FILE is a binary serial capture of COBS records")
     p.add_argument("--demo", action="store_true", help="decode the bundled demo capture (one opening of a demo link)")
+    p.add_argument("--trace", action="append", metavar="FILE.jsonl", help="read frames from a trace written by --trace of simulate, serve, master or soak")
     p.add_argument("--json", action="store_true", help="one JSON object per frame instead of tables")
     p.set_defaults(handler=run)
 
@@ -152,9 +153,16 @@ def run(args: argparse.Namespace) -> int:
                 sources += _hex_frames(iter(Path(path).read_text(encoding="utf-8").splitlines()), path)
         except (OSError, UnicodeDecodeError) as exc:
             raise UserError(f"cannot read {path}: {getattr(exc, 'strerror', None) or exc}") from None
+    for path in args.trace or []:
+        from ionotrail.harness.reports.trace import read_trace
+
+        try:
+            sources += read_trace(iter(Path(path).read_text(encoding="utf-8").splitlines()), path)
+        except (OSError, UnicodeDecodeError) as exc:
+            raise UserError(f"cannot read {path}: {getattr(exc, 'strerror', None) or exc}") from None
     sources += _hex_frames(iter(args.hex), "arg")
     if not sources:
-        raise UserError("nothing to decode: give HEX frames, --file FILE or --demo")
+        raise UserError("nothing to decode: give HEX frames, --file FILE, --trace FILE or --demo")
     failures = 0
     first = True
     for label, item in sources:

@@ -32,6 +32,7 @@ def add_parser(commands: Any) -> None:
     p.add_argument("--json", metavar="FILE", help="write the report as JSON to FILE")
     p.add_argument("--plot", metavar="FILE.png", help="draw the timeline (bursts, deliveries, queue) to a PNG file")
     p.add_argument("--deliveries", metavar="FILE.jsonl", help="write every delivered message to FILE, one JSON object a line")
+    p.add_argument("--trace", metavar="FILE.jsonl", help="write every frame either station sent or heard to FILE (ionotrail decode --trace reads it)")
     p.set_defaults(handler=run)
 
 
@@ -74,14 +75,14 @@ def run(args: argparse.Namespace) -> int:
         by_name(args.policy, scenario.bit_rate)
     except UsageError as exc:
         raise UserError(str(exc)) from None
-    outputs = [name for name in (args.json, args.plot, args.deliveries) if name]
+    outputs = [name for name in (args.json, args.plot, args.deliveries, args.trace) if name]
     for name in outputs:
         if Path(name).is_dir():
             raise UserError(f"{name} is a directory; give a file name")
         if not Path(name).resolve().parent.is_dir():
             raise UserError(f"cannot write {name}: no such directory {Path(name).resolve().parent}")
     if len({Path(name).resolve() for name in outputs}) < len(outputs):
-        raise UserError("--json, --plot and --deliveries must name different files")
+        raise UserError("--json, --plot, --deliveries and --trace must name different files")
     if args.plot and Path(args.plot).suffix.lower() != ".png":
         raise UserError(f"--plot {args.plot}: the timeline is drawn as PNG; give a name ending in .png")
     try:  # a path the model cannot use fails now, before any output file is touched
@@ -94,6 +95,7 @@ def run(args: argparse.Namespace) -> int:
     # Outputs are opened before the run, so a bad path fails at once, not after it.
     report_file = _open_output(args.json) if args.json else None
     deliveries_file = _open_output(args.deliveries) if args.deliveries else None
+    trace_file = _open_output(args.trace) if args.trace else None
     try:
         result = simulate(
             scenario,
@@ -101,6 +103,7 @@ def run(args: argparse.Namespace) -> int:
             record_timeline=bool(args.plot),
             on_delivery=json_lines_sink(deliveries_file) if deliveries_file else None,
             progress=_progress(),
+            trace=trace_file,
         )
     except PathError as exc:
         raise UserError(str(exc)) from None
@@ -110,8 +113,9 @@ def run(args: argparse.Namespace) -> int:
             Path(args.json).unlink(missing_ok=True)
         raise
     finally:
-        if deliveries_file:
-            deliveries_file.close()
+        for stream in (deliveries_file, trace_file):
+            if stream:
+                stream.close()
     report = result.report
     if report_file:
         with report_file:
@@ -123,7 +127,7 @@ def run(args: argparse.Namespace) -> int:
         assert result.timeline is not None
         plot_timeline(result.timeline, result.deliveries, report, Path(args.plot))
     print(simulation_table(report))
-    for label, name in (("report", args.json), ("timeline", args.plot), ("deliveries", args.deliveries)):
+    for label, name in (("report", args.json), ("timeline", args.plot), ("deliveries", args.deliveries), ("trace", args.trace)):
         if name:
             print(f"wrote {label} to {name}", file=sys.stderr)
     return 0

@@ -48,7 +48,8 @@ def add_parser(commands: Any) -> None:
     p.add_argument("--set", action="append", metavar="KEY=VALUE", help="override a scenario value (repeatable)")
     p.add_argument("--seed", type=int, help="seed (overrides scenario.seed)")
     p.add_argument("--json", metavar="FILE", help="write the report as JSON to FILE")
-    p.add_argument("--plot", metavar="FILE.png", help="draw the frame error rate against SNR and the latencies to a PNG file")
+    p.add_argument("--plot", metavar="FILE.png", help="draw the frame error rate against SNR to a PNG file")
+    p.add_argument("--trace", metavar="FILE.jsonl", help="write every frame either station sent or heard to FILE")
     p.set_defaults(handler=run)
 
 
@@ -76,6 +77,9 @@ def run(args: argparse.Namespace) -> int:
     scenario = load_scenario(args)
     if args.plot is not None and not args.plot.lower().endswith(".png"):
         raise UserError(f"--plot {args.plot}: the plot is a PNG file; name it .png")
+    from ionotrail.harness.cli.stations import open_output
+
+    trace = open_output("--trace", args.trace)
     tty = sys.stderr.isatty()
 
     def progress(snapshot: dict[str, Any]) -> None:
@@ -84,10 +88,13 @@ def run(args: argparse.Namespace) -> int:
     try:
         report = asyncio.run(
             soak(scenario, args.terminal, args.master, duration_s=args.duration, drain_s=args.drain, report_every_s=args.every,
-                 dialect_name=args.dialect, policy=args.policy, progress=progress)
+                 dialect_name=args.dialect, policy=args.policy, progress=progress, trace=trace)
         )
     except OSError as exc:
         raise UserError(f"cannot open a modem: {exc}") from None
+    finally:
+        if trace is not None:
+            trace.close()
     if tty:
         print(file=sys.stderr)
     m, lat = report["messages"], report["latency_s"]

@@ -22,6 +22,7 @@ def _common(p: argparse.ArgumentParser) -> None:
     p.add_argument("--set", action="append", metavar="KEY=VALUE", help="override a scenario value (repeatable)")
     p.add_argument("--seed", type=int, help="seed (overrides scenario.seed)")
     p.add_argument("--duration", type=float, metavar="S", help="stop after S seconds (default: run until interrupted)")
+    p.add_argument("--trace", metavar="FILE.jsonl", help="write every frame sent or heard to FILE (ionotrail decode --trace reads it)")
 
 
 def add_parser(commands: Any) -> None:
@@ -86,6 +87,25 @@ async def _until(duration: float | None) -> None:
             loop.remove_signal_handler(sig)
 
 
+def open_output(option: str, name: str | None) -> IO[str] | None:
+    """An output file opened before the run, so that a bad path fails at once."""
+    if name is None:
+        return None
+    try:
+        return open(name, "w", encoding="utf-8")
+    except OSError as exc:
+        raise UserError(f"{option} {name}: {exc.strerror}") from None
+
+
+def traced(port: Any, trace: IO[str] | None, station: str, origin: float) -> Any:
+    """``port``, or a port that also writes every frame to ``trace``."""
+    from ionotrail.harness.reports.trace import TraceWriter, TracingPort
+
+    if trace is None:
+        return port
+    return TracingPort(port, TraceWriter(trace, asyncio.get_running_loop().time, origin), station)
+
+
 async def _open(port: Any, url: str) -> None:
     from ionotrail.terminal.errors import UsageError
 
@@ -101,6 +121,7 @@ def run_serve(args: argparse.Namespace) -> int:
     from ionotrail.terminal.service import MessageAbandoned, MessageQueued
 
     scenario = _check(args)
+    trace = open_output("--trace", args.trace)
     counts = {"queued": 0, "abandoned": 0}
 
     def observe(_now: float, event: object) -> None:
@@ -115,7 +136,10 @@ def run_serve(args: argparse.Namespace) -> int:
         await _open(port, args.port)
         print(f"terminal {scenario.terminal_address:#06x} on {args.port} ({args.dialect}); Ctrl-C to stop", file=sys.stderr)
         every = args.every if args.every is not None else REPORT_INTERVAL_S
-        service = terminal_station(port, scenario, policy=args.policy, report_every_s=every, origin=loop.time(), observer=observe)
+        origin = loop.time()
+        service = terminal_station(
+            traced(port, trace, "terminal", origin), scenario, policy=args.policy, report_every_s=every, origin=origin, observer=observe
+        )
         run = asyncio.create_task(service.run())
         try:
             await _until(args.duration)
@@ -130,7 +154,11 @@ def run_serve(args: argparse.Namespace) -> int:
             f"modem resets {c.resets}, reconnects {c.reconnects}, line errors {sum(c.line_errors.values())}"
         )
 
-    print(_run(main()))
+    try:
+        print(_run(main()))
+    finally:
+        if trace is not None:
+            trace.close()
     return 0
 
 
@@ -139,12 +167,8 @@ def run_master(args: argparse.Namespace) -> int:
     from ionotrail.harness.runners.stations import master_station, serial_port
 
     scenario = _check(args)
-    out: IO[str] | None = None
-    if args.deliveries:
-        try:
-            out = open(args.deliveries, "w", encoding="utf-8")  # noqa: SIM115 - closed below, opened early so a bad path fails at once
-        except OSError as exc:
-            raise UserError(f"--deliveries {args.deliveries}: {exc.strerror}") from None
+    out = open_output("--deliveries", args.deliveries)
+    trace = open_output("--trace", args.trace)
 
     async def main() -> str:
         loop = asyncio.get_running_loop()
@@ -152,7 +176,8 @@ def run_master(args: argparse.Namespace) -> int:
         await _open(port, args.port)
         print(f"master {scenario.master_address} on {args.port} ({args.dialect}); Ctrl-C to stop", file=sys.stderr)
         sink = json_lines_sink(out) if out is not None else None
-        station = master_station(port, scenario, origin=loop.time(), sink=sink)
+        origin = loop.time()
+        station = master_station(traced(port, trace, "master", origin), scenario, origin=origin, sink=sink)
         station.start()
         try:
             await _until(args.duration)
@@ -168,8 +193,9 @@ def run_master(args: argparse.Namespace) -> int:
     try:
         print(_run(main()))
     finally:
-        if out is not None:
-            out.close()
+        for stream in (out, trace):
+            if stream is not None:
+                stream.close()
     return 0
 
 

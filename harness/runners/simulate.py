@@ -17,7 +17,7 @@ import math
 import random
 import time
 from collections.abc import Callable, Sequence
-from typing import Any
+from typing import IO, Any
 
 import numpy as np
 from ionotrail.harness.channel.model import Channel, TrailSet
@@ -25,12 +25,14 @@ from ionotrail.harness.channel.scenario import Scenario
 from ionotrail.harness.demo.gauge import Backlog, DemoGauge
 from ionotrail.harness.emulators.air import Air
 from ionotrail.harness.emulators.master import DeliveryRecord, MasterStation
+from ionotrail.harness.reports.trace import TraceWriter, TracingPort
 from ionotrail.harness.runners.vtime import VirtualTimeLoop, raise_callback_errors
 from ionotrail.terminal.delivery.sender import MessageAcknowledged, MessageRefused, Sender
 from ionotrail.terminal.errors import Reason
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link.policy import by_name
 from ionotrail.terminal.link.terminal import BurstEnded, BurstStarted, Duplex, Link
+from ionotrail.terminal.ports import Port
 from ionotrail.terminal.service import MessageAbandoned, MessageQueued, MessageSource, ServiceEvent, TerminalService
 from ionotrail.terminal.wire.crc import crc32c
 
@@ -137,12 +139,14 @@ def simulate(
     record_timeline: bool = False,
     on_delivery: Callable[[DeliveryRecord], None] | None = None,
     progress: Callable[[float, float, int], None] | None = None,
+    trace: IO[str] | None = None,
 ) -> Simulation:
     """Run ``scenario`` for its whole period (or ``seconds``); ``trails`` may be
     passed to reuse a realisation (the benchmark runs every policy on the same
     one) or to give hand-made openings; ``source`` is ``"demo"``, ``"backlog"``
     or any :class:`MessageSource`; ``configure_air`` may install fault hooks;
-    ``master_commands`` are (terminal, opcode, arguments) the master sends from the start."""
+    ``master_commands`` are (terminal, opcode, arguments) the master sends from the start;
+    ``trace`` receives every frame either station sent or heard (:mod:`~ionotrail.harness.reports.trace`)."""
     wall_start = time.perf_counter()
     duration = scenario.duration_s if seconds is None else float(seconds)
     if trails is None:
@@ -167,8 +171,13 @@ def simulate(
         air = Air(channel, seed=scenario.seed, half_duplex=scenario.duplex == "half", origin=origin, oscillator_ppm=scenario.oscillator_ppm)
         if configure_air is not None:
             configure_air(air)
+        terminal_port: Port = air.terminal
+        master_port: Port = air.master
+        if trace is not None:
+            writer = TraceWriter(trace, loop.time, origin)
+            terminal_port, master_port = TracingPort(air.terminal, writer, "terminal"), TracingPort(air.master, writer, "master")
         master = MasterStation(
-            air.master,
+            master_port,
             scenario.master_address,
             limits=limits,
             probe_interval=scenario.probe_interval_s,
@@ -177,7 +186,7 @@ def simulate(
             sink=delivered,
         )
         app = make_source(source, scenario, backlog_size, origin) if isinstance(source, str) else source
-        service = TerminalService(link, air.terminal, app, observer=ledger.observe)
+        service = TerminalService(link, terminal_port, app, observer=ledger.observe)
         master.start()
         for terminal, opcode, arguments in master_commands:
             master.command(terminal, opcode, arguments)

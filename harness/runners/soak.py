@@ -22,14 +22,16 @@ import math
 import time
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import IO, Any
 
 from ionotrail.harness.channel.scenario import Scenario
 from ionotrail.harness.emulators.master import DeliveryRecord, MasterStation
+from ionotrail.harness.reports.trace import TraceWriter, TracingPort
 from ionotrail.harness.runners.stations import master_station, serial_port, terminal_station
 from ionotrail.terminal.errors import DecodeError, Reason
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link.terminal import Arrival
+from ionotrail.terminal.ports import Port
 from ionotrail.terminal.service import MessageAbandoned, MessageQueued, ServiceEvent
 from ionotrail.terminal.wire import decode
 from ionotrail.terminal.wire.crc import crc32c
@@ -128,6 +130,7 @@ async def soak(
     progress: Callable[[dict[str, Any]], None] | None = None,
     progress_every_s: float = 5.0,
     limits: Limits = DEFAULT_LIMITS,
+    trace: IO[str] | None = None,
 ) -> dict[str, Any]:
     """Run the soak and return its report (:data:`SOAK_KEYS` and more)."""
     loop = asyncio.get_running_loop()
@@ -140,10 +143,15 @@ async def soak(
     ports = (terminal_port, master_port)
     await terminal_port.open()
     await master_port.open()
+    terminal_side: Port = terminal_port
+    master_side: Port = master_port
+    if trace is not None:
+        writer = TraceWriter(trace, loop.time, origin)
+        terminal_side, master_side = TracingPort(terminal_port, writer, "terminal"), TracingPort(master_port, writer, "master")
     service = terminal_station(
-        terminal_port, scenario, policy=policy, report_every_s=report_every_s, origin=origin, observer=ledger.queued, limits=limits
+        terminal_side, scenario, policy=policy, report_every_s=report_every_s, origin=origin, observer=ledger.queued, limits=limits
     )
-    master: MasterStation = master_station(master_port, scenario, origin=origin, sink=ledger.delivery)
+    master: MasterStation = master_station(master_side, scenario, origin=origin, sink=ledger.delivery)
     master.start()
     station_listener = master._arrived
 
@@ -151,7 +159,7 @@ async def soak(
         ledger.heard(arrival)
         station_listener(arrival)
 
-    master_port.attach(heard)
+    master_side.attach(heard)
 
     def snapshot(phase: str) -> dict[str, Any]:
         frames, failed = ledger.frame_errors()

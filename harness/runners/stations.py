@@ -26,6 +26,7 @@ from ionotrail.terminal.link.policy import by_name
 from ionotrail.terminal.link.terminal import Duplex, Link
 from ionotrail.terminal.modem.dialects import dialect
 from ionotrail.terminal.modem.records import Configure
+from ionotrail.terminal.ports import Port
 from ionotrail.terminal.ports.serial import SerialPort
 from ionotrail.terminal.service import Observer, TerminalService
 
@@ -47,7 +48,7 @@ def serial_port(url: str, dialect_name: str, scenario: Scenario, role: str) -> S
 
 
 def terminal_station(
-    port: SerialPort,
+    port: Port,
     scenario: Scenario,
     *,
     policy: str = "adaptive",
@@ -69,7 +70,7 @@ def terminal_station(
 
 
 def master_station(
-    port: SerialPort,
+    port: Port,
     scenario: Scenario,
     *,
     origin: float,
