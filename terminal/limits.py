@@ -140,6 +140,32 @@ def cobs_encoded_max(payload_len: int) -> int:
 
 
 
+# --- the serial port to a modem (terminal/ports/serial.py) ---------------------
+
+BACKOFF_INITIAL_S = 0.1
+"""First wait before reopening a vanished modem.  A USB-serial adapter takes
+a fraction of a second to re-enumerate after a replug; trying sooner only
+fails again (common practice, no source)."""
+
+BACKOFF_MAX_S = 5.0
+"""Longest wait between reopening attempts: a modem plugged back in by hand
+is in service again within a few seconds (common practice, no source)."""
+
+BACKOFF_JITTER = (0.5, 1.0)
+"""Each wait is the exponential delay times a factor drawn from this range,
+so that hosts restarted together do not retry in lockstep ("equal jitter",
+common practice, no source)."""
+
+WRITE_BACKLOG_MAX_BYTES = 4096
+"""Bytes the port holds unwritten when the modem stops reading (a stalled
+line) before it drops further frames: a few maximal records, a fraction of a
+second at 115200 bit/s.  Dropped frames are counted; the protocol above
+retransmits them."""
+
+CLOSE_TIMEOUT_S = 2.0
+"""How long the serial port's close waits for the port's executor close."""
+
+
 # --- link limits (per deployment, overridable) --------------------------------
 
 

@@ -43,6 +43,13 @@ from typing import Any
 import serial  # type: ignore[import-untyped]
 import serial_asyncio_fast
 from ionotrail.terminal.errors import UsageError
+from ionotrail.terminal.limits import (
+    BACKOFF_INITIAL_S,
+    BACKOFF_JITTER,
+    BACKOFF_MAX_S,
+    CLOSE_TIMEOUT_S,
+    WRITE_BACKLOG_MAX_BYTES,
+)
 from ionotrail.terminal.link.terminal import Arrival
 from ionotrail.terminal.modem.clock import ModemClock
 from ionotrail.terminal.modem.dialects import ANSWER_CODES, Dialect, LineError, RecordStream, Side, error_answer
@@ -62,29 +69,6 @@ from ionotrail.terminal.modem.records import (
     record_type_of,
 )
 from ionotrail.terminal.ports import Listener, Port
-
-BACKOFF_INITIAL_S = 0.1
-"""First wait before reopening a vanished modem.  A USB-serial adapter takes
-a fraction of a second to re-enumerate after a replug; trying sooner only
-fails again (common practice, no source)."""
-
-BACKOFF_MAX_S = 5.0
-"""Longest wait between reopening attempts: a modem plugged back in by hand
-is in service again within a few seconds (common practice, no source)."""
-
-BACKOFF_JITTER = (0.5, 1.0)
-"""Each wait is the exponential delay times a factor drawn from this range,
-so that hosts restarted together do not retry in lockstep ("equal jitter",
-common practice, no source)."""
-
-WRITE_BACKLOG_MAX_BYTES = 4096
-"""Bytes the port holds unwritten when the modem stops reading (a stalled
-line) before it drops further frames: a few maximal records, a fraction of a
-second at 115200 bit/s.  Dropped frames are counted; the protocol above
-retransmits them."""
-
-CLOSE_TIMEOUT_S = 2.0
-"""How long :meth:`SerialPort.close` waits for the port's executor close."""
 
 HOST_ID_MODULUS = 1 << 16
 """Host ids are 16 bits on the line and wrap."""
