@@ -15,6 +15,7 @@ a few seconds); nothing asserts how fast anything happened.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import math
 import os
 import random
@@ -24,6 +25,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from cobs import cobs
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.link.terminal import Arrival
 from ionotrail.terminal.modem.dialects import Dialect, LineError, Side, dialect
@@ -568,3 +570,59 @@ async def test_a_modem_that_stops_reading_costs_dropped_frames_not_memory(ptys: 
         assert port.connected
     finally:
         await asyncio.wait_for(port.close(), WAIT_S)
+
+
+@pytest.mark.asyncio
+async def test_a_modem_that_sends_refusable_records_but_never_reads_cannot_grow_the_write_backlog() -> None:
+    # Found by review: every bad record got an error answer, and a modem that does not
+    # read let them pile up without bound.  Error answers stop at the backlog limit.
+    master_fd, slave_fd = os.openpty()
+    tty.setraw(slave_fd)
+    os.set_blocking(master_fd, False)
+    port = SerialPort(os.ttyname(slave_fd), dialect=dialect("ionotrail"))
+    await port.open()
+    try:
+        junk = cobs.encode(b"\x19\x22\x33") + b"\x00"  # a record with a bad CRC: answerable
+        for _ in range(400):
+            with contextlib.suppress(BlockingIOError):
+                os.write(master_fd, junk * 200)
+            await asyncio.sleep(0.002)
+        await asyncio.sleep(0.2)
+        answer_bytes = len(dialect("ionotrail").encode(ErrorAnswer(ErrorCode.BAD_CRC, 0)))
+        assert port.unwritten_bytes <= WRITE_BACKLOG_MAX_BYTES + answer_bytes
+        assert port.counters.error_answers_dropped > 0
+    finally:
+        await port.close()
+        os.close(master_fd)
+        os.close(slave_fd)
+
+
+@pytest.mark.asyncio
+async def test_a_probe_stream_stopped_while_the_line_was_down_is_stopped_on_reconnect() -> None:
+    # Found by review: a modem that kept its power over a dropped line kept probing.
+    sessions: list[list[str]] = []
+    writers: list[asyncio.StreamWriter] = []
+
+    async def modem(reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
+        stream, seen = dialect("ionotrail").stream(Side.MODEM), []
+        sessions.append(seen)
+        writers.append(writer)
+        while data := await reader.read(4096):
+            seen += [type(item).__name__ for item in stream.feed(data)]
+
+    server = await asyncio.start_server(modem, "127.0.0.1", 0)
+    url = f"socket://127.0.0.1:{server.sockets[0].getsockname()[1]}"
+    port = SerialPort(url, dialect=dialect("ionotrail"), configure=Configure(1, 2, 2000, 10.0), backoff_initial_s=0.2)
+    try:
+        await port.open()
+        port.start_listening()
+        port.start_probing(b"\x05\x00\x01\x02\x03", 0.5)
+        await until(lambda: sessions and sessions[0][-1:] == ["ProbeStart"], "the first session's state")
+        writers[0].close()  # the line drops; the modem keeps its power (and its probe stream)
+        await until(lambda: not port.connected, "the line to drop")
+        port.stop_probing()
+        await until(lambda: len(sessions) == 2 and sessions[1][-1:] == ["ProbeStop"], "the stop to be said on reconnect")
+        assert sessions[1] == ["Configure", "Listen", "ProbeStop"]
+    finally:
+        await port.close()
+        server.close()

@@ -31,8 +31,9 @@ def add_parser(commands: Any) -> None:
             "duration (real modems, or the two lines of 'ionotrail emulate'), with a live progress\n"
             "line, then wait for the last messages and report: messages offered, delivered, lost,\n"
             "duplicated, latency, frame error rate against SNR, modem resets, reconnects, serial\n"
-            "errors and resident memory.  Exit status 0 when nothing was lost or duplicated, 1\n"
-            "otherwise, 2 for bad usage."
+            "errors and resident memory.  Exit status 0 when every message offered was delivered\n"
+            "exactly once (none lost, duplicated, altered or still pending), 1 otherwise, 2 for\n"
+            "bad usage."
         ),
         epilog=SAFETY,
         formatter_class=argparse.RawDescriptionHelpFormatter,
@@ -110,7 +111,7 @@ def run(args: argparse.Namespace) -> int:
             json.dump(report, out, indent=2)
     if args.plot:
         _plot(report, args.plot)
-    return 0 if m["lost"] == 0 and m["duplicated"] == 0 else 1
+    return 0 if m["delivered"] == m["offered"] and not (m["lost"] or m["duplicated"] or m["unexpected"] or m["pending"]) else 1
 
 
 def _plot(report: dict[str, Any], path: str) -> None:

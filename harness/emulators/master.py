@@ -90,6 +90,7 @@ class MasterStation:
         epoch_unix: float = 0.0,
         origin: float = 0.0,
         sink: Callable[[DeliveryRecord], None] | None = None,
+        on_arrival: Callable[[Arrival], None] | None = None,
     ) -> None:
         if probe_interval is not None:
             limits = dataclasses.replace(limits, probe_interval=probe_interval)
@@ -100,6 +101,8 @@ class MasterStation:
         self.epoch_unix = epoch_unix
         self.origin = origin
         self.sink = sink
+        self.on_arrival = on_arrival
+        """Sees every frame the port delivers, before the endpoint does (a soak's frame statistics)."""
         self.deliveries: list[DeliveryRecord] = []
         self.replies: list[ReplyRecord] = []
         self._loop: asyncio.AbstractEventLoop | None = None
@@ -146,6 +149,8 @@ class MasterStation:
         return (self._loop.time() if self._loop is not None else self.origin) - self.origin
 
     def _arrived(self, arrival: Arrival) -> None:
+        if self.on_arrival is not None:
+            self.on_arrival(arrival)
         self._carry_out(self.endpoint.on_frame(arrival.frame, arrival.time - self.origin))
 
     def _fire(self) -> None:

@@ -8,7 +8,10 @@ delivered.  The ledger compares what the terminal queued with what the
 master delivered: a message delivered twice is *duplicated*, one neither
 delivered nor still pending at the end is *lost*, and so is a reading the
 terminal abandoned for want of queue room (counted apart too, as
-``messages.abandoned``: the gauge reported faster than the channel carried).  Frames the master hears are binned by reported SNR to give the
+``messages.abandoned``: the gauge reported faster than the channel carried);
+one still pending after the drain is *pending*; a delivery whose bytes the
+terminal never queued under its id is *unexpected*.  A clean soak has all
+offered messages delivered and every other count zero.  Frames the master hears are binned by reported SNR to give the
 frame error rate against SNR.  Resident memory is read at the start and the end.
 
 :data:`SOAK_KEYS` are a contract: scripts and CI read them.
@@ -62,24 +65,31 @@ def rss_mb() -> float:
 class SoakLedger:
     """What went in at the terminal and came out at the master."""
 
-    offered: dict[int, tuple[float, int]] = dataclasses.field(default_factory=dict)  # message id -> (created, crc32c)
+    # Messages by (16-bit id, CRC-32C of the payload): ids wrap in a long soak, and the
+    # payload (which carries its creation time) tells two messages with one id apart.
+    offered: dict[tuple[int, int], float] = dataclasses.field(default_factory=dict)  # -> created
     abandoned: int = 0
-    delivered: dict[int, DeliveryRecord] = dataclasses.field(default_factory=dict)
+    delivered: dict[tuple[int, int], DeliveryRecord] = dataclasses.field(default_factory=dict)
     duplicated: int = 0
+    unexpected: int = 0
     latencies: list[float] = dataclasses.field(default_factory=list)
     frames_by_snr: dict[int, list[int]] = dataclasses.field(default_factory=dict)  # bin -> [frames, failed]
 
     def queued(self, _now: float, event: ServiceEvent) -> None:
         if isinstance(event, MessageQueued):
-            self.offered[event.message_id] = (event.created, crc32c(event.payload))
+            self.offered[(event.message_id, crc32c(event.payload))] = event.created
         elif isinstance(event, MessageAbandoned):
             self.abandoned += 1
 
     def delivery(self, record: DeliveryRecord) -> None:
-        if record.message_id in self.delivered:
+        key = (record.message_id, record.crc32c)
+        if key in self.delivered:
             self.duplicated += 1
             return
-        self.delivered[record.message_id] = record
+        if key not in self.offered:  # bytes the terminal never queued under that id
+            self.unexpected += 1
+            return
+        self.delivered[key] = record
         if record.created_s is not None:
             self.latencies.append(record.delivered_s - record.created_s)
 
@@ -151,15 +161,8 @@ async def soak(
     service = terminal_station(
         terminal_side, scenario, policy=policy, report_every_s=report_every_s, origin=origin, observer=ledger.queued, limits=limits
     )
-    master: MasterStation = master_station(master_side, scenario, origin=origin, sink=ledger.delivery)
+    master: MasterStation = master_station(master_side, scenario, origin=origin, sink=ledger.delivery, on_arrival=ledger.heard)
     master.start()
-    station_listener = master._arrived
-
-    def heard(arrival: Arrival) -> None:
-        ledger.heard(arrival)
-        station_listener(arrival)
-
-    master_side.attach(heard)
 
     def snapshot(phase: str) -> dict[str, Any]:
         frames, failed = ledger.frame_errors()
@@ -198,8 +201,10 @@ async def soak(
         await master.stop()
         for port in ports:
             await port.close()
-    pending = {message_id for message_id, _ in ((m[0], m) for m in service.link.sender.outstanding())}
-    lost = ledger.abandoned + sum(1 for m in ledger.offered if m not in ledger.delivered and m not in pending)
+    pending_ids = {m[0] for m in service.link.sender.outstanding()}
+    undelivered = [key for key in ledger.offered if key not in ledger.delivered]
+    pending = [key for key in undelivered if key[0] in pending_ids]
+    lost = ledger.abandoned + len(undelivered) - len(pending)
     frames, failed = ledger.frame_errors()
     errors: dict[str, int] = {}
     for port in ports:
@@ -219,6 +224,7 @@ async def soak(
             "duplicated": ledger.duplicated,
             "pending": len(pending),
             "abandoned": ledger.abandoned,
+            "unexpected": ledger.unexpected,
         },
         "latency_s": {"p50": _percentile(ledger.latencies, 0.5), "p95": _percentile(ledger.latencies, 0.95),
                       "max": _percentile(ledger.latencies, 1.0)},

@@ -12,6 +12,7 @@ processes whose clocks agree (both read the system clock).
 
 from __future__ import annotations
 
+import asyncio
 import dataclasses
 import random
 import time
@@ -23,7 +24,7 @@ from ionotrail.harness.emulators.master import DeliveryRecord, MasterStation
 from ionotrail.terminal.delivery.sender import Sender
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link.policy import by_name
-from ionotrail.terminal.link.terminal import Duplex, Link
+from ionotrail.terminal.link.terminal import Arrival, Duplex, Link
 from ionotrail.terminal.modem.dialects import dialect
 from ionotrail.terminal.modem.records import Configure
 from ionotrail.terminal.ports import Port
@@ -75,8 +76,10 @@ def master_station(
     *,
     origin: float,
     sink: Callable[[DeliveryRecord], None] | None = None,
+    on_arrival: Callable[[Arrival], None] | None = None,
 ) -> MasterStation:
     """The master on ``port``; ``origin`` is the loop time at which it starts."""
+    epoch = time.time() - (asyncio.get_running_loop().time() - origin)  # Unix time at origin
     return MasterStation(
-        port, scenario.master_address, limits=link_limits(scenario), epoch_unix=time.time(), origin=origin, sink=sink
+        port, scenario.master_address, limits=link_limits(scenario), epoch_unix=epoch, origin=origin, sink=sink, on_arrival=on_arrival
     )

@@ -88,6 +88,7 @@ class SerialCounters:
     reopen_failures: int = 0
     resets: int = 0
     error_answers_sent: int = 0
+    error_answers_dropped: int = 0
     error_answers_received: int = 0
     frames_dropped_offline: int = 0
     frames_dropped_backlog: int = 0
@@ -153,6 +154,7 @@ class SerialPort(Port):
         self._listener: Listener | None = None
         self._listening: bool | None = None
         self._probe: tuple[bytes, float] | None = None
+        self._stop_owed = False  # a probe stream was stopped while the line was down
         self._probe_handle: asyncio.Handle | None = None
         self._probe_epoch = 0.0
         self._probe_count = 0
@@ -174,8 +176,9 @@ class SerialPort(Port):
 
     @property
     def unwritten_bytes(self) -> int:
-        """Bytes the port holds that the line has not taken yet (bounded by
-        :data:`WRITE_BACKLOG_MAX_BYTES` plus one record)."""
+        """Bytes the port holds that the line has not taken yet: frames and error
+        answers stop at :data:`WRITE_BACKLOG_MAX_BYTES`; past it only the host's
+        own settings (configure, listen, probe start and stop) are still written."""
         return self._transport.get_write_buffer_size() if self._transport is not None else 0
 
     async def open(self) -> None:
@@ -230,8 +233,8 @@ class SerialPort(Port):
         was_probing = self._probe is not None
         self._probe = None
         self._cancel_probe_stream()
-        if was_probing and self._carries(RecordType.PROBE_STOP):
-            self._write(ProbeStop())
+        if was_probing and self._carries(RecordType.PROBE_STOP) and not self._write(ProbeStop()):
+            self._stop_owed = True  # the line is down: say it when it is back
 
     async def close(self) -> None:
         """Stop the timers, tell the modem to stop probing, release the port.
@@ -310,7 +313,7 @@ class SerialPort(Port):
             await asyncio.sleep(self.backoff_delay(attempt))
             try:
                 await self._connect()
-            except OSError:
+            except Exception:  # noqa: BLE001 - any failure to reopen (OSError, termios, a driver's own) is retried, never fatal
                 self.counters.reopen_failures += 1
                 attempt += 1
                 continue
@@ -336,6 +339,11 @@ class SerialPort(Port):
         if self._probe is not None and self._carries(RecordType.PROBE_START):
             frame, interval = self._probe
             self._write(ProbeStart(interval_s=interval, frame=frame))
+        elif self._stop_owed and self._carries(RecordType.PROBE_STOP):
+            # A modem that kept its power while the line was down may still be
+            # probing with the stream stopped meanwhile.
+            self._write(ProbeStop())
+        self._stop_owed = False
 
     # --- writing ------------------------------------------------------------------------
 
@@ -404,7 +412,11 @@ class SerialPort(Port):
         errors = self.counters.line_errors
         errors[error.reason] = errors.get(error.reason, 0) + 1
         answerable = error.answer and error.reason in ANSWER_CODES and self._carries(RecordType.ERROR)
-        if answerable and self._write(error_answer(error)):
+        if not answerable:
+            return
+        if self._backlogged():  # a modem that sends but does not read gets no flood of answers
+            self.counters.error_answers_dropped += 1
+        elif self._write(error_answer(error)):
             self.counters.error_answers_sent += 1
 
     def _record(self, record: Record, now: float) -> None:
