@@ -19,12 +19,16 @@ import contextlib
 import math
 import os
 import random
+import socket
+import threading
 import tty
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
 import pytest
+import serial
+import serial.rfc2217
 from cobs import cobs
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.link.terminal import Arrival
@@ -500,12 +504,91 @@ def test_backoff_limits_are_checked(initial: float, maximum: float) -> None:
         SerialPort("/nonexistent", dialect=dialect("kiss"), backoff_initial_s=initial, backoff_max_s=maximum)
 
 
+class _PtyWithoutModemLines(serial.Serial):  # type: ignore[misc]
+    """A pseudo-terminal has no modem-control lines; an RFC 2217 server asks for them."""
+
+    cts = dsr = ri = cd = property(lambda self: False)
+
+    def _update_dtr_state(self) -> None:
+        pass
+
+    def _update_rts_state(self) -> None:
+        pass
+
+
+@contextlib.contextmanager
+def rfc2217_server(device: str) -> Iterator[str]:
+    """An RFC 2217 server (pyserial's own PortManager, the server side of the protocol)
+    for ``device`` on a loopback TCP port; yields the rfc2217:// URL."""
+    line = _PtyWithoutModemLines(device, 115200, timeout=0.05)
+    listener = socket.create_server(("127.0.0.1", 0))
+    stop = threading.Event()
+
+    def serve() -> None:
+        client, _ = listener.accept()
+        client.settimeout(0.05)
+
+        class Connection:
+            def write(self, data: bytes) -> None:
+                client.sendall(data)
+
+        manager = serial.rfc2217.PortManager(line, Connection())
+        while not stop.is_set():
+            data = line.read(line.in_waiting or 1)
+            if data:
+                client.sendall(b"".join(manager.escape(data)))
+            try:
+                received = client.recv(4096)
+            except TimeoutError:
+                continue
+            if not received:
+                break
+            line.write(b"".join(manager.filter(received)))
+        client.close()
+
+    thread = threading.Thread(target=serve, daemon=True)
+    thread.start()
+    try:
+        yield f"rfc2217://127.0.0.1:{listener.getsockname()[1]}"
+    finally:
+        stop.set()
+        thread.join(timeout=5)
+        listener.close()
+        line.close()
+
+
 @pytest.mark.asyncio
-async def test_a_url_without_a_file_descriptor_is_refused() -> None:
-    # pyserial's loop:// port is served without a file descriptor (pyserial documentation, URL handlers).
-    port = SerialPort("loop://", dialect=dialect("kiss"))
-    with pytest.raises(UsageError, match="file descriptor"):
+async def test_an_rfc2217_modem_is_served_from_threads() -> None:
+    # pyserial serves rfc2217:// without a file descriptor (pyserial documentation, URL
+    # handlers); the port reads and writes it from threads instead.
+    master_fd, slave_fd = os.openpty()
+    tty.setraw(master_fd)
+    tty.setraw(slave_fd)
+    os.set_blocking(master_fd, False)
+    heard: list[Arrival] = []
+    modem_side = dialect("ionotrail").stream(Side.MODEM)
+    seen: list[object] = []
+    with rfc2217_server(os.ttyname(slave_fd)) as url:
+        port = SerialPort(url, dialect=dialect("ionotrail"), configure=Configure(1, 2, 2000, 10.0))
+        port.attach(heard.append)
         await port.open()
+        try:
+            port.start_listening()
+
+            def read_modem() -> bool:
+                with contextlib.suppress(BlockingIOError):
+                    seen.extend(modem_side.feed(os.read(master_fd, 4096)))
+                return len(seen) >= 2
+
+            await until(read_modem, "configure and listen through the RFC 2217 server")
+            assert seen[:2] == [Configure(1, 2, 2000, 10.0), Listen(on=True)]
+            os.write(master_fd, dialect("ionotrail").encode(Received(5.0, 12.5, 80.0, b"\x11\x07\x00\x01\x00")))
+            await until(lambda: bool(heard), "a received frame through the RFC 2217 server")
+            assert heard[0].frame == b"\x11\x07\x00\x01\x00" and heard[0].snr_db == pytest.approx(12.5)
+        finally:
+            await port.close()
+    os.close(master_fd)
+    os.close(slave_fd)
 
 
 @pytest.mark.asyncio

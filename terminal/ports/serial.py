@@ -26,8 +26,9 @@ Ports open through ``serial.serial_for_url(url, do_not_open=True)`` and
 pyserial-asyncio-fast, which watches the port's file descriptor from the loop
 and opens and closes it in an executor: a device path, a pseudo-terminal or
 ``socket://host:port`` work.  A URL whose port has no file descriptor
-(``loop://``, ``rfc2217://``: pyserial serves those from a thread) is refused
-at :meth:`SerialPort.open` with a :class:`UsageError`.
+(``rfc2217://host:port``, ``loop://``: pyserial serves those from a thread)
+gets a :class:`_ThreadedTransport` instead: one thread reads and hands the
+bytes to the loop, another writes; the loop never blocks on the port.
 """
 
 from __future__ import annotations
@@ -36,7 +37,9 @@ import asyncio
 import dataclasses
 import io
 import math
+import queue
 import random
+import threading
 import urllib.parse
 from typing import Any
 
@@ -117,6 +120,79 @@ class _Line(asyncio.Protocol):
         self.port._connection_lost(self)
 
 
+class _ThreadedTransport(asyncio.Transport):
+    """A transport for a pyserial port the loop cannot watch.  The port must be
+    open with a read timeout, so the reader thread notices a close."""
+
+    def __init__(self, loop: asyncio.AbstractEventLoop, instance: Any, protocol: asyncio.Protocol) -> None:
+        super().__init__()
+        self._loop, self._serial, self._protocol = loop, instance, protocol
+        self._closing = False
+        self._lock = threading.Lock()
+        self._pending = 0  # bytes handed to write() and not yet written
+        self._writes: queue.SimpleQueue[bytes | None] = queue.SimpleQueue()
+        threading.Thread(target=self._read_loop, name="serial-reader", daemon=True).start()
+        threading.Thread(target=self._write_loop, name="serial-writer", daemon=True).start()
+        loop.call_soon(protocol.connection_made, self)
+
+    def _read_loop(self) -> None:
+        while not self._closing:
+            try:
+                data = self._serial.read(self._serial.in_waiting or 1)
+            except Exception as exc:  # noqa: BLE001 - whatever ends the line ends this thread; the loop learns why
+                self._failed(exc)
+                return
+            if data and not self._closing:
+                self._loop.call_soon_threadsafe(self._protocol.data_received, bytes(data))
+
+    def _write_loop(self) -> None:
+        while (data := self._writes.get()) is not None:
+            try:
+                self._serial.write(data)
+            except Exception as exc:  # noqa: BLE001 - as in _read_loop
+                self._failed(exc)
+                return
+            finally:
+                with self._lock:
+                    self._pending -= len(data)
+
+    def _failed(self, exc: Exception) -> None:
+        if not self._closing:
+            self._loop.call_soon_threadsafe(self._finish, exc)
+
+    def _finish(self, exc: Exception | None) -> None:
+        if self._closing:
+            return
+        self._closing = True
+        self._writes.put(None)
+        self._loop.run_in_executor(None, self._serial.close)
+        self._protocol.connection_lost(exc)
+
+    def write(self, data: bytes | bytearray | memoryview) -> None:
+        if self._closing:
+            return
+        with self._lock:
+            self._pending += len(data)
+        self._writes.put(bytes(data))
+
+    def get_write_buffer_size(self) -> int:
+        with self._lock:
+            return self._pending
+
+    def is_closing(self) -> bool:
+        return self._closing
+
+    def close(self) -> None:
+        self._finish(None)
+
+    def abort(self) -> None:
+        self._finish(None)
+
+
+THREADED_READ_TIMEOUT_S = 0.1
+"""How often a reader thread looks up from a silent port to see whether it was closed."""
+
+
 def _has_descriptor(instance: Any) -> bool:
     """Can the event loop watch this pyserial port's file descriptor?"""
     return type(instance).fileno is not io.RawIOBase.fileno
@@ -185,8 +261,7 @@ class SerialPort(Port):
         """Open the line and send the modem its configuration and state.
 
         Raises ``OSError`` (pyserial's ``SerialException``) when the port
-        cannot be opened, and :class:`UsageError` for a URL without a file
-        descriptor or a second call."""
+        cannot be opened, and :class:`UsageError` for a second call."""
         if self._opened or self._closed:
             raise UsageError("a SerialPort opens once")
         self._loop = asyncio.get_running_loop()
@@ -280,15 +355,19 @@ class SerialPort(Port):
             )
         else:
             instance = serial.serial_for_url(self.url, do_not_open=True, baudrate=self.baudrate)
-            if not _has_descriptor(instance):
-                raise UsageError(f"{self.url}: this kind of port has no file descriptor for the event loop to watch")
+            threaded = not _has_descriptor(instance)
+            if threaded:
+                instance.timeout = THREADED_READ_TIMEOUT_S
             opening = loop.run_in_executor(None, instance.open)
             try:
                 await asyncio.shield(opening)
             except asyncio.CancelledError:
                 opening.add_done_callback(lambda done: _close_if_opened(done, instance))
                 raise
-            transport, _ = await serial_asyncio_fast.connection_for_serial(loop, lambda: line, instance)
+            if threaded:
+                transport = _ThreadedTransport(loop, instance, line)
+            else:
+                transport, _ = await serial_asyncio_fast.connection_for_serial(loop, lambda: line, instance)
         if self._closed:
             transport.abort()
             return
