@@ -192,3 +192,8 @@ def test_simulate_warns_of_a_short_path_as_channel_does() -> None:
         assert result.returncode == 0, result.stderr
         warnings.append([line for line in result.stderr.splitlines() if line.startswith("warning:")])
     assert warnings[0] == warnings[1] and len(warnings[0]) == 1 and "km path is short for meteor burst" in warnings[0][0]
+
+
+def test_decode_cobs_without_a_file_is_refused(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["decode", "--cobs", "00"]) == 2
+    assert "--cobs" in capsys.readouterr().err

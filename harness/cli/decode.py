@@ -142,6 +142,8 @@ def _describe_error(raw: bytes, exc: DecodeError) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
+    if args.cobs and not args.file:
+        raise UserError("--cobs reads a binary capture: give it with --file FILE")
     sources: list[tuple[str, bytes | str | _LineRecord]] = []
     if args.demo:
         sources += _hex_frames(iter(demo_capture().splitlines()), "demo")
