@@ -63,14 +63,33 @@ def flat(report: dict[str, object], prefix: str = "") -> dict[str, object]:
     return out
 
 
+MID_BURST = "mid-burst "
+"""A fault prefixed so waits, from its time on, for the terminal to put a fragment on
+the air (read from the trace), and strikes right after it: in the middle of a burst."""
+
+
 def run_soak(run_dir: Path, faults: list[tuple[float, str]], process: subprocess.Popen[str], **options: object) -> dict[str, object]:
     scenario = scenarios.load(None, BUSY_LINK)
+    trace = options.get("trace")
+
+    async def next_fragment_sent() -> None:
+        assert isinstance(trace, io.StringIO), "a mid-burst fault reads the trace"
+        seen = len(trace.getvalue())
+        while True:
+            for line in trace.getvalue()[seen:].splitlines():
+                item = json.loads(line)
+                if item["station"] == "terminal" and item["outcome"] == "sent" and item["hex"].startswith("12"):
+                    return  # a fragment (frame type 2) just left the terminal
+            await asyncio.sleep(0.002)
 
     async def main() -> dict[str, object]:
         async def inject() -> None:
             started = time.monotonic()
             for at, line in faults:
                 await asyncio.sleep(max(0.0, at - (time.monotonic() - started)))
+                if line.startswith(MID_BURST):
+                    await asyncio.wait_for(next_fragment_sent(), 30)
+                    line = line.removeprefix(MID_BURST)
                 fault(process, line)
 
         injector = asyncio.create_task(inject())
@@ -81,10 +100,10 @@ def run_soak(run_dir: Path, faults: list[tuple[float, str]], process: subprocess
     return asyncio.run(main())
 
 
-def test_messages_cross_the_emulator_exactly_once_through_an_unplug_a_reset_and_line_noise(tmp_path: Path) -> None:
+def test_messages_cross_the_emulator_exactly_once_through_an_unplug_and_a_reset_mid_burst_and_line_noise(tmp_path: Path) -> None:
     trace = io.StringIO()
     with emulator(tmp_path) as process:
-        faults = [(4.0, "unplug terminal 2"), (9.0, "reset master"), (12.0, "noise 10000")]
+        faults = [(4.0, MID_BURST + "unplug terminal 2"), (9.0, MID_BURST + "reset master"), (12.0, "noise 10000")]
         report = run_soak(tmp_path, faults, process, duration_s=18.0, drain_s=40.0, report_every_s=1.0, trace=trace)
     m = report["messages"]
     assert isinstance(m, dict)
