@@ -121,11 +121,17 @@ def _plot(report: dict[str, Any], path: str) -> None:
     import matplotlib.pyplot as plt
 
     rows = [r for r in report["frames"]["by_snr"] if r["snr_db_from"] is not None]
-    fig, ax = plt.subplots(figsize=(7, 4))
-    ax.bar([r["snr_db_from"] for r in rows], [r["frame_error_rate"] for r in rows], width=2.5, align="edge")
-    ax.set_xlabel("reported SNR, dB")
-    ax.set_ylabel("frame error rate at the master")
-    ax.set_title(f"soak {report['wall_seconds']:.0f} s: {report['messages']['delivered']} delivered")
+    edges = [r["snr_db_from"] for r in rows]
+    fig, (heard, errors) = plt.subplots(2, 1, sharex=True, figsize=(7, 5))
+    heard.bar(edges, [r["frames"] for r in rows], width=2.7, align="edge", color="tab:blue")
+    heard.set_ylabel("frames heard")
+    rates = [r["frame_error_rate"] for r in rows]
+    errors.bar(edges, rates, width=2.7, align="edge", color="tab:red")
+    errors.set_ylim(0, max([0.05, *[1.2 * rate for rate in rates]]))
+    errors.set_ylabel("frame error rate")
+    errors.set_xlabel("SNR the master's modem reported, dB (3 dB bins)")
+    m = report["messages"]
+    heard.set_title(f"soak {report['wall_seconds']:.0f} s: {m['delivered']} of {m['offered']} delivered, {m['lost']} lost, {m['duplicated']} duplicated")
     fig.tight_layout()
     fig.savefig(path)
     plt.close(fig)
