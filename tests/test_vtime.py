@@ -3,14 +3,148 @@
 from __future__ import annotations
 
 import asyncio
+import math
+from collections.abc import Callable, Coroutine
+from fractions import Fraction
+from typing import Any, TypeVar
 
 import pytest
 from ionotrail.harness.runners.vtime import CallbackError, VirtualTimeDeadlock, VirtualTimeLoop, raise_callback_errors
+
+T = TypeVar("T")
 
 
 def run(coro_factory, start: float = 0.0):  # type: ignore[no-untyped-def]
     with asyncio.Runner(loop_factory=lambda: VirtualTimeLoop(start)) as runner:
         return runner.run(coro_factory())
+
+
+HANG_BOUND = 10_000
+"""Loop iterations a far-clock test may take; each needs a handful (a hang spins without end)."""
+
+
+class LoopHung(AssertionError):
+    """The loop went round HANG_BOUND times without finishing: it was spinning, not advancing."""
+
+
+class BoundedLoop(VirtualTimeLoop):
+    """A VirtualTimeLoop that fails after HANG_BOUND iterations instead of spinning for ever."""
+
+    def __init__(self, start: float) -> None:
+        super().__init__(start)
+        self.iterations = 0
+        self.bound = HANG_BOUND
+
+    def _run_once(self) -> None:
+        self.iterations += 1
+        if self.iterations > self.bound:
+            self.bound = self.iterations + HANG_BOUND  # room for the runner to cancel and close
+            raise LoopHung(f"{HANG_BOUND} loop iterations, clock stuck at {self.time()!r} s")
+        super()._run_once()  # type: ignore[misc]
+
+
+def run_bounded(coro_factory: Callable[[], Coroutine[Any, Any, T]], start: float) -> T:
+    with asyncio.Runner(loop_factory=lambda: BoundedLoop(start)) as runner:
+        return runner.run(coro_factory())
+
+
+# 16,777,215.95 s is the issue's reproduction: the three sleeps straddle 2^24 s (194 days).
+# 2^31 - 0.15 s straddles another binade; 3.2e9 s is past a century (3.156e9 s).
+FAR_STARTS = [16_777_215.95, 2.0**24, 2.0**30, 2.0**31 - 0.15, 3.2e9]
+
+
+@pytest.mark.parametrize("start", FAR_STARTS)
+def test_sleeps_complete_and_time_advances_by_them_however_far_the_clock_is(start: float) -> None:
+    """Three sleeps of 0.1 s finish, one jump each, and the clock lands on each
+    timer exactly: the double nearest the previous time + 0.1 s.  Against exact
+    arithmetic each step can be off by half an ulp of the clock (at 2^24 s an
+    ulp is 3.7e-9 s, at 2^30 s 2.4e-7 s, at 3.2e9 s 4.8e-7 s), no more."""
+
+    async def main() -> tuple[list[float], int]:
+        loop = asyncio.get_running_loop()
+        assert isinstance(loop, VirtualTimeLoop)
+        times = []
+        for _ in range(3):
+            await asyncio.sleep(0.1)
+            times.append(loop.time())
+        return times, loop.wakeups
+
+    times, jumps = run_bounded(main, start)
+    assert jumps == 3
+    expected = start
+    for step, now in enumerate(times, start=1):
+        expected = expected + 0.1  # the timer's deadline, rounded as asyncio's call_later rounds it
+        assert now == expected
+        error = abs(Fraction(now) - (Fraction(start) + step * Fraction(1, 10)))
+        assert error <= step * Fraction(math.ulp(now)) / 2
+    assert times[-1] - start == pytest.approx(0.3, abs=2 * math.ulp(times[-1]))
+
+
+def test_timers_due_at_the_same_instant_keep_scheduling_order_a_century_out() -> None:
+    start = 3.2e9
+
+    async def main() -> list[tuple[int, float]]:
+        loop = asyncio.get_running_loop()
+        order: list[tuple[int, float]] = []
+
+        def note(i: int) -> None:
+            order.append((i, loop.time()))
+
+        for i in range(50):
+            loop.call_at(start + 10.0, note, i)
+        await asyncio.sleep(11)
+        return order
+
+    assert run_bounded(main, start) == [(i, start + 10.0) for i in range(50)]
+
+
+def test_timers_one_ulp_apart_run_in_time_order_and_never_early() -> None:
+    """The loop's resolution is one ulp of the clock, not a window: a timer one
+    ulp later than another runs after it, on a later jump, and sees its own time."""
+    start = 3.2e9
+    ulp = math.ulp(start + 1.0)
+    offsets = [2, 0, 1, 0, 2, 1]  # scheduled out of time order, with ties
+
+    async def main() -> list[tuple[float, float, int]]:
+        loop = asyncio.get_running_loop()
+        seen: list[tuple[float, float, int]] = []
+
+        def note(when: float, tag: int) -> None:
+            seen.append((loop.time(), when, tag))
+
+        for tag, k in enumerate(offsets):
+            when = start + 1.0 + k * ulp
+            loop.call_at(when, note, when, tag)
+        await asyncio.sleep(2.0)
+        return seen
+
+    seen = run_bounded(main, start)
+    assert all(now == when for now, when, _ in seen)
+    assert [tag for _, _, tag in seen] == [1, 3, 2, 5, 0, 4]  # by time, then by scheduling order
+    assert len({when for _, when, _ in seen}) == 3
+
+
+def test_wait_for_and_advance_if_idle_work_a_century_out() -> None:
+    """The clock moved by advance_if_idle, not by a jump, gets the same resolution."""
+
+    async def main() -> tuple[bool, float, float]:
+        loop = asyncio.get_running_loop()
+        assert isinstance(loop, VirtualTimeLoop)
+        assert loop.advance_if_idle(3.2e9)
+        never: asyncio.Future[None] = loop.create_future()
+        loop.call_later(3600.0, lambda: None)
+        try:
+            await asyncio.wait_for(never, timeout=120.0)
+        except TimeoutError:
+            timed_out = True
+        else:
+            timed_out = False
+        after_timeout = loop.time()
+        await asyncio.sleep(7200.0)
+        return timed_out, after_timeout, loop.time()
+
+    timed_out, after_timeout, end = run_bounded(main, 0.0)
+    assert timed_out and after_timeout == 3.2e9 + 120.0 and end == 3.2e9 + 120.0 + 7200.0
 
 
 def test_a_simulated_day_of_sleeping_takes_no_wall_time() -> None:

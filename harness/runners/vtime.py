@@ -11,7 +11,13 @@ give:
 * timers due at the same instant run in the order they were scheduled (a
   sequence number breaks the tie), so a run replays exactly;
 * a loop with nothing scheduled and nothing that could wake it raises
-  :class:`VirtualTimeDeadlock` instead of hanging.
+  :class:`VirtualTimeDeadlock` instead of hanging;
+* the clock keeps running however far it gets (tested to 3.2e9 s, a century):
+  asyncio runs a timer only if ``when < time() + clock_resolution``, and the
+  host's resolution (1e-9 s) vanishes when added to a clock past 2^24 s (194
+  days), so a clock that jumps exactly to a timer would never see it due.  The
+  loop's resolution is therefore one unit in the last place of the clock
+  (never below 1e-9 s): a timer runs once the clock has reached it, not before.
 
 Real I/O and virtual time do not mix (a socket does not wait for a jumped
 clock): only the loop's own wake-up pipe is polled, never waited on.
@@ -28,12 +34,15 @@ from __future__ import annotations
 import asyncio
 import heapq
 import itertools
+import math
 import selectors
 from collections.abc import Awaitable, Callable
 from contextvars import Context
 from typing import Any, TypeVar
 
 POLL_EVERY = 16
+MIN_CLOCK_RESOLUTION = 1e-9
+"""The loop's clock resolution near zero (asyncio's on Linux); above 2^23 s it is the clock's ulp."""
 T = TypeVar("T")
 
 
@@ -161,6 +170,24 @@ class VirtualTimeLoop(asyncio.SelectorEventLoop):
 
     def time(self) -> float:
         return self._virtual_now
+
+    @property
+    def _clock_resolution(self) -> float:
+        """How far ahead of the clock a timer counts as due (read by asyncio's ``_run_once``).
+
+        ``when < now + resolution`` must hold for ``when == now`` at any
+        magnitude: one ulp of the clock makes ``now + resolution`` the next
+        double above ``now``, so exactly the timers with ``when <= now`` are
+        due, however large ``now`` is.  Below 2^23 s the 1e-9 s floor rules,
+        as it always did.
+        """
+        return max(MIN_CLOCK_RESOLUTION, math.ulp(self._virtual_now))
+
+    @_clock_resolution.setter
+    def _clock_resolution(self, host_resolution: float) -> None:
+        # asyncio stores the host clock's resolution at construction; a virtual
+        # clock has its own (above), the same on every host, so runs replay.
+        pass
 
     def _advance(self, seconds: float) -> None:
         self._virtual_now += seconds
