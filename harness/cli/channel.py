@@ -47,7 +47,8 @@ def run(args: argparse.Namespace) -> int:
 
     scenario = load_scenario(args)
     try:
-        trails = TrailSet(scenario, keep="all" if args.trails else "usable", progress=progress_bar("generating trails"))
+        with progress_bar("generating trails", scenario.duration_s, quiet=args.quiet) as show:
+            trails = TrailSet(scenario, keep="all" if args.trails else "usable", progress=(lambda fraction: show(fraction * scenario.duration_s)) if show else None)
     except PathError as exc:
         raise UserError(str(exc)) from None
     warn_if_short(trails.geometry.distance_km)

@@ -1,11 +1,21 @@
 """What the sub-commands share: the one-line user error, the safety note, the
-scenario options of ``channel`` and ``simulate`` and the progress bar."""
+scenario options of ``channel`` and ``simulate``, the short-path warning and the
+progress bar."""
 
 from __future__ import annotations
 
 import argparse
+import logging
+import os
 import sys
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from typing import Any
+
+log = logging.getLogger(__name__)
+
+REDRAW_INTERVAL_S = 0.25
+"""Least wall time between two redraws of a progress bar: a person reads four a second at most."""
 
 SAFETY = """\
 safety: meteor-burst links use VHF transmitters of tens to hundreds of watts.
@@ -54,23 +64,69 @@ def load_scenario(args: argparse.Namespace) -> Any:
 
 
 def warn_if_short(distance_km: float) -> None:
-    """The warning ``channel`` and ``simulate`` print for a path too short for meteor burst."""
+    """The warning ``channel`` and ``simulate`` log for a path too short for meteor burst."""
     from ionotrail.harness.channel.geometry import SHORT_PATH_KM
 
     if distance_km < SHORT_PATH_KM:
-        print(
-            f"warning: a {distance_km:.0f} km path is short for meteor burst; expect few usable trails with ordinary antennas",
-            file=sys.stderr,
-        )
+        log.warning("a %.0f km path is short for meteor burst; expect few usable trails with ordinary antennas", distance_km)
 
 
-def progress_bar(label: str) -> Any:
-    """A progress callback drawing a bar on a terminal's stderr; None when stderr is not one."""
-    if not sys.stderr.isatty():
-        return None
+def clock(seconds: float) -> str:
+    """Simulated time as ``[Nd ]HH:MM:SS``."""
+    whole = int(seconds)
+    days, rest = divmod(whole, 86400)
+    text = f"{rest // 3600:02d}:{rest % 3600 // 60:02d}:{rest % 60:02d}"
+    return f"{days}d {text}" if days else text
 
-    def show(fraction: float) -> None:
-        bar = "#" * int(30 * fraction)
-        print(f"\r{label} [{bar:<30}] {100 * fraction:5.1f}%", end="" if fraction < 1 else "\n", file=sys.stderr, flush=True)
 
-    return show
+def _columns() -> int:
+    """The width of the terminal on stderr; 80 when it reports none (a pseudo-terminal never sized)."""
+    try:
+        return os.get_terminal_size(sys.stderr.fileno()).columns or 80
+    except (OSError, ValueError):
+        return 80
+
+
+@contextmanager
+def progress_bar(label: str, total_s: float, quiet: bool = False) -> Iterator[Callable[[float, str], None] | None]:
+    """A progress bar on stderr counting simulated time, ``show(done_s, note)``; None off a terminal or when quiet.
+
+    The bar (tqdm) shows the simulated time done and the period, the wall time
+    elapsed and left, and the rate in simulated days per wall second; ``show``
+    may be called as often as wanted, the bar redraws at most every
+    REDRAW_INTERVAL_S.  It is closed, on its last figures, however the block ends.
+    """
+    if quiet or not sys.stderr.isatty():
+        yield None
+        return
+    from tqdm import tqdm
+
+    class SimulatedTime(tqdm):  # type: ignore[type-arg]
+        note = ""
+
+        @property
+        def format_dict(self) -> dict[str, Any]:  # computed only when the bar redraws
+            d: dict[str, Any] = super().format_dict
+            rate = d["rate"] or (d["n"] / d["elapsed"] if d["elapsed"] else 0.0)  # simulated days per wall second
+            speed = "?" if not rate else f"{rate:,.2f} days/s" if rate >= 1 else f"{1 / rate:,.1f} s/day"
+            return {**d, "simulated": clock(d["n"] * 86400), "period": clock(d["total"] * 86400), "speed": speed, "note": self.note}
+
+    days = total_s / 86400
+    bar = SimulatedTime(
+        total=days,
+        desc=label,
+        unit="day",
+        file=sys.stderr,
+        ncols=_columns(),
+        mininterval=REDRAW_INTERVAL_S,
+        bar_format="{desc} {percentage:3.0f}%|{bar}| {simulated} of {period} [{elapsed}<{remaining}, {speed}]{note}",
+    )
+
+    def show(done_s: float, note: str = "") -> None:
+        bar.note = f" {note}" if note else ""
+        bar.update(min(days, done_s / 86400) - bar.n)
+
+    try:
+        yield show
+    finally:
+        bar.close()

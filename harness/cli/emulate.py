@@ -88,7 +88,8 @@ def run(args: argparse.Namespace) -> int:
     except UsageError as exc:
         raise UserError(str(exc)) from None
     try:
-        trails = TrailSet(scenario, progress=progress_bar("generating trails"))
+        with progress_bar("generating trails", scenario.duration_s, quiet=args.quiet) as show:
+            trails = TrailSet(scenario, progress=(lambda fraction: show(fraction * scenario.duration_s)) if show else None)
     except PathError as exc:
         raise UserError(str(exc)) from None
     warn_if_short(trails.geometry.distance_km)

@@ -4,11 +4,22 @@ from __future__ import annotations
 
 import argparse
 import json
+import logging
 import sys
 from pathlib import Path
 from typing import IO, Any
 
-from ionotrail.harness.cli.common import SAFETY, UserError, add_scenario_options, load_scenario, warn_if_short
+from ionotrail.harness.cli.common import (
+    SAFETY,
+    UserError,
+    add_scenario_options,
+    clock,
+    load_scenario,
+    progress_bar,
+    warn_if_short,
+)
+
+log = logging.getLogger(__name__)
 
 
 def add_parser(commands: Any) -> None:
@@ -34,26 +45,6 @@ def add_parser(commands: Any) -> None:
     p.add_argument("--deliveries", metavar="FILE.jsonl", help="write every delivered message to FILE, one JSON object a line")
     p.add_argument("--trace", metavar="FILE.jsonl", help="write every frame either station sent or heard to FILE (ionotrail decode --trace reads it)")
     p.set_defaults(handler=run)
-
-
-def clock(seconds: float) -> str:
-    whole = int(seconds)
-    days, rest = divmod(whole, 86400)
-    text = f"{rest // 3600:02d}:{rest % 3600 // 60:02d}:{rest % 60:02d}"
-    return f"{days}d {text}" if days else text
-
-
-def _progress() -> Any:
-    if not sys.stderr.isatty():
-        return None
-
-    def show(done: float, total: float, delivered: int) -> None:
-        fraction = min(1.0, done / total) if total else 1.0
-        bar = "#" * int(30 * fraction)
-        end = "\n" if fraction >= 1 else ""
-        print(f"\rsimulating [{bar:<30}] {clock(done)} of {clock(total)}, {delivered} delivered", end=end, file=sys.stderr, flush=True)
-
-    return show
 
 
 def _open_output(name: str) -> IO[str]:
@@ -92,19 +83,24 @@ def run(args: argparse.Namespace) -> int:
     except PathError as exc:
         raise UserError(str(exc)) from None
     warn_if_short(geometry.distance_km)
+    log.info(
+        "simulating %s of %s (%s), a %.0f km path, policy %s, seed %d",
+        clock(scenario.duration_s), scenario.name, scenario.source, geometry.distance_km, args.policy, scenario.seed,
+    )
     # Outputs are opened before the run, so a bad path fails at once, not after it.
     report_file = _open_output(args.json) if args.json else None
     deliveries_file = _open_output(args.deliveries) if args.deliveries else None
     trace_file = _open_output(args.trace) if args.trace else None
     try:
-        result = simulate(
-            scenario,
-            args.policy,
-            record_timeline=bool(args.plot),
-            on_delivery=json_lines_sink(deliveries_file) if deliveries_file else None,
-            progress=_progress(),
-            trace=trace_file,
-        )
+        with progress_bar("simulating", scenario.duration_s, quiet=args.quiet) as show:
+            result = simulate(
+                scenario,
+                args.policy,
+                record_timeline=bool(args.plot),
+                on_delivery=json_lines_sink(deliveries_file) if deliveries_file else None,
+                progress=(lambda done, total, delivered: show(done, f"{delivered:,} delivered")) if show else None,
+                trace=trace_file,
+            )
     except PathError as exc:
         raise UserError(str(exc)) from None
     except BaseException:
