@@ -194,6 +194,30 @@ def test_simulate_warns_of_a_short_path_as_channel_does() -> None:
     assert warnings[0] == warnings[1] and len(warnings[0]) == 1 and "km path is short for meteor burst" in warnings[0][0]
 
 
+def test_quiet_silences_the_short_path_warning_and_verbose_adds_notes() -> None:
+    # The same short path as above (about 250 km; SHORT_PATH_KM in harness/channel/geometry.py is 400 km).
+    short = ["--hours", "0.1", "--set", "master.lat_deg=60.0", "--set", "master.lon_deg=18.0"]
+    for command in ("channel", "simulate"):
+        quiet = run(command, *short, "-q")
+        assert quiet.returncode == 0 and quiet.stderr == "", quiet.stderr
+        figures = [line for line in quiet.stdout.splitlines() if "wall time" not in line]
+        assert figures == [line for line in run(command, *short).stdout.splitlines() if "wall time" not in line]  # stderr only
+    verbose = run("simulate", *short, "-v").stderr.splitlines()
+    assert verbose[0].startswith("warning: a 251 km path is short for meteor burst"), verbose
+    assert verbose[1] == "simulating 00:06:00 of Haldane Creek to Kestrel Ridge (demo) (built-in demo), a 251 km path, policy adaptive, seed 1"
+    assert run("simulate", *short, "-q", "-v").returncode == 2  # one or the other
+
+
+def test_warnings_go_through_logging(caplog: pytest.LogCaptureFixture, capsys: pytest.CaptureFixture[str]) -> None:
+    short = ["--hours", "0.1", "--set", "master.lat_deg=60.0", "--set", "master.lon_deg=18.0"]
+    assert main(["channel", *short]) == 0
+    [record] = [r for r in caplog.records if r.levelname == "WARNING"]
+    assert record.name == "ionotrail.harness.cli.common" and "km path is short for meteor burst" in record.getMessage()
+    assert "warning: a 251 km path is short for meteor burst" in capsys.readouterr().err
+    assert main(["channel", *short]) == 0
+    assert capsys.readouterr().err.count("warning:") == 1  # the handler main() adds is gone when it returns
+
+
 def test_decode_cobs_without_a_file_is_refused(capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["decode", "--cobs", "00"]) == 2
     assert "--cobs" in capsys.readouterr().err

@@ -79,12 +79,19 @@ def clock(seconds: float) -> str:
     return f"{days}d {text}" if days else text
 
 
-def _columns() -> int:
-    """The width of the terminal on stderr; 80 when it reports none (a pseudo-terminal never sized)."""
+def _day_clock(days: float) -> str:
+    """Simulated time in a progress bar, to the minute: ``2d 18:50``."""
+    minutes = int(days * 1440)
+    return f"{minutes // 1440}d {minutes % 1440 // 60:02d}:{minutes % 60:02d}"
+
+
+def _terminal_size() -> tuple[int, int]:
+    """Columns and lines of the terminal on stderr; 80 by 24 where it reports none (a pseudo-terminal never sized)."""
     try:
-        return os.get_terminal_size(sys.stderr.fileno()).columns or 80
+        size = os.get_terminal_size(sys.stderr.fileno())
     except (OSError, ValueError):
-        return 80
+        return 80, 24
+    return size.columns or 80, size.lines or 24
 
 
 @contextmanager
@@ -109,15 +116,21 @@ def progress_bar(label: str, total_s: float, quiet: bool = False) -> Iterator[Ca
             d: dict[str, Any] = super().format_dict
             rate = d["rate"] or (d["n"] / d["elapsed"] if d["elapsed"] else 0.0)  # simulated days per wall second
             speed = "?" if not rate else f"{rate:,.2f} days/s" if rate >= 1 else f"{1 / rate:,.1f} s/day"
-            return {**d, "simulated": clock(d["n"] * 86400), "period": clock(d["total"] * 86400), "speed": speed, "note": self.note}
+            simulated, period = _day_clock(d["n"]), _day_clock(d["total"])
+            # The note goes first when the line would leave the bar less than ten columns.
+            width = len(self.desc) + len(simulated) + len(period) + len(speed) + 28 + len(self.note) + 10
+            note = self.note if width <= (d["ncols"] or 80) else ""
+            return {**d, "simulated": simulated, "period": period, "speed": speed, "note": note}
 
     days = total_s / 86400
+    columns, lines = _terminal_size()
     bar = SimulatedTime(
         total=days,
         desc=label,
         unit="day",
         file=sys.stderr,
-        ncols=_columns(),
+        ncols=columns,
+        nrows=lines,
         mininterval=REDRAW_INTERVAL_S,
         bar_format="{desc} {percentage:3.0f}%|{bar}| {simulated} of {period} [{elapsed}<{remaining}, {speed}]{note}",
     )
