@@ -21,6 +21,7 @@ from typing import IO, Any
 
 import numpy as np
 from ionotrail.harness.channel.model import Channel, TrailSet
+from ionotrail.harness.channel.oracle import oracle_bound_bits
 from ionotrail.harness.channel.scenario import Scenario
 from ionotrail.harness.demo.gauge import Backlog, DemoGauge
 from ionotrail.harness.emulators.air import Air
@@ -45,7 +46,7 @@ REPORT_KEYS = (
     "messages.offered", "messages.delivered", "messages.duplicates_delivered", "messages.pending",
     "messages.abandoned", "messages.abandoned_reasons",
     "latency_s.p50", "latency_s.p95", "latency_s.p99", "latency_s.max",
-    "bits.payload_delivered", "bits.capacity_bound", "utilisation",
+    "bits.payload_delivered", "bits.capacity_bound", "bits.oracle_bound", "utilisation",
     "trails.total", "trails.used", "frames.sent", "frames.received", "frames.crc_failed",
     *(f"frames.refused.{r.value}" for r in FRAME_REFUSALS),
 )  # fmt: skip
@@ -220,12 +221,14 @@ def simulate(
         up = tr.open_s["up"] > 0
         peak_db = 10 * np.log10(np.maximum(tr.peak_ebn0["up"][up], 1e-12))
         timeline.openings = list(zip(tr.t[up].tolist(), peak_db.tolist(), tr.open_s["up"][up].tolist(), strict=True))
-    report = _report(scenario, policy, trails, air, master, link, ledger, deliveries, wall, duration)
+    oracle = oracle_bound_bits(channel, until=duration, turnaround=limits.turnaround, burst_silence=limits.burst_silence,
+                               max_payload=limits.max_fragment_payload)
+    report = _report(scenario, policy, trails, air, master, link, ledger, deliveries, wall, duration, oracle)
     return Simulation(report, deliveries, timeline, link, master, air)
 
 
 def _report(scenario: Scenario, policy: str, trails: TrailSet, air: Air, master: MasterStation, link: Link, ledger: _Ledger,
-            deliveries: list[DeliveryRecord], wall: float, sim_seconds: float) -> dict[str, Any]:
+            deliveries: list[DeliveryRecord], wall: float, sim_seconds: float, oracle: float) -> dict[str, Any]:
     seen: dict[tuple[int, int, int, float | None], int] = {}
     for record in deliveries:
         key = (record.terminal, record.message_id, record.crc32c, record.created_s)
@@ -262,7 +265,7 @@ def _report(scenario: Scenario, policy: str, trails: TrailSet, air: Air, master:
             "p99": _percentile(latencies, 0.99),
             "max": round(max(latencies), 3) if latencies else None,
         },
-        "bits": {"payload_delivered": payload_bits, "capacity_bound": round(capacity)},
+        "bits": {"payload_delivered": payload_bits, "capacity_bound": round(capacity), "oracle_bound": round(oracle)},
         "utilisation": round(payload_bits / capacity, 4) if capacity > 0 else None,
         "trails": {"total": len(tr) if tr is not None else 0, "used": len(air.used_trails)},
         "frames": {
