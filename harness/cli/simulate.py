@@ -148,7 +148,8 @@ def simulation_table(r: dict[str, Any]) -> str:
         f"  latency    median {_fmt_s(lat['p50'])}   95 % {_fmt_s(lat['p95'])}   99 % {_fmt_s(lat['p99'])}   worst {_fmt_s(lat['max'])}",
         (
             f"  channel    {r['trails']['total']:,} trails opened the path, {r['trails']['used']:,} carried data;"
-            f" capacity bound {bits['capacity_bound'] / 1e6:,.2f} Mbit"
+            f" capacity bound {bits['capacity_bound'] / 1e6:,.2f} Mbit (open time),"
+            f" oracle bound {bits['oracle_bound'] / 1e6:,.2f} Mbit"
         ),
         f"  payload    {bits['payload_delivered'] / 1e3:,.1f} kbit delivered = {utilisation} of the capacity bound",
         (
