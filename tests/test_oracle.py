@@ -138,3 +138,14 @@ def test_no_policy_beats_the_oracle_bound_except_by_luck(overrides: list[str], s
             bits = report["bits"]
             assert bits["oracle_bound"] > 0
             assert bits["payload_delivered"] <= MARGIN * bits["oracle_bound"], (seed, policy, bits)
+
+
+def test_planning_in_batches_changes_nothing_and_keeps_memory_flat() -> None:
+    # Openings are independent, so the bound over batches equals the bound over all at once.
+    s = scenario.load(None, ["scenario.duration_hours=2"])
+    channel = Channel(TrailSet(s))
+    options = {"until": 2 * 3600.0, "turnaround": s.turnaround_s, "burst_silence": s.burst_silence_s}
+    plans = oracle.openings(channel, **options)
+    assert len(plans) > oracle.ORACLE_BATCH, "the run spans more than one batch"
+    whole = float(np.sum(oracle.plan_values(plans)))
+    assert oracle.oracle_bound_bits(channel, **options) == pytest.approx(whole, rel=1e-9)

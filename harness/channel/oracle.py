@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from collections.abc import Iterator
 
 import numpy as np
 from ionotrail.harness.channel import physics
@@ -135,7 +136,15 @@ def plan_values(openings: list[OpeningPlan], *, step_bytes: int = STEP_BYTES, ma
 
 def openings(channel: Channel, *, until: float, turnaround: float, burst_silence: float, step_bytes: int = STEP_BYTES,
              max_payload: int = MAX_FRAGMENT_PAYLOAD, overhead: int = FRAGMENT_OVERHEAD_BYTES, p_min: float = P_MIN) -> list[OpeningPlan]:
-    """The uplink's openings before ``until`` as the oracle plans them.
+    """The uplink's openings before ``until`` as the oracle plans them (see :func:`iter_openings`)."""
+    return list(iter_openings(channel, until=until, turnaround=turnaround, burst_silence=burst_silence, step_bytes=step_bytes,
+                              max_payload=max_payload, overhead=overhead, p_min=p_min))  # fmt: skip
+
+
+def iter_openings(channel: Channel, *, until: float, turnaround: float, burst_silence: float, step_bytes: int = STEP_BYTES,
+                  max_payload: int = MAX_FRAGMENT_PAYLOAD, overhead: int = FRAGMENT_OVERHEAD_BYTES,
+                  p_min: float = P_MIN) -> Iterator[OpeningPlan]:  # fmt: skip
+    """The uplink's openings before ``until`` as the oracle plans them, one at a time.
 
     An opening is a period in which the shortest fragment could arrive with
     probability above ``p_min`` (``Channel.audible_windows``), periods less
@@ -157,7 +166,6 @@ def openings(channel: Channel, *, until: float, turnaround: float, burst_silence
     direction = "up"
     live_end = trails.t + trails.hold[direction] + FADED_TAUS * trails.tau[direction]
     modulation = channel.modulation
-    plans = []
     tail_bytes = (max_payload + overhead + 2 * step_bytes) + 1
     for a, b in joined:
         first = a + turnaround
@@ -173,13 +181,27 @@ def openings(channel: Channel, *, until: float, turnaround: float, burst_silence
         for i in idx.tolist():
             ebn0 = np.maximum(ebn0, channel._envelope(direction, np.full(n, i, dtype=np.int64), t))
         ber = physics.bit_error_rate(modulation, ebn0)
-        plans.append(OpeningPlan(first, steps, np.log1p(-np.minimum(ber, 0.5))))
-    return plans
+        yield OpeningPlan(first, steps, np.log1p(-np.minimum(ber, 0.5)))
 
 
 def oracle_bound_bits(channel: Channel, *, until: float, turnaround: float, burst_silence: float, step_bytes: int = STEP_BYTES,
                       max_payload: int = MAX_FRAGMENT_PAYLOAD, overhead: int = FRAGMENT_OVERHEAD_BYTES) -> float:
-    """Expected uplink payload bits of the oracle over every opening before ``until``."""
-    plans = openings(channel, until=until, turnaround=turnaround, burst_silence=burst_silence, step_bytes=step_bytes,
-                     max_payload=max_payload, overhead=overhead)
-    return float(np.sum(plan_values(plans, step_bytes=step_bytes, max_payload=max_payload, overhead=overhead)))
+    """Expected uplink payload bits of the oracle over every opening before ``until``.
+
+    Openings are independent, so they are planned :data:`ORACLE_BATCH` at a time:
+    memory stays flat however long the run."""
+    total, batch = 0.0, []
+    for plan in iter_openings(channel, until=until, turnaround=turnaround, burst_silence=burst_silence, step_bytes=step_bytes,
+                              max_payload=max_payload, overhead=overhead):  # fmt: skip
+        batch.append(plan)
+        if len(batch) == ORACLE_BATCH:
+            total += float(np.sum(plan_values(batch, step_bytes=step_bytes, max_payload=max_payload, overhead=overhead)))
+            batch = []
+    if batch:
+        total += float(np.sum(plan_values(batch, step_bytes=step_bytes, max_payload=max_payload, overhead=overhead)))
+    return total
+
+
+ORACLE_BATCH = 128
+"""Openings planned together: enough to keep numpy's passes long, few enough that
+the arrays stay a few megabytes (a demo day has about 1,200 openings)."""
