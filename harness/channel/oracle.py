@@ -165,6 +165,7 @@ def iter_openings(channel: Channel, *, until: float, turnaround: float, burst_si
     byte_s = 8.0 / channel.params["up"].bit_rate
     direction = "up"
     live_end = trails.t + trails.hold[direction] + FADED_TAUS * trails.tau[direction]
+    longest_life = float(np.max(live_end - trails.t))  # no trail that began earlier than this is still live
     modulation = channel.modulation
     tail_bytes = (max_payload + overhead + 2 * step_bytes) + 1
     for a, b in joined:
@@ -176,7 +177,8 @@ def iter_openings(channel: Channel, *, until: float, turnaround: float, burst_si
         n = steps * step_bytes + tail_bytes
         t = first + (np.arange(n) + 0.5) * byte_s
         hi = int(np.searchsorted(trails.t, t[-1], side="right"))
-        idx = np.nonzero(live_end[:hi] > first)[0]
+        lo = int(np.searchsorted(trails.t, first - longest_life, side="left"))  # trails sorted by start
+        idx = lo + np.nonzero(live_end[lo:hi] > first)[0]
         ebn0 = np.zeros(n)
         for i in idx.tolist():
             ebn0 = np.maximum(ebn0, channel._envelope(direction, np.full(n, i, dtype=np.int64), t))
