@@ -257,30 +257,6 @@ async def test_received_frames_reach_the_listener_on_the_loop_clock(ptys: Callab
         await port.close()
 
 
-@pytest.mark.asyncio
-async def test_arrival_times_keep_their_order_and_never_lie_in_the_future(ptys: Callable[[], Pty]) -> None:
-    # Common practice, no source: a clock the core reads moves forward, and an arrival
-    # cannot be later than the moment its bytes were read.
-    pty = ptys()
-    modem = ScriptedModem(pty, dialect("ionotrail"))
-    port = await opened(pty.path, "ionotrail")
-    arrivals: list[Arrival] = []
-    port.attach(arrivals.append)
-    loop = asyncio.get_running_loop()
-    try:
-        base = loop.time() + MODEM_CLOCK_AHEAD_S
-        # Modem times out of order (a modem bug) and one far in the future.
-        for offset, frame in ((0.0, b"a"), (-0.5, b"b"), (30.0, b"c")):
-            await modem.send(Received(modem_time_s=base + offset, snr_db=10.0, offset_hz=0.0, frame=frame))
-            await asyncio.sleep(0.02)
-        await until(lambda: len(arrivals) == 3, "three arrivals")
-        times = [a.time for a in arrivals]
-        assert times == sorted(times)
-        assert times[-1] <= loop.time()
-    finally:
-        await port.close()
-
-
 # --- KISS -----------------------------------------------------------------------------
 
 

@@ -231,7 +231,6 @@ class SerialPort(Port):
         self._listening: bool | None = None
         self._probe: tuple[bytes, float] | None = None
         self._stop_owed = False  # a probe stream was stopped while the line was down
-        self._last_arrival = -math.inf  # the time handed with the last arrival
         self._probe_handle: asyncio.Handle | None = None
         self._probe_epoch = 0.0
         self._probe_count = 0
@@ -534,10 +533,6 @@ class SerialPort(Port):
             time = self.clock.to_host(record.modem_time_s)
         else:
             time = now
-        # The estimate moves as readings come in: keep arrival times in order and
-        # never later than the read itself, as the core expects of a clock.
-        time = min(now, max(time, self._last_arrival))
-        self._last_arrival = time
         listener = self._listener
         if listener is None:
             return
