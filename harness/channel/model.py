@@ -24,7 +24,7 @@ import bisect
 import copy
 import dataclasses
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 
 import numpy as np
 from ionotrail.harness.channel import physics, sky
@@ -71,9 +71,8 @@ FADED_TAUS = 40.0  # past this many decay constants a trail no longer matters to
 """Wind shear breaks up long overdense trails: the plateau is capped at 15 s
 (common practice, no source; without a cap the q^-1 flux law gives a mean
 overdense duration that grows without bound)."""
-CHUNK_S = 86400.0
 RATE_GRID_S = 300.0
-"""Trails are generated one day at a time to bound memory."""
+"""Rates are evaluated on a 5-minute grid and interpolated."""
 
 UNDERDENSE, OVERDENSE = 0, 1
 DIRECTIONS = ("up", "down")
@@ -155,12 +154,40 @@ class Trails:
         return Trails(**out)  # type: ignore[arg-type]
 
 
-class TrailSet:
-    """Every trail of a scenario's period, generated once from its seed."""
+CELL_S = 21600.0
+"""Trails are drawn six hours at a time, each cell from its own keyed stream
+(``SeedSequence(seed, spawn_key=(TRAIL_STREAM, cell))``): a cell's trails
+are the same whichever window asks for them, in whatever order, and
+whatever the period's length (a cell past the period's end is drawn whole
+and cut)."""
+WINDOW_S = 86400.0
+"""Default window a simulation holds in memory: a day (a whole number of cells)."""
+TRAIL_STREAM = 0x54524C53  # "TRLS"
+SEARCH_STREAM = 0x514D494E  # "QMIN"
 
-    def __init__(self, scenario: Scenario, keep: str = "usable", progress: Callable[[float], None] | None = None) -> None:
-        """``keep``: "usable" keeps trails open in either direction, "all" keeps every trail drawn."""
+
+class TrailSet:
+    """The trails of a scenario's period, drawn cell by cell from its seed.
+
+    Nothing is drawn at construction.  :meth:`windows` yields the period
+    window by window (memory stays that of a window, however long the
+    period); :attr:`trails` holds the whole period at once, for short runs,
+    reports and plots.  Both give the same trails whatever ``window_s``.
+    """
+
+    def __init__(self, scenario: Scenario, keep: str = "usable", progress: Callable[[float], None] | None = None,
+                 window_s: float = WINDOW_S) -> None:  # fmt: skip
+        """``keep``: "usable" keeps trails open in either direction, "all" keeps every trail drawn.
+        ``progress`` hears the fraction of the period drawn when :attr:`trails` is built."""
+        if keep not in ("usable", "all"):
+            raise ValueError(f"keep must be 'usable' or 'all', not {keep!r}")
+        cells = window_s / CELL_S
+        if not (cells >= 1 and cells == int(cells)):
+            raise ValueError(f"window of {window_s:g} s is not a whole number of {CELL_S:g}-s cells")
         self.scenario = scenario
+        self.keep = keep
+        self.window_s = float(window_s)
+        self.progress = progress
         t, m = scenario.terminal, scenario.master
         self.geometry: PathGeometry = path_geometry(t.lat_deg, t.lon_deg, m.lat_deg, m.lon_deg, scenario.reflection_height_km)
         self.directions = {
@@ -168,24 +195,83 @@ class TrailSet:
             "down": _direction("down", scenario.down_mhz, m, t, scenario),
         }
         self.start_unix = scenario.start.timestamp()
-        self.rng = np.random.default_rng(scenario.seed)
+        self.duration_s = scenario.duration_s
         self._setup_frame()
         self.q_min = self._minimum_useful_q()
-        self.generated = 0
-        parts = []
-        duration = scenario.duration_s
-        chunk_start = 0.0
-        while chunk_start < duration:
-            chunk_end = min(duration, chunk_start + CHUNK_S)
-            trails = self._generate(chunk_start, chunk_end)
-            self.generated += len(trails)
-            if keep == "usable":
+        self._fixed: Trails | None = None  # hand-made trails (with_openings) replace the draws
+        self._all: Trails | None = None
+        self._generated: int | None = None
+
+    # --- the period, window by window ------------------------------------------------
+
+    @property
+    def window_count(self) -> int:
+        if self._fixed is not None:
+            return 1
+        return max(1, math.ceil(self.duration_s / self.window_s))
+
+    def window_bounds(self, w: int) -> tuple[float, float]:
+        """[start, end) of window ``w`` in seconds from the scenario's start."""
+        if self._fixed is not None:
+            return 0.0, math.inf
+        return w * self.window_s, min(self.duration_s, (w + 1) * self.window_s)
+
+    def window(self, w: int) -> Trails:
+        """The kept trails of window ``w`` (drawn now, not cached)."""
+        return self._window(w)[0]
+
+    def windows(self, first: int = 0) -> Iterator[tuple[int, Trails]]:
+        """(index, trails) of every window from ``first`` on, in order."""
+        for w in range(first, self.window_count):
+            yield w, self.window(w)
+
+    def _window(self, w: int) -> tuple[Trails, int]:
+        if self._fixed is not None:
+            return self._fixed, len(self._fixed)
+        start, end = self.window_bounds(w)
+        parts, drawn = [], 0
+        for cell in range(int(start // CELL_S), math.ceil(end / CELL_S)):
+            trails = self._cell(cell)
+            if (cell + 1) * CELL_S > self.duration_s:
+                trails = trails.select(trails.t < self.duration_s)
+            drawn += len(trails)
+            if self.keep == "usable":
                 trails = trails.select((trails.open_s["up"] > 0) | (trails.open_s["down"] > 0))
             parts.append(trails)
-            chunk_start = chunk_end
-            if progress:
-                progress(chunk_start / duration)
-        self.trails = Trails.concatenate(parts) if parts else None
+        return Trails.concatenate(parts), drawn
+
+    def _cell(self, cell: int) -> Trails:
+        rng = np.random.default_rng(np.random.SeedSequence(self.scenario.seed, spawn_key=(TRAIL_STREAM, cell)))
+        return self._generate(rng, cell * CELL_S, (cell + 1) * CELL_S)
+
+    # --- the whole period at once ------------------------------------------------------
+
+    @property
+    def trails(self) -> Trails:
+        """Every kept trail of the period (built on first use and kept)."""
+        if self._all is None:
+            parts, drawn = [], 0
+            for w in range(self.window_count):
+                trails, count = self._window(w)
+                parts.append(trails)
+                drawn += count
+                if self.progress:
+                    self.progress(min(1.0, self.window_bounds(w)[1] / self.duration_s))
+            self._all, self._generated = Trails.concatenate(parts), drawn
+        return self._all
+
+    @trails.setter
+    def trails(self, value: Trails) -> None:
+        self._fixed = self._all = value
+        self._generated = len(value)
+
+    @property
+    def generated(self) -> int:
+        """Trails drawn over the period, kept or not."""
+        if self._generated is None:
+            self.trails  # noqa: B018 -- builds the period and counts its draws
+        assert self._generated is not None
+        return self._generated
 
     # --- geometry ------------------------------------------------------------------
 
@@ -199,9 +285,10 @@ class TrailSet:
             "master": (r + m.height_m) * np.array([math.sin(half), 0.0, math.cos(half)]),
         }
 
-    def _points(self, n: int, height_km: Array) -> Array:
-        along = self.rng.uniform(-BOX_ALONG_KM / 2, BOX_ALONG_KM / 2, n) / EARTH_RADIUS_KM
-        across = self.rng.uniform(-BOX_ACROSS_KM / 2, BOX_ACROSS_KM / 2, n) / EARTH_RADIUS_KM
+    @staticmethod
+    def _points(rng: np.random.Generator, n: int, height_km: Array) -> Array:
+        along = rng.uniform(-BOX_ALONG_KM / 2, BOX_ALONG_KM / 2, n) / EARTH_RADIUS_KM
+        across = rng.uniform(-BOX_ACROSS_KM / 2, BOX_ACROSS_KM / 2, n) / EARTH_RADIUS_KM
         radius = (EARTH_RADIUS_KM + height_km) * 1000.0
         return np.stack(
             [radius * np.sin(along) * np.cos(across), radius * np.sin(across), radius * np.cos(along) * np.cos(across)],
@@ -253,7 +340,8 @@ class TrailSet:
         """A line density below which no trail anywhere in the box can open either direction."""
         n = 16384
         heights = np.full(n, 80.0)
-        points = self._points(n, heights)
+        rng = np.random.default_rng(np.random.SeedSequence(self.scenario.seed, spawn_key=(SEARCH_STREAM,)))
+        points = self._points(rng, n, heights)
         best = {}
         for d in self.directions.values():
             g = self._scatter_geometry(points, np.zeros((n, 3)))  # axis normal to the plane: cos^2 beta = 1
@@ -289,8 +377,7 @@ class TrailSet:
             showers.append(shower_flux * area * s.sporadic_scale * sky.shower_activity(unix_s, shower, lat, lon))
         return sporadic, showers
 
-    def _generate(self, start: float, end: float) -> Trails:
-        rng = self.rng
+    def _generate(self, rng: np.random.Generator, start: float, end: float) -> Trails:
         # Thinning: candidates at a bounding rate, each kept with probability
         # rate / bound.  Rates are evaluated on a 5-minute grid and interpolated
         # (the cycles vary over hours; the error is below 0.1 %).
@@ -315,7 +402,7 @@ class TrailSet:
         height = np.clip(rng.normal(self.scenario.reflection_height_km, HEIGHT_SPREAD_KM, n), 80.0, 115.0)
         d_coef = physics.diffusion(height) * 10 ** rng.normal(0.0, DIFFUSION_SCATTER_DEX, n)
         r0 = physics.initial_radius(height)
-        points = self._points(n, height)
+        points = self._points(rng, n, height)
         axis = rng.normal(size=(n, 3))
         axis /= _norm(axis)[:, None]
         g = self._scatter_geometry(points, axis)
@@ -360,10 +447,19 @@ class TrailSet:
         return "overdense" if code == OVERDENSE else "underdense"
 
     def capacity_bits(self, direction: str = "up") -> float:
-        """Bits a genie knowing every opening could move at the scenario rate, no overhead."""
-        if self.trails is None:
-            return 0.0
-        return float(np.sum(exclusive_open(self.trails.t, self.trails.open_s[direction])) * self.scenario.bit_rate)
+        """Bits a genie knowing every opening could move at the scenario rate, no
+        overhead: the open-time bound (the union of the openings' threshold-open
+        time, times the bit rate), summed window by window."""
+        total, reach = 0.0, -math.inf  # reach: the latest end of an opening so far
+        for _, trails in self.windows():
+            if not len(trails):
+                continue
+            start, length = trails.t, trails.open_s[direction]
+            end = start + length
+            earlier = np.maximum.accumulate(np.concatenate([[reach], end[:-1]]))
+            total += float(np.sum(np.maximum(0.0, end - np.maximum(start, earlier))))
+            reach = max(reach, float(end.max()))
+        return total * self.scenario.bit_rate
 
 
 CLEAR_BER = 1e-13  # below this per bit, a frame of at most 2,200 bits fails with p < 3e-10
@@ -457,23 +553,123 @@ def with_openings(trail_set: TrailSet, openings: list[Opening]) -> TrailSet:
         fade_hz=np.ones(n),
         fade_phase=zeros,
     )
-    out.generated = n
     return out
 
 
+@dataclasses.dataclass(frozen=True)
+class FrameOutlook:
+    """What the channel holds for one frame: the trail carrying it and the Eb/N0
+    reported for it (None: no trail), its success probability, and whether the
+    path was above threshold at its first bit (a receiver then synchronises)."""
+
+    carrier: tuple[int, float] | None
+    p_success: float
+    synchronised: bool
+
+
+def _strongest_of(live: list[tuple[int, _Trail]], t: float) -> tuple[int, float] | None:
+    best: tuple[int, float] | None = None
+    for i, row in live:
+        value = _envelope_at(row, t)
+        if value > 0 and (best is None or value > best[1]):
+            best = (i, value)
+    return best
+
+
+def _last_live(trails: Trails) -> float:
+    """When the last trail of a set fades past mattering (-inf for an empty set)."""
+    if not len(trails):
+        return -math.inf
+    return float(max(np.max(trails.t + trails.hold[d] + FADED_TAUS * trails.tau[d]) for d in DIRECTIONS))
+
+
+def audible_periods(trails: Trails, direction: str, floor: float) -> tuple[list[float], list[float]]:
+    """Merged (starts, ends) of the periods in which some trail of ``trails`` is above ``floor`` (linear Eb/N0)."""
+    if not len(trails):
+        return [], []
+    peak = trails.peak_ebn0[direction]
+    life = trails.hold[direction] + trails.tau[direction] * np.log(np.maximum(peak / floor, 1.0))
+    keep = peak > floor
+    starts: list[float] = []
+    ends: list[float] = []
+    for t, length in zip(trails.t[keep].tolist(), life[keep].tolist(), strict=True):
+        if starts and t <= ends[-1]:
+            ends[-1] = max(ends[-1], t + length)
+        else:
+            starts.append(t)
+            ends.append(t + length)
+    return starts, ends
+
+
+RETAIN_S = 600.0
+"""A streaming channel drops a window once its last trail has been faded this
+long before the latest time asked about; questions may look back this far."""
+
+
 class Channel:
-    """Questions a link simulation asks of a generated trail set."""
+    """Questions a link simulation asks of a trail set.
+
+    The trails are held window by window: a question about time t loads the
+    windows up to t, and windows whose every trail faded more than
+    :data:`RETAIN_S` before t are dropped, so memory is that of a day or two
+    however long the run.  Trail indices handed out (``strongest``,
+    ``frame_carrier``, ``doppler_of``) are positions in the whole period's
+    trail list, stable as windows come and go.  The vectorised methods and
+    :attr:`trails` work on the loaded trails (all of them, for a period of one window).
+    """
 
     def __init__(self, trails: TrailSet) -> None:
         self.set = trails
         self.params = trails.directions
-        data = trails.trails
-        self.trails = data
         self.modulation = trails.scenario.modulation
-        self._max_open = {d: float(np.max(data.open_s[d])) if data is not None and len(data) else 0.0 for d in DIRECTIONS}
-        self._columns = _Columns(data) if data is not None and len(data) else None
         self._ber = physics.ber_function(self.modulation)
         self._clear_ebn0 = _ebn0_for_ber(self._ber, CLEAR_BER)
+        self._loaded: list[tuple[int, Trails]] = []  # (window, its trails), in order
+        self._next_window = 0
+        self._base = 0  # whole-period index of the first loaded trail
+        self._hi = -math.inf  # trails starting before this are loaded (the next window's start)
+        self._audible: dict[tuple[str, float], tuple[list[float], list[float]]] = {}
+        self.trails: Trails | None = None
+        self._columns: _Columns | None = None
+        self._reach = {d: 0.0 for d in DIRECTIONS}
+        self._load_next(-math.inf)
+
+    # --- the loaded windows ----------------------------------------------------------
+
+    @property
+    def exhausted(self) -> bool:
+        """Every window of the period has been loaded."""
+        return self._next_window >= self.set.window_count
+
+    def _ensure(self, t: float) -> None:
+        """Load windows until every trail that starts by t is loaded."""
+        while t >= self._hi and not self.exhausted:
+            self._load_next(t)
+
+    def _load_next(self, now: float) -> None:
+        w = self._next_window
+        self._next_window += 1
+        self._loaded.append((w, self.set.window(w)))
+        self._hi = math.inf if self.exhausted else self.set.window_bounds(self._next_window)[0]
+        while len(self._loaded) > 1 and _last_live(self._loaded[0][1]) < now - RETAIN_S:
+            self._base += len(self._loaded.pop(0)[1])
+        parts = [trails for _, trails in self._loaded]
+        data = parts[0] if len(parts) == 1 else Trails.concatenate(parts)
+        self.trails = data
+        self._columns = _Columns(data) if len(data) else None
+        # How far back a trail can start and still matter: its threshold-open
+        # time, or its plateau and FADED_TAUS decay constants, whichever is longer.
+        self._reach = {
+            d: float(np.max(np.maximum(data.open_s[d], data.hold[d] + FADED_TAUS * data.tau[d]))) if len(data) else 0.0
+            for d in DIRECTIONS
+        }
+        self._audible.clear()
+
+    def _local(self, index: int) -> int:
+        local = index - self._base
+        if not 0 <= local < len(self.trails or ()):
+            raise IndexError(f"trail {index} is not loaded (loaded: {self._base} to {self._base + len(self.trails or ()) - 1})")
+        return local
 
     # --- one frame at a time (the link simulation's questions) ---------------------
     #
@@ -485,23 +681,21 @@ class Channel:
         """Trails that can matter to a frame on [t0, t1]: started by t1, and not
         more than FADED_TAUS decay constants past their plateau at t0 (below
         e^-40 of the peak, which moves a frame's success probability by less
-        than 1e-9; tests check it)."""
+        than 1e-9; tests check it).  Indices are whole-period ones."""
+        if t1 >= self._hi:
+            self._ensure(t1)
         c = self._columns
         if c is None:
             return []
         rows = c.rows[direction]
-        lo = bisect.bisect_left(c.t, t1 - self._max_open[direction])
+        lo = bisect.bisect_left(c.t, t1 - self._reach[direction])
         hi = bisect.bisect_right(c.t, t1)
-        return [(i, rows[i]) for i in range(lo, hi) if rows[i][0] + rows[i][1] + FADED_TAUS * rows[i][2] > t0]
+        base = self._base
+        return [(base + i, rows[i]) for i in range(lo, hi) if rows[i][0] + rows[i][1] + FADED_TAUS * rows[i][2] > t0]
 
     def strongest(self, direction: str, t: float) -> tuple[int, float] | None:
         """(index, linear Eb/N0) of the strongest trail at t, or None when none is up."""
-        best: tuple[int, float] | None = None
-        for i, row in self._live(direction, t, t):
-            value = _envelope_at(row, t)
-            if value > 0 and (best is None or value > best[1]):
-                best = (i, value)
-        return best
+        return _strongest_of(self._live(direction, t, t), t)
 
     def frame_carrier(self, direction: str, t0: float, bits: int) -> tuple[int, float] | None:
         """(index, linear Eb/N0) of the trail that carries a frame of ``bits`` sent
@@ -512,55 +706,76 @@ class Channel:
         whole frame; such a trail, measured as it forms, is the carrier when it
         is the stronger (otherwise the frame would be reported at the Eb/N0 of
         whatever faded trail its first bit met).  None when neither exists."""
-        best = self.strongest(direction, t0)
-        c = self._columns
-        if c is None:
-            return best
         duration = bits / self.params[direction].bit_rate
+        return self.outlook(direction, t0, bits, self._live(direction, t0, t0 + duration)).carrier
+
+    def outlook(self, direction: str, t0: float, bits: int, live: list[tuple[int, _Trail]] | None = None) -> FrameOutlook:
+        """Everything the air asks about one frame, from one lookup of the live
+        trails: its carrier (:meth:`frame_carrier`), its success probability
+        (:meth:`success_probability`) and whether the path was open at its first bit."""
+        duration = bits / self.params[direction].bit_rate
+        if live is None:
+            live = self._live(direction, t0, t0 + duration)
+        at_start = _strongest_of(live, t0)
+        best = at_start
         first_look = t0 + 0.5 * duration / _sample_count(duration)
-        rows = c.rows[direction]
-        for i in range(bisect.bisect_right(c.t, t0), bisect.bisect_right(c.t, first_look)):
-            value = _envelope_at(rows[i], rows[i][0])
-            if value > 0 and (best is None or value > best[1]):
-                best = (i, value)
-        return best
+        for i, row in live:
+            if t0 < row[0] <= first_look:
+                value = _envelope_at(row, row[0])
+                if value > 0 and (best is None or value > best[1]):
+                    best = (i, value)
+        threshold = self.params[direction].ebn0_threshold
+        p = self._success([row for _, row in live], t0, bits, duration)
+        return FrameOutlook(best, p, at_start is not None and at_start[1] >= threshold)
 
     def audible_windows(self, direction: str, bits: int, p_min: float = 1e-6) -> tuple[list[float], list[float]]:
-        """Merged (starts, ends) of the periods in which a frame of ``bits`` could
-        arrive with probability above ``p_min``: from each trail's start until
-        its envelope falls below the Eb/N0 at which even such a frame fails.
+        """Merged (starts, ends) over the whole period (:attr:`TrailSet.trails`)
+        of the periods in which a frame of ``bits`` could arrive with
+        probability above ``p_min``: from each trail's start until its
+        envelope falls below the Eb/N0 at which even such a frame fails.
         Short frames outlast the BER threshold that defines "open" by a few tau.
         Trails never above the threshold in either direction are not in the set."""
-        trails = self.trails
-        if trails is None or not len(trails):
-            return [], []
+        return audible_periods(self.set.trails, direction, self.audible_floor(bits, p_min))
+
+    def audible_floor(self, bits: int, p_min: float = 1e-6) -> float:
+        """Eb/N0 below which a frame of ``bits`` arrives with probability below ``p_min``."""
         ber = 1 - p_min ** (1 / bits)  # per-bit error rate at which the frame's success is p_min
-        floor = _ebn0_for_ber(self._ber, ber)
-        peak = trails.peak_ebn0[direction]
-        life = trails.hold[direction] + trails.tau[direction] * np.log(np.maximum(peak / floor, 1.0))
-        keep = peak > floor
-        starts: list[float] = []
-        ends: list[float] = []
-        for t, length in zip(trails.t[keep].tolist(), life[keep].tolist(), strict=True):
-            if starts and t <= ends[-1]:
-                ends[-1] = max(ends[-1], t + length)
-            else:
-                starts.append(t)
-                ends.append(t + length)
-        return starts, ends
+        return _ebn0_for_ber(self._ber, ber)
+
+    def next_audible(self, direction: str, bits: int, t: float, p_min: float = 1e-6) -> tuple[float, float] | None:
+        """The first (start, end) of :meth:`audible_windows` that ends after t,
+        found in the loaded windows (loading more as needed); None when the
+        period holds no more.  The answer is final: its end lies before the
+        first trail not yet loaded, or every window is loaded."""
+        self._ensure(t)
+        while True:
+            key = (direction, float(bits))
+            if key not in self._audible:
+                trails = self.trails
+                assert trails is not None
+                self._audible[key] = audible_periods(trails, direction, self.audible_floor(bits, p_min))
+            starts, ends = self._audible[key]
+            w = bisect.bisect_right(ends, t)
+            if w < len(starts) and ends[w] < self._hi:
+                return starts[w], ends[w]
+            if self.exhausted:
+                return (starts[w], ends[w]) if w < len(starts) else None
+            self._load_next(t)
 
     def doppler_of(self, direction: str, index: int) -> float:
         """Doppler offset (Hz) of trail ``index`` as seen in ``direction``."""
         assert self._columns is not None
-        return self._columns.rows[direction][index][7]
+        return self._columns.rows[direction][self._local(index)][7]
 
     def success_probability(self, direction: str, t0: float, bits: int) -> float:
         """:meth:`frame_success_probability`, computed in plain Python."""
         duration = bits / self.params[direction].bit_rate
-        t1 = t0 + duration
-        live = [row for _, row in self._live(direction, t0, t1)]
+        return self._success([row for _, row in self._live(direction, t0, t0 + duration)], t0, bits, duration)
+
+    def _success(self, live: list[_Trail], t0: float, bits: int, duration: float) -> float:
         if not live:
             return 0.0
+        t1 = t0 + duration
         if self._surely_clear(live, t0, t1):
             return 1.0
         samples = _sample_count(duration)
@@ -621,7 +836,7 @@ class Channel:
         tr = self.trails
         if tr is None or not len(tr):
             return np.zeros(0, dtype=np.int64)
-        lo = int(np.searchsorted(tr.t, t - self._max_open[direction], side="left"))
+        lo = int(np.searchsorted(tr.t, t - self._reach[direction], side="left"))
         hi = int(np.searchsorted(tr.t, t, side="right"))
         return np.arange(lo, hi, dtype=np.int64)
 
@@ -669,6 +884,45 @@ class Channel:
         ber = physics.bit_error_rate(self.modulation, ebn0)
         log_ok = np.sum(np.log1p(-np.minimum(ber, 0.5))) * bits / samples
         return float(math.exp(log_ok))
+
+    def success_probabilities(self, direction: str, t0: Array, bits: int) -> Array:
+        """:meth:`success_probability` of frames of ``bits`` sent at each of ``t0``
+        (sorted), in one numpy pass: the lazy probe stream's reckoning of the
+        probes it did not simulate one by one.  The same model and the same
+        shortcuts (1.0 when some trail is surely clear, 0.0 when none is
+        live); the numbers agree with the scalar path to rounding
+        (tests/test_channel_model.py)."""
+        out = np.zeros(len(t0))
+        if not len(t0):
+            return out
+        duration = bits / self.params[direction].bit_rate
+        self._ensure(float(t0[-1]) + duration)
+        tr = self.trails
+        if tr is None or not len(tr):
+            return out
+        lo = int(np.searchsorted(tr.t, float(t0[0]) + duration - self._reach[direction], side="left"))
+        hi = int(np.searchsorted(tr.t, float(t0[-1]) + duration, side="right"))
+        idx = np.arange(lo, hi, dtype=np.int64)
+        live_end = tr.t[idx] + tr.hold[direction][idx] + FADED_TAUS * tr.tau[direction][idx]
+        idx, live_end = idx[live_end > t0[0]], live_end[live_end > t0[0]]
+        if not len(idx):
+            return out
+        start = tr.t[idx][None, :]
+        live = (start <= t0[:, None] + duration) & (live_end[None, :] > t0[:, None])  # (frames, trails), as _live
+        samples = _sample_count(duration)
+        times = t0[:, None] + (np.arange(samples) + 0.5) * (duration / samples)  # (frames, samples)
+        env = self._envelope(direction, np.broadcast_to(idx, (*times.shape, len(idx))), times[..., None])
+        env = np.where(live[:, None, :], env, 0.0).max(axis=2)
+        ber = physics.bit_error_rate(self.modulation, env)
+        p = np.exp(np.sum(np.log1p(-np.minimum(ber, 0.5)), axis=1) * bits / samples)
+        # The scalar path's shortcut: some started trail stays above the clear floor over the frame.
+        age0 = t0[:, None] - start
+        hold, tau, peak = tr.hold[direction][idx], tr.tau[direction][idx], tr.peak_ebn0[direction][idx]
+        lowest = peak * np.exp(-np.maximum(age0 + duration - hold, 0.0) / tau)
+        ripple_floor = peak * (1 - tr.fade_depth[idx]) ** 2 / (1 + tr.fade_depth[idx] ** 2)
+        lowest = np.where(age0 < hold, np.minimum(lowest, ripple_floor), lowest)
+        clear = np.any(live & (age0 >= 0) & (lowest > self._clear_ebn0), axis=1)
+        return np.where(clear, 1.0, np.where(live.any(axis=1), p, 0.0))
 
     def frame_ok(self, direction: str, t0: float, bits: int, rng: np.random.Generator) -> bool:
         """Did a frame of ``bits`` sent at t0 get through?  Drawn from ``rng``."""

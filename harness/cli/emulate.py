@@ -90,6 +90,7 @@ def run(args: argparse.Namespace) -> int:
     try:
         with progress_bar("generating trails", scenario.duration_s, quiet=args.quiet) as show:
             trails = TrailSet(scenario, progress=(lambda fraction: show(fraction * scenario.duration_s)) if show else None)
+            trails.trails  # noqa: B018 -- draws the period now, under the progress bar
     except PathError as exc:
         raise UserError(str(exc)) from None
     warn_if_short(trails.geometry.distance_km)

@@ -16,18 +16,29 @@ The master's probe stream is simulated only where it can matter: probes are
 emitted on their fixed cadence, but the loop is woken only for emissions
 while some trail could still carry one (past the downlink's threshold-open
 time: a short probe outlives it), and only probes that arrive intact are
-reported.  A day with no trails costs no events at all.
+reported.  A day with no trails costs no events at all.  And while the
+terminal is indifferent to the probe (idle, nothing to send, the probe the
+same as the last it heard: :meth:`~ionotrail.terminal.link.terminal.Link.indifferent_to`),
+the probes up to the loop's next event are not simulated one by one: their
+outcomes are reckoned in one numpy pass and handed over as a count
+(:meth:`~ionotrail.terminal.link.terminal.Link.heard_unchanged`).
+
+Every random draw is keyed (:mod:`~ionotrail.harness.channel.draws`): frame n
+of a direction, and probe k of a probing epoch, draw from their own counter,
+so a probe reckoned in bulk draws exactly what it would have drawn alone,
+and skipping work never shifts a later draw.
 """
 
 from __future__ import annotations
 
 import asyncio
-import bisect
 import dataclasses
 import math
 from collections.abc import Callable
+from typing import Protocol
 
 import numpy as np
+from ionotrail.harness.channel import draws
 from ionotrail.harness.channel.model import Channel
 from ionotrail.terminal.link.terminal import Arrival
 from ionotrail.terminal.ports import Listener, Port
@@ -35,6 +46,19 @@ from ionotrail.terminal.wire import IDLE_PROBE_BYTES
 
 DIRECTION_OF = {"terminal": "up", "master": "down"}
 SHORTEST_PROBE_BYTES = IDLE_PROBE_BYTES  # a probe carrying no poll, acknowledgement or command
+AIR_STREAM = 0x41495230  # "AIR0": the air's draws, apart from the trails'
+FRAME_DRAW, FLIP_DRAW, PROBE_DRAW = 1, 2, 3
+EPOCH_SHIFT = 40
+"""Probe k of probing epoch e draws counter (e << 40) + k: 2^40 probes an epoch
+is 3,500 years at 0.1 s."""
+
+
+class IdleTerminal(Protocol):
+    """What the air asks of the terminal's link to skip probes it would ignore."""
+
+    def indifferent_to(self, raw: bytes) -> bool: ...
+
+    def heard_unchanged(self, raw: bytes, count: int, last: float) -> None: ...
 
 
 @dataclasses.dataclass
@@ -46,6 +70,7 @@ class AirCounters:
     probes_delivered: int = 0
     probes_unheard: int = 0  # intact but the terminal was deaf (receiver off or transmitting half duplex)
     probes_filtered: int = 0  # intact but removed by a fault hook
+    probes_reckoned: int = 0  # of those emitted in openings, reckoned in bulk rather than one by one
 
 
 class Air:
@@ -57,12 +82,18 @@ class Air:
     seeded by ``seed``, so they never disturb the trail draws.
     ``oscillator_ppm`` is the offset between the two stations' oscillators:
     a receiver measures it (at its carrier) plus the carrying trail's Doppler,
-    which the channel gives without it.
+    which the channel gives without it.  ``idle_terminal``, when given, lets
+    the probe stream skip probes the terminal would ignore (module docstring).
     """
 
     def __init__(self, channel: Channel, *, seed: int, half_duplex: bool = False, origin: float | None = None, oscillator_ppm: float = 0.0) -> None:
         self.channel = channel
-        self.rng = np.random.default_rng([seed, 0x41495230])  # "AIR0": a stream of its own
+        self._frame_key = {d: draws.stream_key(seed, AIR_STREAM, FRAME_DRAW, i) for i, d in enumerate(("up", "down"))}
+        self._flip_key = {d: draws.stream_key(seed, AIR_STREAM, FLIP_DRAW, i) for i, d in enumerate(("up", "down"))}
+        self._probe_key = draws.stream_key(seed, AIR_STREAM, PROBE_DRAW)
+        self._frame_serial = {"up": 0, "down": 0}
+        self._probe_epoch_serial = -1
+        self.idle_terminal: IdleTerminal | None = None
         self.half_duplex = half_duplex
         self.origin = origin
         self.bit_rate = {d: channel.params[d].bit_rate for d in ("up", "down")}
@@ -80,9 +111,6 @@ class Air:
         self._running: asyncio.AbstractEventLoop | None = None
         self.master = SimulatedPort(self, "master")
         self.terminal = SimulatedPort(self, "terminal")
-        # Probes are simulated wherever even the shortest could still arrive (a
-        # shortest probe outlives the BER threshold that defines "open" by a few tau).
-        self._windows = channel.audible_windows("down", 8 * SHORTEST_PROBE_BYTES)
 
     # --- clocks ----------------------------------------------------------------------
 
@@ -108,18 +136,20 @@ class Air:
         end = start + bits / self.bit_rate[direction]
         sender.busy_until = end
         self.counters.frames_sent[direction] += 1
-        carrier = self.channel.frame_carrier(direction, start, bits)
+        serial = self._frame_serial[direction]
+        self._frame_serial[direction] = serial + 1
+        outlook = self.channel.outlook(direction, start, bits)
+        carrier = outlook.carrier
         snr_db = _db(carrier)
-        p = self.channel.success_probability(direction, start, bits)
-        intact = bool(self.rng.random() < p)
+        intact = draws.uniform(self._frame_key[direction], serial) < outlook.p_success
         if self.on_uplink is not None and direction == "up":
             self.on_uplink(start, len(frame), intact, snr_db)
         if intact:
             if direction == "up" and carrier is not None:
                 self.used_trails.add(carrier[0])
             delivered = frame
-        elif self._synchronised(direction, start):
-            bit = int(self.rng.integers(0, bits))
+        elif outlook.synchronised:
+            bit = draws.below(self._flip_key[direction], serial, bits)
             damaged = bytearray(frame)
             damaged[bit // 8] ^= 0x80 >> (bit % 8)
             delivered = bytes(damaged)
@@ -137,11 +167,6 @@ class Air:
             self.counters.frames_delivered[direction] += 1
         receiver.deliver(arrival)
 
-    def _synchronised(self, direction: str, start: float) -> bool:
-        """Was the path open at a frame's first bit, so the receiver caught it?"""
-        strongest = self.channel.strongest(direction, start)
-        return strongest is not None and strongest[1] >= self.threshold[direction]
-
     def _offset(self, direction: str, carrier: tuple[int, float] | None) -> float:
         """Frequency offset the receiver measures: oscillators plus the carrying trail's Doppler."""
         doppler = self.channel.doppler_of(direction, carrier[0]) if carrier else 0.0
@@ -157,66 +182,135 @@ class Air:
         if port.probe_frame is not None:
             port.probe_epoch = self.now()
             port.probe_count = 0
+            self._probe_epoch_serial += 1
             self._schedule_probe()
 
-    def _next_probe(self) -> tuple[float, float] | None:
-        """(emission, end) of the next probe emitted inside an opening, or None."""
+    def _next_probe(self) -> tuple[float, float, float] | None:
+        """(emission, end, end of its opening) of the next probe emitted inside
+        an opening, from probe number ``probe_count`` on, or None."""
         port = self.master
-        starts, ends = self._windows
+        frame = port.probe_frame
+        assert frame is not None
+        bits = 8 * SHORTEST_PROBE_BYTES  # probes are simulated wherever even the shortest could arrive
         interval = port.probe_interval
         while True:
             emit = port.probe_epoch + port.probe_count * interval
-            w = bisect.bisect_right(ends, emit)
-            if w >= len(starts):
+            window = self.channel.next_audible("down", bits, emit)
+            if window is None:
                 return None  # no opening left: the stream goes on unheard
-            if emit < starts[w]:
-                port.probe_count = math.ceil((starts[w] - port.probe_epoch) / interval)
+            start, end = window
+            if emit < start:
+                port.probe_count = math.ceil((start - port.probe_epoch) / interval)
                 emit = port.probe_epoch + port.probe_count * interval
-                if emit >= ends[w]:  # the opening fell between two probes
+                if emit >= end:  # the opening fell between two probes
                     continue
-            assert port.probe_frame is not None
-            return emit, emit + 8 * len(port.probe_frame) / self.bit_rate["down"]
+            return emit, emit + 8 * len(frame) / self.bit_rate["down"], end
 
     def _schedule_probe(self) -> None:
         """Wake the loop at the end of the next probe emitted inside an opening."""
         nxt = self._next_probe()
         if nxt is not None:
-            self.master.probe_handle = self._loop().call_at(self.origin + nxt[1], self._probe_arrives, *nxt)  # type: ignore[operator]
+            self.master.probe_handle = self._loop().call_at(self.origin + nxt[1], self._probe_arrives, nxt[0], nxt[1])  # type: ignore[operator]
 
     def _probe_arrives(self, emit: float, end: float) -> None:
         """A probe's last bit has arrived.  While nothing else is due before the
-        next probe, a virtual-time loop lets this run on to it directly."""
+        next probe, a virtual-time loop lets this run on to it directly; while
+        the terminal is indifferent, every probe up to the loop's next event is
+        reckoned in bulk."""
         port = self.master
         port.probe_handle = None
         loop = self._loop()
         advance = getattr(loop, "advance_if_idle", None)
+        quiet_until = getattr(loop, "quiet_until", None)
         while True:
-            self._one_probe(emit, end)
-            port.probe_count += 1
+            if quiet_until is not None and self._may_reckon():
+                self._reckon(quiet_until() - self.origin)  # type: ignore[operator]
+            else:
+                self._one_probe(emit, end)
+                port.probe_count += 1
             if port.probe_frame is None or port.probe_handle is not None:
                 return  # the stream was stopped or restarted meanwhile
             nxt = self._next_probe()
             if nxt is None:
                 return
-            emit, end = nxt
+            emit, end, _ = nxt
             if advance is None or not advance(self.origin + end):  # type: ignore[operator]
                 port.probe_handle = loop.call_at(self.origin + end, self._probe_arrives, emit, end)  # type: ignore[operator]
                 return
 
-    def _one_probe(self, emit: float, end: float) -> None:
+    def _may_reckon(self) -> bool:
         frame = self.master.probe_frame
+        return (
+            self.idle_terminal is not None
+            and self.probe_filter is None
+            and self.on_arrival is None  # an observer of every arrival is owed every probe
+            and frame is not None
+            and self.idle_terminal.indifferent_to(frame)
+        )
+
+    def _probe_counter(self, k: int) -> int:
+        return (self._probe_epoch_serial << EPOCH_SHIFT) + k
+
+    def _one_probe(self, emit: float, end: float) -> None:
+        port = self.master
+        frame = port.probe_frame
         assert frame is not None
         self.counters.probes_emitted_in_openings += 1
         bits = 8 * len(frame)
-        if self.rng.random() < self.channel.success_probability("down", emit, bits):
+        outlook = self.channel.outlook("down", emit, bits)
+        if draws.uniform(self._probe_key, self._probe_counter(port.probe_count)) < outlook.p_success:
             if self.probe_filter is not None and not self.probe_filter(end, frame):
                 self.counters.probes_filtered += 1
             elif self.terminal.hears(emit):
-                carrier = self.channel.frame_carrier("down", emit, bits)
+                carrier = outlook.carrier
                 self.counters.probes_delivered += 1
                 self.terminal.deliver(Arrival(frame, self.origin + end, _db(carrier), self._offset("down", carrier)))  # type: ignore[operator]
             else:
                 self.counters.probes_unheard += 1
+
+    def _reckon(self, until: float) -> None:
+        """Every probe from number ``probe_count`` whose last bit arrives before
+        ``until`` (channel time), reckoned in bulk: drawn from the same keyed
+        counters and the same success model as one by one, counted, and handed
+        to the terminal as a count.  At least the current probe is reckoned."""
+        port = self.master
+        frame = port.probe_frame
+        assert frame is not None and self.idle_terminal is not None
+        airtime = 8 * len(frame) / self.bit_rate["down"]
+        heard, last = 0, -math.inf
+        first = True
+        while True:
+            nxt = self._next_probe()
+            if nxt is None:
+                break
+            _, end, window_end = nxt
+            if end >= until and not first:
+                break
+            first = False
+            k0 = port.probe_count
+            # Probes of this opening: emitted before it closes, arriving before ``until``.
+            last_emit = min(window_end, until - airtime)
+            count = max(1, math.ceil((last_emit - port.probe_epoch) / port.probe_interval) - k0)
+            emits = port.probe_epoch + np.arange(k0, k0 + count) * port.probe_interval
+            p = self.channel.success_probabilities("down", emits, 8 * len(frame))
+            intact = draws.uniforms(self._probe_key, self._probe_counter(k0), count) < p
+            hears = self.terminal.listening and not self.terminal.closed
+            if self.half_duplex:
+                deaf = self.terminal.busy_until > emits
+            else:
+                deaf = np.zeros(count, dtype=bool)
+            got = intact & hears & ~deaf
+            n_heard = int(np.count_nonzero(got))
+            self.counters.probes_emitted_in_openings += count
+            self.counters.probes_reckoned += count
+            self.counters.probes_delivered += n_heard
+            self.counters.probes_unheard += int(np.count_nonzero(intact)) - n_heard
+            if n_heard:
+                heard += n_heard
+                last = float(emits[np.nonzero(got)[0][-1]]) + airtime
+            port.probe_count = k0 + count
+        if heard:
+            self.idle_terminal.heard_unchanged(frame, heard, self.origin + last)  # type: ignore[operator]
 
 
 def _db(carrier: tuple[int, float] | None) -> float:

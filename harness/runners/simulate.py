@@ -141,13 +141,16 @@ def simulate(
     on_delivery: Callable[[DeliveryRecord], None] | None = None,
     progress: Callable[[float, float, int], None] | None = None,
     trace: IO[str] | None = None,
+    lazy_probes: bool = True,
 ) -> Simulation:
     """Run ``scenario`` for its whole period (or ``seconds``); ``trails`` may be
     passed to reuse a realisation (the benchmark runs every policy on the same
     one) or to give hand-made openings; ``source`` is ``"demo"``, ``"backlog"``
     or any :class:`MessageSource`; ``configure_air`` may install fault hooks;
     ``master_commands`` are (terminal, opcode, arguments) the master sends from the start;
-    ``trace`` receives every frame either station sent or heard (:mod:`~ionotrail.harness.reports.trace`)."""
+    ``trace`` receives every frame either station sent or heard (:mod:`~ionotrail.harness.reports.trace`);
+    ``lazy_probes`` lets the air reckon in bulk the probes the idle terminal would
+    ignore (:mod:`~ionotrail.harness.emulators.air`; off only to check that it changes nothing)."""
     wall_start = time.perf_counter()
     duration = scenario.duration_s if seconds is None else float(seconds)
     if trails is None:
@@ -170,6 +173,8 @@ def simulate(
         loop = asyncio.get_running_loop()
         origin = loop.time()
         air = Air(channel, seed=scenario.seed, half_duplex=scenario.duplex == "half", origin=origin, oscillator_ppm=scenario.oscillator_ppm)
+        if lazy_probes and trace is None:
+            air.idle_terminal = link
         if configure_air is not None:
             configure_air(air)
         terminal_port: Port = air.terminal

@@ -212,6 +212,15 @@ class VirtualTimeLoop(asyncio.SelectorEventLoop):
         self.wakeups += 1
         return True
 
+    def quiet_until(self) -> float:
+        """Loop time of the next thing that could run: -inf when a callback is
+        ready, else the earliest timer (a cancelled one included: the answer
+        may be early, never late), or inf.  Nothing but the caller runs before it."""
+        if self._ready:  # type: ignore[attr-defined]
+            return -math.inf
+        scheduled = self._scheduled  # type: ignore[attr-defined]
+        return float(scheduled[0]._when) if scheduled else math.inf
+
     def call_at(  # type: ignore[override]
         self, when: float, callback: Callable[..., object], *args: Any, context: Context | None = None
     ) -> asyncio.TimerHandle:

@@ -227,6 +227,42 @@ class Link:
             raise UsageError(f"reply result of {len(result)} bytes exceeds {MAX_COMMAND_BYTES}")
         self.commands.answered(command_id, encode(Reply(self.terminal, self.master, command_id, status, result)))
 
+    def indifferent_to(self, raw: bytes) -> bool:
+        """Would hearing ``raw`` now change nothing but the count of probes heard
+        and the time of the last one?  True when it is the probe last decoded,
+        it carries no command for us, and the link is idle with nothing to send
+        and nothing outstanding (so a repeated acknowledgement settles nothing).
+        A simulator may then account for such probes in bulk
+        (:meth:`heard_unchanged`) instead of handing each over."""
+        frame = self._last_frame
+        return (
+            raw == self._last_raw
+            and isinstance(frame, Probe)
+            and frame.master == self.master
+            and not (frame.command is not None and frame.poll == self.terminal)
+            and self.state is State.LISTENING
+            and self.timer is None
+            and not self.commands.queued
+            and self.sender.pending == 0
+        )
+
+    def heard_unchanged(self, raw: bytes, count: int, last: float) -> None:
+        """``count`` probes ``raw`` were heard, the last at ``last``, while
+        :meth:`indifferent_to` held: exactly what :meth:`on_frame` would have
+        done with each, without the work."""
+        if count < 0:
+            raise UsageError(f"a count of probes heard cannot be negative ({count})")
+        if count == 0:
+            return
+        if not self.indifferent_to(raw):
+            raise UsageError("probes were accounted in bulk while the link was not indifferent to them")
+        frame = self._last_frame
+        assert isinstance(frame, Probe)
+        self.counters.probes_heard += count
+        if frame.poll is not None and frame.poll != self.terminal:
+            self.counters.probes_elsewhere += count
+        self._last_probe = max(self._last_probe, last)
+
     # --- facts ------------------------------------------------------------------------
 
     def _has_something(self) -> bool:
