@@ -327,6 +327,15 @@ class Sender:
             self.counters.presumed_lost_bytes += lost
             self.outcomes.append((end - start + FRAGMENT_OVERHEAD, lost > 0))
 
+    def count_stray_acks(self, count: int) -> None:
+        """``count`` acknowledgements arrived for messages no longer held: what
+        :meth:`on_ack` counts for each, when a caller accounts for them in bulk."""
+        if count < 0:
+            raise UsageError(f"a count of acknowledgements cannot be negative ({count})")
+        if self._queue:
+            raise UsageError("acknowledgements counted as stray while messages are held")
+        self.counters.stray_acks += count
+
     def on_ack(self, block: AckBlock, now: float, issued: float | None = None) -> list[SenderEvent]:
         """Apply an acknowledgement from the receiver; returns what finished.
 

@@ -259,6 +259,8 @@ class Link:
         frame = self._last_frame
         assert isinstance(frame, Probe)
         self.counters.probes_heard += count
+        if frame.ack is not None and frame.ack.terminal == self.terminal and not frame.ack.downlink:
+            self.sender.count_stray_acks(count)  # what _take_ack does with each: nothing is held
         if frame.poll is not None and frame.poll != self.terminal:
             self.counters.probes_elsewhere += count
         self._last_probe = max(self._last_probe, last)
