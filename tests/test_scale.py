@@ -237,3 +237,23 @@ def test_bulk_accounting_is_refused_when_the_link_is_not_indifferent() -> None:
     link.sender.queue(b"x" * 20, 11.0)
     with pytest.raises(UsageError, match="not indifferent"):
         link.heard_unchanged(probe, 1, 12.0)
+
+
+# --- the bounds, window by window ----------------------------------------------------------
+
+
+def test_the_bounds_summed_window_by_window_are_those_of_the_whole_period() -> None:
+    from ionotrail.harness.channel.oracle import oracle_bound_bits
+    from ionotrail.harness.runners.simulate import period_figures
+    from ionotrail.terminal.limits import DEFAULT_LIMITS
+
+    s = demo("scenario.duration_hours=60")
+    limits = dataclasses.replace(DEFAULT_LIMITS, turnaround=s.turnaround_s, burst_silence=s.burst_silence_s)
+    whole = TrailSet(s, window_s=3 * 86400.0)
+    streamed = period_figures(TrailSet(s, window_s=CELL_S), until=s.duration_s, limits=limits)
+    assert streamed.trails == len(whole.trails)
+    assert streamed.capacity_bits == pytest.approx(whole.capacity_bits("up"), rel=1e-12)
+    direct = oracle_bound_bits(Channel(whole), until=s.duration_s, turnaround=limits.turnaround,
+                               burst_silence=limits.burst_silence, max_payload=limits.max_fragment_payload)  # fmt: skip
+    assert streamed.oracle_bits == pytest.approx(direct, rel=1e-9)
+    assert direct > 1e6

@@ -218,14 +218,15 @@ class TrailSet:
 
     def window(self, w: int) -> Trails:
         """The kept trails of window ``w`` (drawn now, not cached)."""
-        return self._window(w)[0]
+        return self.draw_window(w)[0]
 
     def windows(self, first: int = 0) -> Iterator[tuple[int, Trails]]:
         """(index, trails) of every window from ``first`` on, in order."""
         for w in range(first, self.window_count):
             yield w, self.window(w)
 
-    def _window(self, w: int) -> tuple[Trails, int]:
+    def draw_window(self, w: int) -> tuple[Trails, int]:
+        """(kept trails, trails drawn) of window ``w``."""
         if self._fixed is not None:
             return self._fixed, len(self._fixed)
         start, end = self.window_bounds(w)
@@ -252,7 +253,7 @@ class TrailSet:
         if self._all is None:
             parts, drawn = [], 0
             for w in range(self.window_count):
-                trails, count = self._window(w)
+                trails, count = self.draw_window(w)
                 parts.append(trails)
                 drawn += count
                 if self.progress:
@@ -264,6 +265,12 @@ class TrailSet:
     def trails(self, value: Trails) -> None:
         self._fixed = self._all = value
         self._generated = len(value)
+
+    def fixed(self, trails: Trails) -> TrailSet:
+        """A copy of this set (scenario, geometry) whose trails are exactly ``trails``, in one window."""
+        out = copy.copy(self)
+        out.trails = trails
+        return out
 
     @property
     def generated(self) -> int:
@@ -576,7 +583,31 @@ def _strongest_of(live: list[tuple[int, _Trail]], t: float) -> tuple[int, float]
     return best
 
 
-def _last_live(trails: Trails) -> float:
+def _contenders(live: list[_Trail], t0: float, t1: float) -> list[_Trail]:
+    """The trails that can be the strongest somewhere in [t0, t1]: a trail whose
+    highest Eb/N0 over the span is below another's lowest never is, and leaving
+    it out changes no maximum (so no success probability)."""
+    spans = []
+    floor = 0.0
+    for row in live:
+        start, hold, tau, peak, f = row[0], row[1], row[2], row[3], row[4]
+        age0, age1 = t0 - start, t1 - start
+        ripple_top = peak * (1 + f) ** 2 / (1 + f * f)
+        if age0 < 0:  # forms within the span
+            high, low = max(ripple_top, peak) if hold > 0 else peak, 0.0
+        else:
+            low = peak * math.exp(-max(age1 - hold, 0.0) / tau)
+            if age0 < hold:
+                high = ripple_top
+                low = min(low, peak * (1 - f) ** 2 / (1 + f * f))
+            else:
+                high = peak * math.exp(-(age0 - hold) / tau)
+        spans.append(high)
+        floor = max(floor, low)
+    return [row for row, high in zip(live, spans, strict=True) if high >= floor]
+
+
+def last_live(trails: Trails) -> float:
     """When the last trail of a set fades past mattering (-inf for an empty set)."""
     if not len(trails):
         return -math.inf
@@ -624,6 +655,7 @@ class Channel:
         self.modulation = trails.scenario.modulation
         self._ber = physics.ber_function(self.modulation)
         self._clear_ebn0 = _ebn0_for_ber(self._ber, CLEAR_BER)
+        self._nil_ebn0 = _ebn0_for_ber(self._ber, 1e-30)
         self._loaded: list[tuple[int, Trails]] = []  # (window, its trails), in order
         self._next_window = 0
         self._base = 0  # whole-period index of the first loaded trail
@@ -651,7 +683,7 @@ class Channel:
         self._next_window += 1
         self._loaded.append((w, self.set.window(w)))
         self._hi = math.inf if self.exhausted else self.set.window_bounds(self._next_window)[0]
-        while len(self._loaded) > 1 and _last_live(self._loaded[0][1]) < now - RETAIN_S:
+        while len(self._loaded) > 1 and last_live(self._loaded[0][1]) < now - RETAIN_S:
             self._base += len(self._loaded.pop(0)[1])
         parts = [trails for _, trails in self._loaded]
         data = parts[0] if len(parts) == 1 else Trails.concatenate(parts)
@@ -778,6 +810,8 @@ class Channel:
         t1 = t0 + duration
         if self._surely_clear(live, t0, t1):
             return 1.0
+        if len(live) > 1:
+            live = _contenders(live, t0, t1)
         samples = _sample_count(duration)
         step = duration / samples
         ber, log1p = self._ber, math.log1p
@@ -907,19 +941,29 @@ class Channel:
         idx, live_end = idx[live_end > t0[0]], live_end[live_end > t0[0]]
         if not len(idx):
             return out
-        start = tr.t[idx][None, :]
-        live = (start <= t0[:, None] + duration) & (live_end[None, :] > t0[:, None])  # (frames, trails), as _live
+        start = tr.t[idx]
+        live = (start[None, :] <= t0[:, None] + duration) & (live_end[None, :] > t0[:, None])  # (frames, trails), as _live
         samples = _sample_count(duration)
         times = t0[:, None] + (np.arange(samples) + 0.5) * (duration / samples)  # (frames, samples)
-        env = self._envelope(direction, np.broadcast_to(idx, (*times.shape, len(idx))), times[..., None])
-        env = np.where(live[:, None, :], env, 0.0).max(axis=2)
-        ber = physics.bit_error_rate(self.modulation, env)
-        p = np.exp(np.sum(np.log1p(-np.minimum(ber, 0.5)), axis=1) * bits / samples)
+        hold, tau, peak = tr.hold[direction][idx], tr.tau[direction][idx], tr.peak_ebn0[direction][idx]
+        f = tr.fade_depth[idx]
+        age = times[..., None] - start  # (frames, samples, trails)
+        env = np.exp(-np.maximum(age - hold, 0.0) / tau)
+        if np.any(hold > 0):
+            ripple = (1 + 2 * f * np.cos(2 * math.pi * tr.fade_hz[idx] * age + tr.fade_phase[idx]) + f * f) / (1 + f * f)
+            env = np.where(age < hold, ripple, env)
+        env = np.where((age >= 0) & live[:, None, :], peak * env, 0.0).max(axis=2)
+        # Only samples weak enough to err count: above _nil_ebn0 a bit's error rate is below
+        # 1e-30, and log1p(-ber) rounds to zero in any sum it could join.
+        log_ok = np.zeros(env.shape)
+        weak = env < self._nil_ebn0
+        if np.any(weak):
+            log_ok[weak] = np.log1p(-np.minimum(physics.bit_error_rate(self.modulation, env[weak]), 0.5))
+        p = np.exp(np.sum(log_ok, axis=1) * bits / samples)
         # The scalar path's shortcut: some started trail stays above the clear floor over the frame.
         age0 = t0[:, None] - start
-        hold, tau, peak = tr.hold[direction][idx], tr.tau[direction][idx], tr.peak_ebn0[direction][idx]
         lowest = peak * np.exp(-np.maximum(age0 + duration - hold, 0.0) / tau)
-        ripple_floor = peak * (1 - tr.fade_depth[idx]) ** 2 / (1 + tr.fade_depth[idx] ** 2)
+        ripple_floor = peak * (1 - f) ** 2 / (1 + f**2)
         lowest = np.where(age0 < hold, np.minimum(lowest, ripple_floor), lowest)
         clear = np.any(live & (age0 >= 0) & (lowest > self._clear_ebn0), axis=1)
         return np.where(clear, 1.0, np.where(live.any(axis=1), p, 0.0))

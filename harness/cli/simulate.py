@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import logging
 import sys
+from collections.abc import Callable
 from pathlib import Path
 from typing import IO, Any
 
@@ -92,13 +94,24 @@ def run(args: argparse.Namespace) -> int:
     deliveries_file = _open_output(args.deliveries) if args.deliveries else None
     trace_file = _open_output(args.trace) if args.trace else None
     try:
-        with progress_bar("simulating", scenario.duration_s, quiet=args.quiet) as show:
+        with contextlib.ExitStack() as bars:
+            show = bars.enter_context(progress_bar("simulating", scenario.duration_s, quiet=args.quiet))
+            bounding: list[Callable[[float, str], None] | None] = []
+
+            def bound_progress(done: float, total: float) -> None:
+                if not bounding:  # the run is over: its bar closes on its last figures, the bounds' opens
+                    bars.close()
+                    bounding.append(bars.enter_context(progress_bar("oracle bound", total, quiet=args.quiet)))
+                if bounding[0] is not None:
+                    bounding[0](done, "")
+
             result = simulate(
                 scenario,
                 args.policy,
                 record_timeline=bool(args.plot),
                 on_delivery=json_lines_sink(deliveries_file) if deliveries_file else None,
                 progress=(lambda done, total, delivered: show(done, f"{delivered:,} delivered")) if show else None,
+                bound_progress=bound_progress if show else None,
                 trace=trace_file,
             )
     except PathError as exc:

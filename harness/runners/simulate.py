@@ -20,8 +20,8 @@ from collections.abc import Callable, Sequence
 from typing import IO, Any
 
 import numpy as np
-from ionotrail.harness.channel.model import Channel, TrailSet
-from ionotrail.harness.channel.oracle import oracle_bound_bits
+from ionotrail.harness.channel import oracle
+from ionotrail.harness.channel.model import Channel, Trails, TrailSet, last_live
 from ionotrail.harness.channel.scenario import Scenario
 from ionotrail.harness.demo.gauge import Backlog, DemoGauge
 from ionotrail.harness.emulators.air import Air
@@ -51,6 +51,8 @@ REPORT_KEYS = (
     *(f"frames.refused.{r.value}" for r in FRAME_REFUSALS),
 )  # fmt: skip
 PROGRESS_EVERY_S = 600.0  # simulated seconds between progress reports
+SEGMENT_MARGIN_S = 3600.0
+"""The oracle plans a window's openings on its trails and an hour either side (see :func:`period_figures`)."""
 
 
 @dataclasses.dataclass
@@ -142,6 +144,7 @@ def simulate(
     progress: Callable[[float, float, int], None] | None = None,
     trace: IO[str] | None = None,
     lazy_probes: bool = True,
+    bound_progress: Callable[[float, float], None] | None = None,
 ) -> Simulation:
     """Run ``scenario`` for its whole period (or ``seconds``); ``trails`` may be
     passed to reuse a realisation (the benchmark runs every policy on the same
@@ -149,6 +152,8 @@ def simulate(
     or any :class:`MessageSource`; ``configure_air`` may install fault hooks;
     ``master_commands`` are (terminal, opcode, arguments) the master sends from the start;
     ``trace`` receives every frame either station sent or heard (:mod:`~ionotrail.harness.reports.trace`);
+    ``bound_progress(done_s, total_s)`` hears the pass over the period that
+    computes the bounds after the run (:func:`period_figures`);
     ``lazy_probes`` lets the air reckon in bulk the probes the idle terminal would
     ignore (:mod:`~ionotrail.harness.emulators.air`; off only to check that it changes nothing)."""
     wall_start = time.perf_counter()
@@ -226,14 +231,90 @@ def simulate(
         up = tr.open_s["up"] > 0
         peak_db = 10 * np.log10(np.maximum(tr.peak_ebn0["up"][up], 1e-12))
         timeline.openings = list(zip(tr.t[up].tolist(), peak_db.tolist(), tr.open_s["up"][up].tolist(), strict=True))
-    oracle = oracle_bound_bits(channel, until=duration, turnaround=limits.turnaround, burst_silence=limits.burst_silence,
-                               max_payload=limits.max_fragment_payload)
-    report = _report(scenario, policy, trails, air, master, link, ledger, deliveries, wall, duration, oracle)
+    figures = period_figures(trails, until=duration, limits=limits, progress=bound_progress)
+    report = _report(scenario, policy, figures, air, master, link, ledger, deliveries, wall, duration)
     return Simulation(report, deliveries, timeline, link, master, air)
 
 
-def _report(scenario: Scenario, policy: str, trails: TrailSet, air: Air, master: MasterStation, link: Link, ledger: _Ledger,
-            deliveries: list[DeliveryRecord], wall: float, sim_seconds: float, oracle: float) -> dict[str, Any]:
+@dataclasses.dataclass(frozen=True)
+class PeriodFigures:
+    """What the report says of the channel over the run's period, apart from the run."""
+
+    trails: int  # kept (usable) trails that start before the period's end
+    capacity_bits: float  # the open-time bound, uplink
+    oracle_bits: float  # the oracle bound, uplink
+
+
+def period_figures(trail_set: TrailSet, *, until: float, limits: Limits = DEFAULT_LIMITS,
+                   progress: Callable[[float, float], None] | None = None) -> PeriodFigures:  # fmt: skip
+    """The trails, the open-time bound and the oracle bound of [0, until), in
+    one pass over the trail set's windows (memory: three windows).
+
+    Openings are planned window by window: window w's are those whose
+    (joined) start lies in it, planned on the trails of windows w - 1 to
+    w + 1, so that trails still live from the day before and openings that
+    run on past midnight are seen whole.  ``progress(done_s, until)`` hears
+    each window as it is done."""
+    turnaround, silence, max_payload = limits.turnaround, limits.burst_silence, limits.max_fragment_payload
+    count, capacity, bound = 0, 0.0, 0.0
+    reach = -math.inf  # the latest end of an uplink opening so far (the union runs across windows)
+    batch: list[oracle.OpeningPlan] = []
+    last = trail_set.window_count - 1
+    held: dict[int, Trails] = {}
+    byte_s = 8.0 / trail_set.directions["up"].bit_rate
+    for w in range(last + 1):
+        lo, hi = trail_set.window_bounds(w)
+        if lo >= until:
+            break
+        for k in range(max(0, w - 1), min(last, w + 1) + 1):
+            if k not in held:
+                held[k] = trail_set.window(k)
+        for k in [k for k in held if k < w - 1]:
+            del held[k]
+        own = held[w]
+        own = own.select(own.t < until) if hi > until else own
+        count += len(own)
+        if len(own):
+            end = own.t + own.open_s["up"]
+            earlier = np.maximum.accumulate(np.concatenate([[reach], end[:-1]]))
+            capacity += float(np.sum(np.maximum(0.0, end - np.maximum(own.t, earlier))))
+            reach = max(reach, float(end.max()))
+        nearby = Trails.concatenate([held[k] for k in sorted(held)])
+        for margin in (SEGMENT_MARGIN_S, math.inf):
+            # The trails of [lo - margin, hi + margin): enough unless a trail lives,
+            # or a chain of openings runs on, for longer than the margin (then: all three windows).
+            segment = nearby.select((nearby.t >= lo - margin) & (nearby.t < hi + margin)) if margin < math.inf else nearby
+            dropped = nearby.select(nearby.t < lo - margin) if margin < math.inf else None
+            if dropped is not None and len(dropped) and last_live(dropped) >= lo - silence:
+                continue
+            horizon = hi + margin if margin < math.inf else trail_set.window_bounds(w + 1)[1] if w < last else math.inf
+            plans = []
+            for plan in oracle.iter_openings(Channel(trail_set.fixed(segment)), until=until, turnaround=turnaround,
+                                             burst_silence=silence, max_payload=max_payload):  # fmt: skip
+                start = plan.start_s - turnaround
+                if start >= hi:
+                    break
+                if start >= lo:
+                    plans.append(plan)
+            if plans and plans[-1].start_s + plans[-1].steps * oracle.STEP_BYTES * byte_s > horizon - silence:
+                if margin < math.inf:
+                    continue
+                raise RuntimeError(f"an uplink opening runs on for more than a window from {plans[-1].start_s:.1f} s: its trails are not all held")
+            break
+        for plan in plans:
+            batch.append(plan)
+            if len(batch) == oracle.ORACLE_BATCH:
+                bound += float(np.sum(oracle.plan_values(batch, max_payload=max_payload)))
+                batch = []
+        if progress is not None:
+            progress(min(hi, until), until)
+    if batch:
+        bound += float(np.sum(oracle.plan_values(batch, max_payload=max_payload)))
+    return PeriodFigures(count, capacity * trail_set.scenario.bit_rate, bound)
+
+
+def _report(scenario: Scenario, policy: str, figures: PeriodFigures, air: Air, master: MasterStation, link: Link, ledger: _Ledger,
+            deliveries: list[DeliveryRecord], wall: float, sim_seconds: float) -> dict[str, Any]:
     seen: dict[tuple[int, int, int, float | None], int] = {}
     for record in deliveries:
         key = (record.terminal, record.message_id, record.crc32c, record.created_s)
@@ -247,8 +328,7 @@ def _report(scenario: Scenario, policy: str, trails: TrailSet, air: Air, master:
     pending = sum(1 for wire_id, *_ in link.sender.outstanding() if (wire_id, ledger.in_sender.get(wire_id)) not in delivered_ids)
     latencies = [r.delivered_s - r.created_s for r in unique if r.created_s is not None]
     payload_bits = 8 * sum(r.size for r in unique)
-    capacity = trails.capacity_bits("up")
-    tr = trails.trails
+    capacity = figures.capacity_bits
     return {
         "scenario": scenario.name,
         "seed": scenario.seed,
@@ -270,9 +350,9 @@ def _report(scenario: Scenario, policy: str, trails: TrailSet, air: Air, master:
             "p99": _percentile(latencies, 0.99),
             "max": round(max(latencies), 3) if latencies else None,
         },
-        "bits": {"payload_delivered": payload_bits, "capacity_bound": round(capacity), "oracle_bound": round(oracle)},
+        "bits": {"payload_delivered": payload_bits, "capacity_bound": round(capacity), "oracle_bound": round(figures.oracle_bits)},
         "utilisation": round(payload_bits / capacity, 4) if capacity > 0 else None,
-        "trails": {"total": len(tr) if tr is not None else 0, "used": len(air.used_trails)},
+        "trails": {"total": figures.trails, "used": len(air.used_trails)},
         "frames": {
             "sent": air.counters.frames_sent["up"],
             "received": air.counters.frames_delivered["up"],
