@@ -34,7 +34,7 @@ from __future__ import annotations
 import asyncio
 import dataclasses
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Protocol
 
 import numpy as np
@@ -48,6 +48,8 @@ DIRECTION_OF = {"terminal": "up", "master": "down"}
 SHORTEST_PROBE_BYTES = IDLE_PROBE_BYTES  # a probe carrying no poll, acknowledgement or command
 AIR_STREAM = 0x41495230  # "AIR0": the air's draws, apart from the trails'
 FRAME_DRAW, FLIP_DRAW, PROBE_DRAW = 1, 2, 3
+SCALAR_BATCH = 8
+"""Up to this many probes, a bulk reckoning asks the channel one probe at a time."""
 EPOCH_SHIFT = 40
 """Probe k of probing epoch e draws counter (e << 40) + k: 2^40 probes an epoch
 is 3,500 years at 0.1 s."""
@@ -58,7 +60,7 @@ class IdleTerminal(Protocol):
 
     def indifferent_to(self, raw: bytes) -> bool: ...
 
-    def heard_unchanged(self, raw: bytes, count: int, last: float) -> None: ...
+    def heard_unchanged(self, raw: bytes, times: Sequence[float], snr_db: Callable[[int], float]) -> None: ...
 
 
 @dataclasses.dataclass
@@ -272,12 +274,14 @@ class Air:
         """Every probe from number ``probe_count`` whose last bit arrives before
         ``until`` (channel time), reckoned in bulk: drawn from the same keyed
         counters and the same success model as one by one, counted, and handed
-        to the terminal as a count.  At least the current probe is reckoned."""
+        to the terminal together (the Eb/N0 of each only if it asks, from the
+        same lookup as one by one).  At least the current probe is reckoned."""
         port = self.master
         frame = port.probe_frame
         assert frame is not None and self.idle_terminal is not None
-        airtime = 8 * len(frame) / self.bit_rate["down"]
-        heard, last = 0, -math.inf
+        bits = 8 * len(frame)
+        airtime = bits / self.bit_rate["down"]
+        heard: list[float] = []  # emission times of the probes the terminal hears
         first = True
         while True:
             nxt = self._next_probe()
@@ -292,25 +296,34 @@ class Air:
             last_emit = min(window_end, until - airtime)
             count = max(1, math.ceil((last_emit - port.probe_epoch) / port.probe_interval) - k0)
             emits = port.probe_epoch + np.arange(k0, k0 + count) * port.probe_interval
-            p = self.channel.success_probabilities("down", emits, 8 * len(frame))
-            intact = draws.uniforms(self._probe_key, self._probe_counter(k0), count) < p
-            hears = self.terminal.listening and not self.terminal.closed
-            if self.half_duplex:
-                deaf = self.terminal.busy_until > emits
+            if count <= SCALAR_BATCH:  # numpy's per-call cost outweighs a few scalar lookups
+                key, counter = self._probe_key, self._probe_counter(k0)
+                intact = np.array([draws.uniform(key, counter + i) < self.channel.success_probability("down", t, bits)
+                                   for i, t in enumerate(emits.tolist())], dtype=bool)  # fmt: skip
             else:
-                deaf = np.zeros(count, dtype=bool)
-            got = intact & hears & ~deaf
+                p = self.channel.success_probabilities("down", emits, bits)
+                intact = draws.uniforms(self._probe_key, self._probe_counter(k0), count) < p
+            if not (self.terminal.listening and not self.terminal.closed):
+                got = np.zeros(count, dtype=bool)
+            elif self.half_duplex:
+                got = intact & ~(self.terminal.busy_until > emits)
+            else:
+                got = intact
             n_heard = int(np.count_nonzero(got))
             self.counters.probes_emitted_in_openings += count
             self.counters.probes_reckoned += count
             self.counters.probes_delivered += n_heard
             self.counters.probes_unheard += int(np.count_nonzero(intact)) - n_heard
-            if n_heard:
-                heard += n_heard
-                last = float(emits[np.nonzero(got)[0][-1]]) + airtime
+            heard.extend(emits[got].tolist())
             port.probe_count = k0 + count
         if heard:
-            self.idle_terminal.heard_unchanged(frame, heard, self.origin + last)  # type: ignore[operator]
+            origin = self.origin
+            assert origin is not None
+
+            def snr_db(i: int) -> float:
+                return _db(self.channel.frame_carrier("down", heard[i], bits))
+
+            self.idle_terminal.heard_unchanged(frame, [origin + t + airtime for t in heard], snr_db)
 
 
 def _db(carrier: tuple[int, float] | None) -> float:

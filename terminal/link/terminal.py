@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import dataclasses
 import enum
+from collections.abc import Callable, Sequence
 from typing import NamedTuple
 
 from ionotrail.terminal.delivery.sender import Sender, SenderEvent
@@ -180,6 +181,10 @@ class Link:
         if not isinstance(frame, Probe) or frame.master != self.master:
             self.counters.ignored_frames += 1
             return []
+        self._take_probe(frame, arrival, effects)
+        return effects
+
+    def _take_probe(self, frame: Probe, arrival: Arrival, effects: list[Effect]) -> None:
         self.counters.probes_heard += 1
         if frame.ack is not None:
             self._take_ack(frame.ack, arrival, effects)
@@ -200,7 +205,6 @@ class Link:
             self.counters.probes_elsewhere += 1
         event = classify_probe(ours=ours, ready=self._has_something())
         self._apply(event, arrival.time, effects, arrival.snr_db)
-        return effects
 
     def on_timer(self, now: float) -> list[Effect]:
         """Call at (or after) the timer's time; an early call does nothing."""
@@ -228,42 +232,51 @@ class Link:
         self.commands.answered(command_id, encode(Reply(self.terminal, self.master, command_id, status, result)))
 
     def indifferent_to(self, raw: bytes) -> bool:
-        """Would hearing ``raw`` now change nothing but the count of probes heard
-        and the time of the last one?  True when it is the probe last decoded,
-        it carries no command for us, and the link is idle with nothing to send
-        and nothing outstanding (so a repeated acknowledgement settles nothing).
-        A simulator may then account for such probes in bulk
-        (:meth:`heard_unchanged`) instead of handing each over."""
+        """Would hearing ``raw`` now give no effect, and change only the probe
+        bookkeeping (counts, the time of the last probe and, in a burst, its
+        SNR samples and silence timer)?  True when it is the probe last
+        decoded, it carries no command for us, nothing is queued, outstanding
+        or waiting to be reported, and the link is idle or waiting out a burst.
+        A simulator may then hand such probes over in bulk (:meth:`heard_unchanged`)."""
         frame = self._last_frame
         return (
             raw == self._last_raw
             and isinstance(frame, Probe)
             and frame.master == self.master
             and not (frame.command is not None and frame.poll == self.terminal)
-            and self.state is State.LISTENING
-            and self.timer is None
+            and (self.state is State.LISTENING or self.state is State.WAITING)
             and not self.commands.queued
             and self.sender.pending == 0
+            and not self.sender.outcomes
         )
 
-    def heard_unchanged(self, raw: bytes, count: int, last: float) -> None:
-        """``count`` probes ``raw`` were heard, the last at ``last``, while
-        :meth:`indifferent_to` held: exactly what :meth:`on_frame` would have
-        done with each, without the work."""
-        if count < 0:
-            raise UsageError(f"a count of probes heard cannot be negative ({count})")
-        if count == 0:
+    def heard_unchanged(self, raw: bytes, times: Sequence[float], snr_db: Callable[[int], float]) -> None:
+        """The probe ``raw`` was heard at each of ``times`` (in order) while
+        :meth:`indifferent_to` held: what :meth:`on_frame` does with each,
+        without the decoding.  ``snr_db(i)`` gives probe i's Eb/N0 and is asked
+        only in a burst (where the policy samples it): idle, the probes are
+        only counted."""
+        if not times:
             return
         if not self.indifferent_to(raw):
-            raise UsageError("probes were accounted in bulk while the link was not indifferent to them")
+            raise UsageError("probes were handed over in bulk while the link was not indifferent to them")
         frame = self._last_frame
         assert isinstance(frame, Probe)
-        self.counters.probes_heard += count
-        if frame.ack is not None and frame.ack.terminal == self.terminal and not frame.ack.downlink:
-            self.sender.count_stray_acks(count)  # what _take_ack does with each: nothing is held
-        if frame.poll is not None and frame.poll != self.terminal:
-            self.counters.probes_elsewhere += count
-        self._last_probe = max(self._last_probe, last)
+        if self.state is State.LISTENING:
+            # Each would count, settle nothing (a stray acknowledgement: nothing is held) and stay idle.
+            count = len(times)
+            self.counters.probes_heard += count
+            if frame.ack is not None and frame.ack.terminal == self.terminal and not frame.ack.downlink:
+                self.sender.count_stray_acks(count)
+            if frame.poll is not None and frame.poll != self.terminal:
+                self.counters.probes_elsewhere += count
+            self._last_probe = max(self._last_probe, times[-1])
+            return
+        effects: list[Effect] = []
+        for i, t in enumerate(times):
+            self._take_probe(frame, Arrival(raw, t, snr_db(i), 0.0), effects)
+            if effects:
+                raise ProtocolError(f"a probe the link was indifferent to gave {effects[0]!r}")
 
     # --- facts ------------------------------------------------------------------------
 
