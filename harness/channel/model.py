@@ -23,6 +23,7 @@ from __future__ import annotations
 import bisect
 import copy
 import dataclasses
+import functools
 import math
 from collections.abc import Callable, Iterator
 
@@ -472,9 +473,11 @@ class TrailSet:
 CLEAR_BER = 1e-13  # below this per bit, a frame of at most 2,200 bits fails with p < 3e-10
 
 
+@functools.cache
 def _sample_count(duration: float) -> int:
     """Points at which the frame-success model samples a frame of ``duration`` s:
-    one per 5 ms, at least 2 and at most 16, each in the middle of its share."""
+    one per 5 ms, at least 2 and at most 16, each in the middle of its share
+    (remembered: a link sends a few hundred distinct frame lengths at most)."""
     return int(min(16, max(2, math.ceil(duration / 0.005))))
 
 
@@ -504,6 +507,9 @@ class _Columns:
             d: list(zip(self.t, tr.hold[d].tolist(), tr.tau[d].tolist(), tr.peak_ebn0[d].tolist(), *common, tr.doppler_hz[d].tolist(), strict=True))
             for d in DIRECTIONS
         }
+        self.live_end: dict[str, list[float]] = {
+            d: (tr.t + tr.hold[d] + FADED_TAUS * tr.tau[d]).tolist() for d in DIRECTIONS
+        }  # when each trail stops mattering (see Channel._live)
 
 
 def _envelope_at(row: _Trail, t: float) -> float:
@@ -719,11 +725,11 @@ class Channel:
         c = self._columns
         if c is None:
             return []
-        rows = c.rows[direction]
+        rows, live_end = c.rows[direction], c.live_end[direction]
         lo = bisect.bisect_left(c.t, t1 - self._reach[direction])
         hi = bisect.bisect_right(c.t, t1)
         base = self._base
-        return [(base + i, rows[i]) for i in range(lo, hi) if rows[i][0] + rows[i][1] + FADED_TAUS * rows[i][2] > t0]
+        return [(base + i, rows[i]) for i in range(lo, hi) if live_end[i] > t0]
 
     def strongest(self, direction: str, t: float) -> tuple[int, float] | None:
         """(index, linear Eb/N0) of the strongest trail at t, or None when none is up."""
@@ -739,15 +745,11 @@ class Channel:
         is the stronger (otherwise the frame would be reported at the Eb/N0 of
         whatever faded trail its first bit met).  None when neither exists."""
         duration = bits / self.params[direction].bit_rate
-        return self.outlook(direction, t0, bits, self._live(direction, t0, t0 + duration)).carrier
+        return self._carrier(self._live(direction, t0, t0 + duration), t0, duration)[0]
 
-    def outlook(self, direction: str, t0: float, bits: int, live: list[tuple[int, _Trail]] | None = None) -> FrameOutlook:
-        """Everything the air asks about one frame, from one lookup of the live
-        trails: its carrier (:meth:`frame_carrier`), its success probability
-        (:meth:`success_probability`) and whether the path was open at its first bit."""
-        duration = bits / self.params[direction].bit_rate
-        if live is None:
-            live = self._live(direction, t0, t0 + duration)
+    @staticmethod
+    def _carrier(live: list[tuple[int, _Trail]], t0: float, duration: float) -> tuple[tuple[int, float] | None, tuple[int, float] | None]:
+        """(the carrier of :meth:`frame_carrier`, the strongest trail at t0)."""
         at_start = _strongest_of(live, t0)
         best = at_start
         first_look = t0 + 0.5 * duration / _sample_count(duration)
@@ -756,6 +758,16 @@ class Channel:
                 value = _envelope_at(row, row[0])
                 if value > 0 and (best is None or value > best[1]):
                     best = (i, value)
+        return best, at_start
+
+    def outlook(self, direction: str, t0: float, bits: int, live: list[tuple[int, _Trail]] | None = None) -> FrameOutlook:
+        """Everything the air asks about one frame, from one lookup of the live
+        trails: its carrier (:meth:`frame_carrier`), its success probability
+        (:meth:`success_probability`) and whether the path was open at its first bit."""
+        duration = bits / self.params[direction].bit_rate
+        if live is None:
+            live = self._live(direction, t0, t0 + duration)
+        best, at_start = self._carrier(live, t0, duration)
         threshold = self.params[direction].ebn0_threshold
         p = self._success([row for _, row in live], t0, bits, duration)
         return FrameOutlook(best, p, at_start is not None and at_start[1] >= threshold)
