@@ -299,7 +299,7 @@ def link_benchmark(hours: float = 24.0, policies: tuple[str, ...] = POLICY_NAMES
         used = r["trails"]["used"]
         results[name] = {
             "efficiency": round(r["bits"]["payload_delivered"] / r["bits"]["oracle_bound"], 4) if r["bits"]["oracle_bound"] else None,
-            "efficiency_vs_open_time": r["utilisation"],
+            "efficiency_vs_open_time": round(r["bits"]["payload_delivered"] / r["bits"]["capacity_bound"], 4) if r["bits"]["capacity_bound"] else None,
             "bits_per_burst": round(r["bits"]["payload_delivered"] / used) if used else 0,
             "speedup": round(demo.duration_s / wall),
             "wall_seconds": round(wall, 3),

@@ -21,10 +21,12 @@ def add_parser(commands: Any) -> None:
             "          times slower than the baseline.\n"
             "  reassembly  fragments per second through sender and receiver (with encode and\n"
             "          decode) and framing efficiency, for 16-256 byte fragment payloads.\n"
-            "  channel seconds to generate a year of trails for the demo link (and one day).\n"
+            "  channel seconds to draw a year of trails for the demo link window by window\n"
+            "          (and one day).\n"
             "  link    a backlogged terminal on the demo day, every fragment policy on the same\n"
-            "          trails: efficiency (payload / capacity bound), payload bits per used\n"
-            "          burst, and speedup (simulated seconds per wall second)."
+            "          trails: efficiency (payload / oracle bound), against the open-time bound\n"
+            "          too, payload bits per used burst, and speedup (simulated seconds per\n"
+            "          wall second)."
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )

@@ -164,7 +164,7 @@ def simulation_table(r: dict[str, Any]) -> str:
             f" capacity bound {bits['capacity_bound'] / 1e6:,.2f} Mbit (open time),"
             f" oracle bound {bits['oracle_bound'] / 1e6:,.2f} Mbit"
         ),
-        f"  payload    {bits['payload_delivered'] / 1e3:,.1f} kbit delivered = {utilisation} of the capacity bound",
+        f"  payload    {bits['payload_delivered'] / 1e3:,.1f} kbit delivered = {utilisation} of the oracle bound",
         (
             f"  air        {fr['sent']:,} frames sent, {fr['received']:,} received intact, {fr['crc_failed']:,} failed their CRC;"
             f" {r['probes']['heard']:,} probes heard in {r['bursts']:,} bursts"
