@@ -5,6 +5,11 @@ Differential, for each fast-path frame type (fragment, probe, ack): for valid
 frames both encoders give the same bytes and both decoders the same frame;
 for any input that starts like such a frame, both decoders accept it or both
 refuse it with the same error class and reason code (message wording may differ).
+The blocks the master keeps encoded (pack_ack_block, pack_command_block) and
+the probes it puts together from them (assemble_probe) are held to the
+declarations the same way, and so are frames that are well formed on the wire
+but break a rule of the representations, where the fast decoders skip the
+constructors for what keeps the rules.
 """
 
 from __future__ import annotations
@@ -20,8 +25,8 @@ from hypothesis import given
 from hypothesis import strategies as st
 from ionotrail.harness.testing import strategies
 from ionotrail.harness.testing.fuzz import hostile_inputs
-from ionotrail.terminal.errors import DecodeError
-from ionotrail.terminal.limits import MAX_FRAME_BYTES
+from ionotrail.terminal.errors import BadField, DecodeError, Reason
+from ionotrail.terminal.limits import MAX_ACK_RANGES, MAX_FRAME_BYTES, MAX_MESSAGE_STREAM
 from ionotrail.terminal.wire import Ack, AckBlock, CommandBlock, Fragment, Probe, fastpath, formats, values
 from ionotrail.terminal.wire.codec import decode_with_construct, encode_with_construct
 from ionotrail.terminal.wire.crc import crc16
@@ -68,6 +73,7 @@ def test_encoders_agree(name: str, data: st.DataObject) -> None:
     wire = encode_with_construct(frame)
     assert encode_fast(frame) == wire
     assert decode_fast(wire) == decode_with_construct(wire) == frame
+    assert repr(decode_fast(wire)) == repr(frame), "the same classes and field types all the way down (True, not 1)"
 
 
 @st.composite
@@ -98,6 +104,132 @@ def test_decoders_agree_on_fuzzed_frames(name: str) -> None:
             checked += 1
             accepted += fast[0] == "frame"
     assert checked > 1000 and accepted > 10
+
+
+# --- the master's encoded blocks, and rules the wire cannot express ------------------
+
+
+def _built(declaration: Struct, value: dict[str, Any]) -> bytes:
+    return bytes(declaration.build(value))
+
+
+@pytest.mark.property
+@given(probe=strategies.probes())
+def test_probes_put_together_from_encoded_blocks_match_the_declaration(probe: Probe) -> None:
+    ack = None if probe.ack is None else fastpath.pack_ack_block(probe.ack)
+    command = None if probe.command is None else fastpath.pack_command_block(probe.command)
+    if probe.ack is not None:
+        assert ack == _built(formats.ACK_BLOCK, values.probe_fields(probe)["ack"])
+    if probe.command is not None:
+        assert command == _built(formats.COMMAND_BLOCK, values.probe_fields(probe)["command"])
+    assert fastpath.assemble_probe(probe.master, probe.sequence, probe.poll, ack, command) == encode_with_construct(probe)
+
+
+_u16 = st.integers(0, 0xFFFF)
+_COMPLETE, _DOWNLINK, _REFUSED, _RESERVED = 0x80, 0x40, 0x20, 0x10  # the status bits, by hand from formats.ACK_BLOCK
+_POLL, _ACK, _COMMAND = 0x80, 0x40, 0x20  # the probe flags, by hand from formats.PROBE
+_ACK_RULES = ("keeps", "at the edge", "empty", "touching", "out of order", "past the end", "complete", "refused", "both", "reserved")
+
+
+@st.composite
+def _ack_block_bytes(draw: st.DrawFn) -> bytes:
+    """An ack block well formed on the wire that keeps AckBlock's rules or breaks
+    one of them (the reserved bit, a declaration rule, for good measure)."""
+    rule = draw(st.sampled_from(_ACK_RULES))
+    if rule in ("keeps", "complete", "refused", "both", "reserved") and draw(st.booleans()):
+        count = 0  # complete and refused blocks carry none; a partial one may hold nothing yet
+    else:
+        count = draw(st.integers(2 if rule == "out of order" else 1, MAX_ACK_RANGES))
+    ends = sorted(draw(st.sets(st.integers(0, MAX_MESSAGE_STREAM), min_size=2 * count, max_size=2 * count)))
+    if count and rule != "keeps":
+        k = draw(st.integers(0, 2 * count - 2)) if count > 1 else 0
+        if rule == "at the edge":
+            ends[-1] = MAX_MESSAGE_STREAM
+        elif rule == "empty":  # a range's end at its start
+            i = draw(st.integers(0, count - 1))
+            ends[2 * i + 1] = ends[2 * i]
+        elif rule == "touching":  # the next range starts where one ends
+            i = draw(st.integers(0, count - 2)) if count > 1 else None
+            if i is None:
+                ends[0] = ends[1]
+            else:
+                ends[2 * i + 2] = ends[2 * i + 1]
+        elif rule == "out of order":
+            ends[k], ends[k + 1] = ends[k + 1], ends[k]
+        elif rule == "past the end":
+            ends[-1] = draw(st.integers(MAX_MESSAGE_STREAM + 1, 0xFFFF))
+    status = count | draw(st.sampled_from([0, _DOWNLINK]))
+    status |= {"complete": _COMPLETE, "refused": _REFUSED, "both": _COMPLETE | _REFUSED, "reserved": _RESERVED}.get(rule, 0)
+    block = draw(_u16).to_bytes(2, "big") + draw(_u16).to_bytes(2, "big") + bytes([status])
+    return block + b"".join(e.to_bytes(2, "big") for e in ends)
+
+
+@st.composite
+def _ruled_frames(draw: st.DrawFn) -> bytes:
+    """A probe or an ack frame, well formed field by field, keeping or breaking
+    the representations' rules; now and then cut short or with bytes over before its CRC."""
+    if draw(st.booleans()):
+        body = bytes([fastpath.ACK_HEAD, draw(st.integers(0, 0xFF))]) + draw(_ack_block_bytes())
+    else:
+        command = draw(st.sampled_from(["none", "none", "keeps", "no poll", "too long"]))
+        flags = draw(st.sampled_from([0, _ACK, _ACK])) | (_COMMAND if command != "none" else 0)
+        if command in ("keeps", "too long") or (command == "none" and draw(st.booleans())):
+            flags |= _POLL
+        body = bytes([fastpath.PROBE_HEAD, draw(st.integers(0, 0xFF))]) + draw(_u16).to_bytes(2, "big") + bytes([flags])
+        if flags & _POLL:
+            body += draw(_u16).to_bytes(2, "big")
+        if flags & _ACK:
+            body += draw(_ack_block_bytes())
+        if flags & _COMMAND:
+            arguments = draw(st.binary(min_size=65, max_size=255) if command == "too long" else st.binary(max_size=64))
+            body += bytes([draw(st.integers(0, 0xFF)), draw(st.integers(0, 0xFF)), len(arguments)]) + arguments
+    edit = draw(st.sampled_from(["none"] * 8 + ["cut", "extra"]))
+    if edit == "cut":
+        body = body[: draw(st.integers(1, len(body) - 1))]
+    elif edit == "extra":
+        body += draw(st.binary(min_size=1, max_size=4))
+    return body + crc16(body).to_bytes(2, "big")
+
+
+@pytest.mark.property
+@given(raw=_ruled_frames())
+def test_decoders_agree_on_frames_that_break_a_rule(raw: bytes) -> None:
+    decode_fast = fastpath.decode_probe if raw[0] == fastpath.PROBE_HEAD else fastpath.decode_ack
+    fast, reference = _outcome(decode_fast, raw), _outcome(decode_with_construct, raw)
+    assert fast == reference
+    if fast[0] == "frame":  # the same classes and field types all the way down (True, not 1)
+        assert repr(fast[1]) == repr(reference[1])
+
+
+def test_frames_that_break_a_rule_are_refused_as_the_declaration_refuses_them() -> None:
+    # By hand, one per rule of AckBlock and Probe (frames.py), each a field error both ways.
+    ack = bytes([fastpath.ACK_HEAD, 7]) + (0x0A31).to_bytes(2, "big") + (9).to_bytes(2, "big")
+    probe = bytes([fastpath.PROBE_HEAD, 7, 0, 1])
+    cases = {
+        "range start not below its end": ack + bytes([0x01]) + bytes.fromhex("00050005"),
+        "ranges touching": ack + bytes([0x02]) + bytes.fromhex("0000000500050009"),
+        "ranges out of order": ack + bytes([0x02]) + bytes.fromhex("0010002000000005"),
+        "range past the message space": ack + bytes([0x01]) + (0).to_bytes(2, "big") + (MAX_MESSAGE_STREAM + 1).to_bytes(2, "big"),
+        "ranges on a complete block": ack + bytes([0x81]) + bytes.fromhex("00000005"),
+        "second range past the message space": ack + bytes([0x02]) + bytes.fromhex("000000050009")
+        + (MAX_MESSAGE_STREAM + 1).to_bytes(2, "big"),
+        "second range empty": ack + bytes([0x02]) + bytes.fromhex("0000000500090009"),
+        "ranges on a refused block": ack + bytes([0x22]) + bytes.fromhex("0000000500090010"),
+        "complete and refused": ack + bytes([0xA0]),
+        "command without a poll": probe + bytes([0x20, 1, 2, 0]),
+        "command arguments too long": probe + bytes([0xA0, 0, 5, 1, 2, 65]) + bytes(65),
+    }
+    for what, body in cases.items():
+        raw = body + crc16(body).to_bytes(2, "big")
+        decode_fast = fastpath.decode_probe if raw[0] == fastpath.PROBE_HEAD else fastpath.decode_ack
+        assert _outcome(decode_fast, raw) == _outcome(decode_with_construct, raw) == ("error", BadField, Reason.BAD_FIELD), what
+
+
+def test_the_greatest_range_end_is_the_message_space() -> None:
+    # The fast readers compare the last end with MAX_MESSAGE_STREAM themselves.
+    block = AckBlock(5, 9, ((0, 1), (MAX_MESSAGE_STREAM - 1, MAX_MESSAGE_STREAM)))
+    wire = encode_with_construct(Ack(7, block))
+    assert fastpath.decode_ack(wire) == decode_with_construct(wire) == Ack(7, block)
 
 
 # --- a changed declaration cannot leave the fast path stale ----------------------------

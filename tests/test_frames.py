@@ -2,8 +2,11 @@
 
 from __future__ import annotations
 
+import enum
+
 import pytest
 from hypothesis import given
+from hypothesis import strategies as st
 from ionotrail.harness.testing import strategies
 from ionotrail.terminal.errors import BadField, BadLength, DecodeError, MessageCrcMismatch, TruncatedFrame, UsageError
 from ionotrail.terminal.limits import (
@@ -29,6 +32,7 @@ from ionotrail.terminal.wire import (
 )
 from ionotrail.terminal.wire.codec import decode_with_construct, encode_with_construct, seal_message, unseal_message
 from ionotrail.terminal.wire.crc import crc16
+from ionotrail.terminal.wire.frames import _check_ranges_fully, check_ranges
 
 
 def _with_crc(body: bytes) -> bytes:
@@ -194,3 +198,69 @@ def test_decode_accepts_bytearray_and_memoryview() -> None:
 def test_decode_refuses_text_as_caller_misuse() -> None:
     with pytest.raises(UsageError):
         decode("12ab")  # type: ignore[arg-type]
+
+
+# --- the quick pass of check_ranges agrees with the full check ------------------------
+
+
+class _Small(enum.IntEnum):
+    TEN = 10
+    TWENTY = 20
+
+
+_values = st.one_of(
+    st.integers(-2, MAX_MESSAGE_STREAM + 2),
+    st.sampled_from([0, 1, MAX_MESSAGE_STREAM, 0xFFFF, 0x10000, -1, True, False, _Small.TEN, _Small.TWENTY, 1.0, "3", None]),
+)
+_items = st.one_of(
+    st.tuples(_values, _values),
+    st.lists(_values, min_size=2, max_size=2),
+    st.tuples(_values),
+    st.tuples(_values, _values, _values),
+    st.sampled_from([None, 5, "ab"]),
+)
+
+
+@st.composite
+def _range_inputs(draw: st.DrawFn) -> object:
+    """Anything a caller might pass as ranges; often ascending pairs of plain ints, the common case."""
+    if draw(st.booleans()):
+        count = draw(st.integers(0, 17))
+        ends = sorted(draw(st.sets(st.integers(0, MAX_MESSAGE_STREAM + 2), min_size=2 * count, max_size=2 * count)))
+        if count and draw(st.booleans()):  # one end nudged: touching, empty or out of order ranges
+            i = draw(st.integers(0, 2 * count - 1))
+            ends[i] = draw(st.sampled_from([ends[i] - 1, ends[i] + 1, ends[i - 1] if i else 0]))
+        pairs: list[object] = [(ends[i], ends[i + 1]) for i in range(0, 2 * count, 2)]
+    else:
+        pairs = draw(st.lists(_items, max_size=17))
+    return draw(st.sampled_from([tuple, list]))(pairs) if draw(st.integers(0, 9)) else draw(st.sampled_from([None, "ranges", {1: 2}]))
+
+
+def _checked(check: object, ranges: object) -> object:
+    try:
+        out = check(ranges)  # type: ignore[operator]
+    except UsageError as exc:
+        return ("refused", str(exc))
+    return ("ranges", repr(out), type(out), [type(item) for item in out], [type(x) for item in out for x in item])
+
+
+@pytest.mark.property
+@given(ranges=_range_inputs())
+def test_the_quick_pass_of_check_ranges_agrees_with_the_full_check(ranges: object) -> None:
+    # check_ranges returns a tuple of plain int pairs that keeps the rules as it
+    # is; anything else goes through the full check, whose message it keeps.
+    assert _checked(check_ranges, ranges) == _checked(_check_ranges_fully, ranges)
+
+
+def test_an_ack_block_keeps_what_it_is_given_as_the_full_check_would() -> None:
+    # int subclasses pass the full check and are kept as they are; bools are refused.
+    block = AckBlock(_Small.TEN, _Small.TWENTY, ((_Small.TEN, _Small.TWENTY),))
+    assert block == (10, 20, ((10, 20),), False, False, False)
+    assert type(block.terminal) is _Small and type(block.ranges[0][0]) is _Small
+    ranges = ((0, 5), (9, 12))
+    assert AckBlock(1, 2, ranges).ranges is ranges, "a valid tuple of plain pairs is kept, not copied"
+    for bad in (True, -1, 0x10000):
+        with pytest.raises(UsageError, match="terminal="):
+            AckBlock(bad, 1)
+        with pytest.raises(UsageError, match="message_id="):
+            AckBlock(1, bad)

@@ -7,6 +7,8 @@ the first fragment and is not restarted by later ones (RFC 8200 s4.5).
 from __future__ import annotations
 
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link.master import Delivered, MasterEndpoint, ProbeChanged, ReplyArrived
@@ -22,6 +24,7 @@ from ionotrail.terminal.wire import (
     encode,
     seal_message,
 )
+from ionotrail.terminal.wire.codec import decode_with_construct, encode_with_construct
 from ionotrail.terminal.wire.crc import crc16
 
 MASTER, T1, T2 = 7, 0x0A31, 0x0B00
@@ -207,3 +210,69 @@ def test_a_restarted_master_starts_its_command_ids_where_it_is_told() -> None:
     assert master.command(T1, 1, b"", 0.0)[0] == 200
     with pytest.raises(UsageError):
         MasterEndpoint(MASTER, first_command_id=256)
+
+
+# --- the probe the master keeps encoded is the one the declaration gives -----------
+
+
+class _Reference(MasterEndpoint):
+    """The master as it encoded its probe before it kept its blocks encoded: a
+    fresh Probe through the construct declaration at every change."""
+
+    def _encode_probe(self) -> bytes:
+        pending = self._commands[0] if self._polling else None
+        if pending is None:
+            return encode_with_construct(Probe(self.address, self._sequence, ack=self._ack))
+        return encode_with_construct(Probe(self.address, self._sequence, poll=pending.terminal, ack=self._ack, command=pending.block))
+
+
+_steps = st.lists(
+    st.one_of(
+        st.tuples(st.just("fragment"), st.sampled_from([T1, T2]), st.integers(0, 3), st.integers(0, 143), st.integers(1, 60)),
+        st.tuples(st.just("command"), st.sampled_from([T1, T2]), st.integers(0, 255), st.binary(max_size=64)),
+        st.tuples(st.just("reply"), st.integers(0, 3)),
+        st.tuples(st.just("timer"), st.booleans()),
+    ),
+    max_size=60,
+)
+
+
+@pytest.mark.property
+@given(steps=_steps, gaps=st.lists(st.sampled_from([0.0, 0.01, INTERVAL / 2, INTERVAL, 7.0]), min_size=1))
+def test_the_master_sends_the_declarations_bytes_at_the_same_times(steps: list[tuple], gaps: list[float]) -> None:  # type: ignore[type-arg]
+    # Both masters take the same inputs; every effect, probe and timer must be the
+    # same, and every probe byte for byte the declaration's encoding of a Probe.
+    limits = Limits(command_turn=5.0, max_ack_news=3)
+    fast, reference = MasterEndpoint(MASTER, limits=limits), _Reference(MASTER, limits=limits)
+    assert fast.probe == reference.probe
+    sealed = {(t, m): seal_message(bytes([t & 0xFF, m]) * 70) for t in (T1, T2) for m in range(4)}
+    now = 0.0
+    for k, step in enumerate(steps):
+        now += gaps[k % len(gaps)]
+        if step[0] == "fragment":
+            _, terminal, message_id, start, length = step
+            whole = sealed[terminal, message_id]
+            start %= len(whole)
+            raw = fragment(terminal, message_id, whole, start, min(start + length, len(whole)))
+            outcomes = [m.on_frame(raw, now) for m in (fast, reference)]
+        elif step[0] == "command":
+            _, terminal, opcode, arguments = step
+            outcomes = []
+            for m in (fast, reference):
+                try:
+                    outcomes.append(m.command(terminal, opcode, arguments, now))
+                except UsageError as exc:
+                    outcomes.append(str(exc))
+        elif step[0] == "reply":
+            pending = fast.pending_commands  # a reply to one of them (a stray one if it has not been on the air)
+            terminal, block = pending[step[1] % len(pending)] if pending else (T1, CommandBlock(step[1], 0))
+            raw = encode(Reply(terminal, MASTER, block.command_id, ReplyStatus.OK, b"r"))
+            outcomes = [m.on_frame(raw, now) for m in (fast, reference)]
+        else:
+            if step[1] and fast.timer is not None:
+                now = max(now, fast.timer.at)
+            outcomes = [m.on_timer(now) for m in (fast, reference)]
+        assert outcomes[0] == outcomes[1], step
+        assert fast.probe == reference.probe and fast.timer == reference.timer
+        assert encode_with_construct(decode_with_construct(fast.probe)) == fast.probe
+    assert fast.counters == reference.counters

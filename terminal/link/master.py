@@ -44,7 +44,8 @@ from ionotrail.terminal.errors import DecodeError, Reason, UsageError
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link.commands import ID_SPACE as COMMAND_ID_SPACE
 from ionotrail.terminal.link.timer import Purpose, Timer, due_at
-from ionotrail.terminal.wire import AckBlock, CommandBlock, Fragment, Probe, Reply, decode, encode
+from ionotrail.terminal.wire import AckBlock, CommandBlock, Fragment, Probe, Reply, decode
+from ionotrail.terminal.wire.fastpath import assemble_probe, pack_ack_block, pack_command_block
 
 
 class ProbeChanged(NamedTuple):
@@ -107,6 +108,7 @@ class MasterEndpoint:
         """When :meth:`on_timer` must next be called, and what for."""
         self._sequence = 0
         self._ack: AckBlock | None = None
+        self._ack_wire: bytes | None = None  # self._ack encoded, kept with it
         self._ack_since = -float("inf")  # when the probe began carrying self._ack
         self._news: OrderedDict[tuple[int, int], AckBlock] = OrderedDict()  # (terminal, message id) -> latest
         self._commands: deque[_Pending] = deque()
@@ -117,6 +119,7 @@ class MasterEndpoint:
         self._polling = False  # the head command is on the probes
         self._aired: set[tuple[int, int]] = set()  # (terminal, id) of queued commands that have had a turn
         self._turn_ends = float("inf")  # when the head command's turn ends, or the rest after one
+        self._command_wire: tuple[CommandBlock | None, bytes] = (None, b"")  # the last command put on a probe, encoded
         self.probe = self._encode_probe()
         """The probe frame the master transmits now."""
 
@@ -204,7 +207,7 @@ class MasterEndpoint:
         if self._ack is not None and (self._ack.terminal, self._ack.message_id) == key:
             if ack != self._ack:  # fresher news for the message on the probe: at once, same interval
                 self._news.pop(key, None)
-                self._ack = ack
+                self._carry(ack)
                 self._probe_changed(effects)
             return
         if ack == self._news.get(key):
@@ -222,8 +225,13 @@ class MasterEndpoint:
         self._put_on_probe(ack, now, effects)
 
     def _put_on_probe(self, ack: AckBlock, now: float, effects: list[MasterEffect]) -> None:
-        self._ack, self._ack_since = ack, now
+        self._carry(ack)
+        self._ack_since = now
         self._probe_changed(effects)
+
+    def _carry(self, ack: AckBlock) -> None:
+        """The probe carries ``ack`` from now on; it is encoded once, here."""
+        self._ack, self._ack_wire = ack, pack_ack_block(ack)
 
     # --- commands ----------------------------------------------------------------------
 
@@ -264,10 +272,17 @@ class MasterEndpoint:
         effects.append(ProbeChanged(self.probe))
 
     def _encode_probe(self) -> bytes:
-        pending = self._commands[0] if self._polling else None
-        if pending is None:
-            return encode(Probe(self.address, self._sequence, ack=self._ack))
-        return encode(Probe(self.address, self._sequence, poll=pending.terminal, ack=self._ack, command=pending.block))
+        """The probe's bytes, put together from the blocks encoded when they went
+        on it (every value was validated on its way in: the address by the
+        constructor, a poll and a command by :meth:`command`, the ack block by
+        its own constructor in the reassembler), byte for byte what
+        ``encode(Probe(...))`` gives (tests/test_master.py)."""
+        if not self._polling:
+            return assemble_probe(self.address, self._sequence, None, self._ack_wire, None)
+        terminal, block = self._commands[0]
+        if self._command_wire[0] is not block:
+            self._command_wire = (block, pack_command_block(block))
+        return assemble_probe(self.address, self._sequence, terminal, self._ack_wire, self._command_wire[1])
 
     def _arm(self, now: float) -> None:
         """One timer: the earliest of the next news rotation, the end of a command's

@@ -17,10 +17,15 @@ declarations.
 
 from __future__ import annotations
 
+import struct
+from operator import lt as _lt
+
 from ionotrail.terminal.errors import BadField, BadLength, CrcMismatch, FrameTooLong, TruncatedFrame, UsageError
 from ionotrail.terminal.limits import (
     FRAGMENT_OVERHEAD_BYTES,
     FRAME_CRC_BYTES,
+    MAX_ACK_RANGES,
+    MAX_COMMAND_BYTES,
     MAX_FRAME_BYTES,
     MAX_MESSAGE_STREAM,
     MIN_FRAME_BYTES,
@@ -140,14 +145,27 @@ def decode_fragment(data: bytes) -> Fragment:
 # ``ionotrail bench reassembly``.  These readers follow the declarations field
 # by field, in order, so that the first problem found is the one the
 # declaration would report.
+#
+# What they build skips the representations' constructors when the values
+# keep the constructors' rules (a check of a few comparisons; the constructors
+# check each field again and cost several times the whole decode): a frame
+# that breaks a rule is handed to the constructor, which refuses it with its
+# own message, after every structural check, as the declaration's path does.
+# One precompiled struct per range count reads or writes a whole acknowledgement
+# block in one call; the master's endpoint keeps its blocks encoded
+# (:func:`pack_ack_block`, :func:`pack_command_block`) and puts each probe
+# together from them (:func:`assemble_probe`).
 
 PROBE_HEAD = head_byte(FrameType.PROBE)
 ACK_HEAD = head_byte(FrameType.ACK)
 
 _PROBE_FIXED = packer(_PROBE, ("head", "master", "sequence", "flags"), "probe")
+_FLAGS_AT = packer(_PROBE, ("head", "master", "sequence"), "probe").size
 _POLL = single(optional(_PROBE, "poll"), "probe poll")
+_PROBE_POLLED = struct.Struct(_PROBE_FIXED.format + _POLL.format.lstrip(">"))
 _ACK_FRAME_FIXED = packer(_ACK, ("head", "master"), "ack")
 _ACK_FIXED = packer(formats.ACK_BLOCK, ("terminal", "message_id", "status"), "ack block")
+_STATUS_AT = packer(formats.ACK_BLOCK, ("terminal", "message_id"), "ack block").size
 _RANGE = packer(element(formats.ACK_BLOCK, "ranges"), ("start", "end"), "ack range")
 _COMMAND_FIXED = packer(formats.COMMAND_BLOCK, ("command_id", "opcode", "length"), "command block")
 _STATUS = bits(formats.ACK_BLOCK, "status", ("complete", "downlink", "refused", "reserved", "count"))
@@ -156,16 +174,28 @@ _STATUS_DOWNLINK = _STATUS["downlink"].mask
 _STATUS_REFUSED = _STATUS["refused"].mask
 _STATUS_RESERVED = _STATUS["reserved"].mask
 _STATUS_COUNT = _STATUS["count"].mask
+_STATUS_ENDED = _STATUS_COMPLETE | _STATUS_REFUSED
 _FLAGS = bits(_PROBE, "flags", ("poll", "ack", "command", "reserved"))
 _FLAG_POLL = _FLAGS["poll"].mask
 _FLAG_ACK = _FLAGS["ack"].mask
 _FLAG_COMMAND = _FLAGS["command"].mask
 _FLAG_RESERVED = _FLAGS["reserved"].mask
+_PROBE_FIXED_BYTES = _PROBE_FIXED.size
+_PROBE_POLLED_BYTES = _PROBE_POLLED.size
+_ACK_FRAME_FIXED_BYTES = _ACK_FRAME_FIXED.size
+_ACK_FIXED_BYTES = _ACK_FIXED.size
+_COMMAND_FIXED_BYTES = _COMMAND_FIXED.size
+_ACK_BLOCKS = tuple(struct.Struct(_ACK_FIXED.format + _RANGE.format.lstrip(">") * n) for n in range(_STATUS_COUNT + 1))
+"""A whole acknowledgement block with n ranges: terminal, message id, status, then the ranges' ends in order."""
 
 expect_names(formats.ACK_BLOCK, ("terminal", "message_id", "status", "ranges"), "ack block")
 expect_names(formats.COMMAND_BLOCK, ("command_id", "opcode", "length", "arguments"), "command block")
 if _STATUS["count"].shift != 0:
     raise StaleLayout("ack status: the fast path reads the range count in the low bits")
+if _STATUS_COUNT != MAX_ACK_RANGES:
+    raise StaleLayout(f"ack status: the range count holds up to {_STATUS_COUNT}; limits say {MAX_ACK_RANGES}")
+if _ACK_FIXED_BYTES != _STATUS_AT + 1 or _PROBE_FIXED_BYTES != _FLAGS_AT + 1:
+    raise StaleLayout("the ack status and the probe flags are read as single bytes, after the fields before them")
 if (
     optional(_PROBE, "ack") is not formats.ACK_BLOCK
     or optional(_PROBE, "command") is not formats.COMMAND_BLOCK
@@ -190,36 +220,56 @@ def _cut_short(name: str, size: int) -> TruncatedFrame:
     return TruncatedFrame(f"{name} frame of {size} bytes ends inside a field")
 
 
-_AckValues = tuple[int, int, tuple[tuple[int, int], ...], int]
-"""An ack block's terminal, message id, ranges and status byte, not yet checked."""
-
-
-def _read_ack_block(data: bytes, pos: int, end: int, name: str) -> tuple[_AckValues, int]:
-    """Raw ack-block fields from ``data[pos:end]``: (values, new position)."""
-    if pos + _ACK_FIXED.size > end:
+def _read_ack_block(data: bytes, pos: int, end: int, name: str) -> tuple[AckBlock, bool, int]:
+    """The ack block in ``data[pos:end]``: (block, whether it keeps AckBlock's
+    rules, new position).  A block that breaks them is built all the same and
+    refused later by :func:`_refuse_ack_block`, once the rest of the frame has
+    passed its structural checks."""
+    if pos + _ACK_FIXED_BYTES > end:
         raise _cut_short(name, end + FRAME_CRC_BYTES)
-    terminal, message_id, status = _ACK_FIXED.unpack_from(data, pos)
+    status = data[pos + _STATUS_AT]
     if status & _STATUS_RESERVED:
         raise BadField(f"{name} frame: reserved bit of the acknowledgement status is set")
-    pos += _ACK_FIXED.size
     count = status & _STATUS_COUNT
-    if pos + count * _RANGE.size > end:
+    block = _ACK_BLOCKS[count]
+    after = pos + block.size
+    if after > end:
         raise _cut_short(name, end + FRAME_CRC_BYTES)
-    ranges = tuple(_RANGE.unpack_from(data, pos + i * _RANGE.size) for i in range(count))
-    return (terminal, message_id, ranges, status), pos + count * _RANGE.size
-
-
-def _ack_block(values: _AckValues, name: str) -> AckBlock:
-    terminal, message_id, ranges, status = values
-    try:
-        return AckBlock(
-            terminal,
-            message_id,
+    fields = block.unpack_from(data, pos)
+    # AckBlock's rules for ranges: every start < end, each range after the one
+    # before without touching it (the ends strictly ascending), the last within
+    # the message space; and none on a complete or refused acknowledgement.
+    ranges: tuple[tuple[int, int], ...]
+    if count == 1:  # the common case (a message received in order so far), written out
+        start, stop = fields[3], fields[4]
+        ranges = ((start, stop),)
+        valid = not status & _STATUS_ENDED and start < stop <= MAX_MESSAGE_STREAM
+    elif count:
+        ends = fields[3:]
+        pairs = iter(ends)
+        ranges = tuple(zip(pairs, pairs))
+        valid = not status & _STATUS_ENDED and ends[-1] <= MAX_MESSAGE_STREAM and all(map(_lt, ends, ends[1:]))
+    else:
+        ranges = ()
+        valid = status & _STATUS_ENDED != _STATUS_ENDED  # complete and refused are exclusive
+    ack = _new(
+        AckBlock,
+        (
+            fields[0],
+            fields[1],
             ranges,
-            bool(status & _STATUS_COMPLETE),
-            bool(status & _STATUS_DOWNLINK),
-            bool(status & _STATUS_REFUSED),
-        )
+            status & _STATUS_COMPLETE != 0,
+            status & _STATUS_DOWNLINK != 0,
+            status & _STATUS_REFUSED != 0,
+        ),
+    )
+    return ack, valid, after
+
+
+def _refuse_ack_block(block: AckBlock, name: str) -> AckBlock:
+    """The constructor's verdict on a block that breaks its rules (raises BadField)."""
+    try:
+        return AckBlock(*block)
     except UsageError as exc:
         raise BadField(f"{name} frame: {exc}") from None
 
@@ -228,88 +278,131 @@ def _leftover(name: str, extra: int) -> BadLength:
     return BadLength(f"{name} frame has {extra} bytes between its last field and its CRC")
 
 
-def _pack_ack_block(block: AckBlock) -> bytes:
-    status = len(block.ranges)
-    if block.complete:
+def pack_ack_block(block: AckBlock) -> bytes:
+    """The wire bytes of an acknowledgement block (as it rides in a probe or an ack frame)."""
+    terminal, message_id, ranges, complete, downlink, refused = block
+    status = len(ranges)
+    if complete:
         status |= _STATUS_COMPLETE
-    if block.downlink:
+    if downlink:
         status |= _STATUS_DOWNLINK
-    if block.refused:
+    if refused:
         status |= _STATUS_REFUSED
-    return _ACK_FIXED.pack(block.terminal, block.message_id, status) + b"".join(_RANGE.pack(s, e) for s, e in block.ranges)
+    if ranges:
+        return _ACK_BLOCKS[len(ranges)].pack(terminal, message_id, status, *sum(ranges, ()))
+    return _ACK_FIXED.pack(terminal, message_id, status)
+
+
+def pack_command_block(block: CommandBlock) -> bytes:
+    """The wire bytes of a command block (as it rides in a probe)."""
+    command_id, opcode, arguments = block
+    return _COMMAND_FIXED.pack(command_id, opcode, len(arguments)) + arguments
 
 
 def encode_ack(frame: Ack) -> bytes:
-    return _close(_ACK_FRAME_FIXED.pack(ACK_HEAD, frame.master) + _pack_ack_block(frame.ack))
+    body = _ACK_FRAME_FIXED.pack(ACK_HEAD, frame.master) + pack_ack_block(frame.ack)
+    return body + _CRC.pack(crc16(body))
 
 
 def decode_ack(data: bytes) -> Ack:
     """Decode untrusted bytes whose first byte is :data:`ACK_HEAD`."""
-    size = check_envelope(data)
+    size = len(data)
+    if size > MAX_FRAME_BYTES:
+        raise FrameTooLong(f"frame of {size} bytes exceeds the {MAX_FRAME_BYTES}-byte maximum")
+    if size < MIN_FRAME_BYTES:
+        raise TruncatedFrame(f"{size} bytes cannot hold a type byte and a CRC")
+    if crc16(data):
+        raise CrcMismatch("frame CRC-16 does not match: corrupted on the air or misframed")
     end = size - FRAME_CRC_BYTES
-    if end < _ACK_FRAME_FIXED.size:
+    if end < _ACK_FRAME_FIXED_BYTES:
         raise _cut_short("ack", size)
-    _, master = _ACK_FRAME_FIXED.unpack_from(data)
-    values, pos = _read_ack_block(data, _ACK_FRAME_FIXED.size, end, "ack")
+    block, valid, pos = _read_ack_block(data, _ACK_FRAME_FIXED_BYTES, end, "ack")
     if pos != end:
         raise _leftover("ack", end - pos)
-    return _new(Ack, (master, _ack_block(values, "ack")))
+    return _new(Ack, (_ACK_FRAME_FIXED.unpack_from(data)[1], block if valid else _refuse_ack_block(block, "ack")))
+
+
+def assemble_probe(master: int, sequence: int, poll: int | None, ack: bytes | None, command: bytes | None) -> bytes:
+    """A probe's bytes from valid field values and its blocks already encoded
+    (:func:`pack_ack_block`, :func:`pack_command_block`; None: absent).  The
+    caller answers for the values: a master, a sequence and a poll that
+    :class:`Probe` accepts, and a command only with a poll."""
+    flags = 0
+    if ack is not None:
+        flags |= _FLAG_ACK
+    if poll is None:
+        body = _PROBE_FIXED.pack(PROBE_HEAD, master, sequence, flags)
+    else:
+        flags |= _FLAG_POLL
+        if command is not None:
+            flags |= _FLAG_COMMAND
+        body = _PROBE_POLLED.pack(PROBE_HEAD, master, sequence, flags, poll)
+    if ack is not None:
+        body += ack
+    if command is not None:
+        body += command
+    return body + _CRC.pack(crc16(body))
 
 
 def encode_probe(frame: Probe) -> bytes:
-    flags = 0
-    parts = [b""]
-    if frame.poll is not None:
-        flags |= _FLAG_POLL
-        parts.append(_POLL.pack(frame.poll))
-    if frame.ack is not None:
-        flags |= _FLAG_ACK
-        parts.append(_pack_ack_block(frame.ack))
-    if frame.command is not None:
-        flags |= _FLAG_COMMAND
-        c = frame.command
-        parts.append(_COMMAND_FIXED.pack(c.command_id, c.opcode, len(c.arguments)) + c.arguments)
-    parts[0] = _PROBE_FIXED.pack(PROBE_HEAD, frame.master, frame.sequence, flags)
-    return _close(b"".join(parts))
+    master, sequence, poll, ack, command = frame
+    return assemble_probe(
+        master,
+        sequence,
+        poll,
+        None if ack is None else pack_ack_block(ack),
+        None if command is None else pack_command_block(command),
+    )
 
 
 def decode_probe(data: bytes) -> Probe:
     """Decode untrusted bytes whose first byte is :data:`PROBE_HEAD`."""
-    size = check_envelope(data)
+    size = len(data)
+    if size > MAX_FRAME_BYTES:
+        raise FrameTooLong(f"frame of {size} bytes exceeds the {MAX_FRAME_BYTES}-byte maximum")
+    if size < MIN_FRAME_BYTES:
+        raise TruncatedFrame(f"{size} bytes cannot hold a type byte and a CRC")
+    if crc16(data):
+        raise CrcMismatch("frame CRC-16 does not match: corrupted on the air or misframed")
     end = size - FRAME_CRC_BYTES
-    if end < _PROBE_FIXED.size:
+    if end < _PROBE_FIXED_BYTES:
         raise _cut_short("probe", size)
-    _, master, sequence, flags = _PROBE_FIXED.unpack_from(data)
+    flags = data[_FLAGS_AT]
     if flags & _FLAG_RESERVED:
         raise BadField("probe frame: reserved probe flag bits are set")
-    pos = _PROBE_FIXED.size
-    poll = None
     if flags & _FLAG_POLL:
-        if pos + _POLL.size > end:
+        if end < _PROBE_POLLED_BYTES:
             raise _cut_short("probe", size)
-        poll = _POLL.unpack_from(data, pos)[0]
-        pos += _POLL.size
-    ack_values = None
+        _, master, sequence, _, poll = _PROBE_POLLED.unpack_from(data)
+        pos = _PROBE_POLLED_BYTES
+    else:
+        _, master, sequence, _ = _PROBE_FIXED.unpack_from(data)
+        poll = None
+        pos = _PROBE_FIXED_BYTES
+    ack = None
+    valid = True
     if flags & _FLAG_ACK:
-        ack_values, pos = _read_ack_block(data, pos, end, "probe")
+        ack, valid, pos = _read_ack_block(data, pos, end, "probe")
     command = None
     if flags & _FLAG_COMMAND:
-        if pos + _COMMAND_FIXED.size > end:
+        if pos + _COMMAND_FIXED_BYTES > end:
             raise _cut_short("probe", size)
         command_id, opcode, length = _COMMAND_FIXED.unpack_from(data, pos)
-        pos += _COMMAND_FIXED.size
+        pos += _COMMAND_FIXED_BYTES
         if pos + length > end:
             raise _cut_short("probe", size)
         command = (command_id, opcode, data[pos : pos + length])
         pos += length
     if pos != end:
         raise _leftover("probe", end - pos)
-    try:  # semantic rules, through the same constructors as the declaration's path
+    if valid and (command is None or (poll is not None and len(command[2]) <= MAX_COMMAND_BYTES)):
+        return _new(Probe, (master, sequence, poll, ack, None if command is None else _new(CommandBlock, command)))
+    try:  # a rule broken: the constructors refuse it, in the order of the declaration's path
         return Probe(
             master,
             sequence,
             poll,
-            None if ack_values is None else _ack_block(ack_values, "probe"),
+            None if ack is None else _refuse_ack_block(ack, "probe"),
             None if command is None else CommandBlock(*command),
         )
     except UsageError as exc:

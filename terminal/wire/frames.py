@@ -36,6 +36,9 @@ _ACK_FIXED = layout.frame_bytes(formats.ACK, ("ack",))
 _COMMAND_FIXED = layout.frame_bytes(formats.COMMAND, ("command",))
 _REPLY_FIXED = layout.frame_bytes(formats.REPLY, ("result",))
 
+_U16 = 0xFFFF
+_new = tuple.__new__
+
 ByteRange = tuple[int, int]
 """Half-open ``(start, end)`` range of bytes in a sealed message."""
 
@@ -57,6 +60,27 @@ def _bytes(name: str, value: object, most: int) -> bytes:
 
 def check_ranges(ranges: object) -> tuple[ByteRange, ...]:
     """Validate held ranges: ascending, disjoint, non-adjacent, non-empty."""
+    # A tuple of (start, end) tuples of plain ints that keeps the rules is
+    # returned as it is, after one pass of comparisons (every acknowledgement
+    # a reassembler makes is such a tuple); anything else takes the full check,
+    # which builds the same tuple or says what is wrong.
+    if type(ranges) is tuple and len(ranges) <= MAX_ACK_RANGES:
+        previous_end = -1
+        for item in ranges:
+            if type(item) is not tuple or len(item) != 2:
+                break
+            start, end = item
+            if type(start) is not int or type(end) is not int or not previous_end < start < end:
+                break
+            previous_end = end
+        else:
+            if previous_end <= MAX_MESSAGE_STREAM:
+                return ranges
+    return _check_ranges_fully(ranges)
+
+
+def _check_ranges_fully(ranges: object) -> tuple[ByteRange, ...]:
+    """:func:`check_ranges`, field by field, with a message for the first rule broken."""
     if not isinstance(ranges, (tuple, list)):
         raise UsageError(f"ranges must be a sequence of (start, end), not {type(ranges).__name__}")
     if len(ranges) > MAX_ACK_RANGES:
@@ -107,15 +131,11 @@ class AckBlock(_AckBlockFields):
             raise UsageError("a complete or refused acknowledgement carries no ranges")
         if complete and refused:
             raise UsageError("an acknowledgement is complete or refused, not both")
-        return super().__new__(
-            cls,
-            _uint("terminal", terminal, 16),
-            _uint("message_id", message_id, 16),
-            checked,
-            bool(complete),
-            bool(downlink),
-            bool(refused),
-        )
+        if type(terminal) is not int or not 0 <= terminal <= _U16:  # plain ints in range pass as they are
+            terminal = _uint("terminal", terminal, 16)
+        if type(message_id) is not int or not 0 <= message_id <= _U16:
+            message_id = _uint("message_id", message_id, 16)
+        return _new(cls, (terminal, message_id, checked, bool(complete), bool(downlink), bool(refused)))
 
     @property
     def wire_length(self) -> int:
