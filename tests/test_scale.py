@@ -251,3 +251,23 @@ def test_the_bounds_summed_window_by_window_are_those_of_the_whole_period() -> N
                                burst_silence=limits.burst_silence, max_payload=limits.max_fragment_payload)  # fmt: skip
     assert streamed.oracle_bits == pytest.approx(direct, rel=1e-9)
     assert direct > 1e6
+
+
+def test_memory_does_not_grow_with_the_period() -> None:
+    """Peak memory traced over a run of eight six-hour windows is that of a run
+    of two (the deliveries list, a few kilobytes a day, is all that grows):
+    trails are drawn and dropped window by window, the bounds planned likewise."""
+    import tracemalloc
+
+    def peak(hours: int) -> int:
+        s = demo(f"scenario.duration_hours={hours}")
+        tracemalloc.start()
+        try:
+            run = simulate(s, trails=TrailSet(s, window_s=CELL_S))
+            assert invariant_holds(run.report)
+            return tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+
+    two, eight = peak(12), peak(48)
+    assert eight < 1.3 * two, (two, eight)
