@@ -93,7 +93,7 @@ P_MIN = 1e-6
 """An opening ends where even the shortest frame arrives with probability below this."""
 CLEAR_LOG_OK = -1e-3
 """Steps whose mean log success per bit is above this are left to the rate bound (clear enough)."""
-DEAD_RATE = 2.0
+DEAD_RATE = 5.0
 """So are steps whose rate bound R is below this many payload bits."""
 MIN_GAP = 16
 """Fewer steps than this are not worth cutting out of the middle of an opening's programme."""
@@ -114,6 +114,11 @@ F32_GROWTH = 2.0**-19
 F32_SLACK = 2.0**-4
 """In float32 every frame's credit is raised by F32_GROWTH of itself and F32_SLACK
 bits: more than its rounding (see above)."""
+E_ROUNDS = 8
+"""Successes are exponentiated (in float64) once every E_ROUNDS rounds, then scaled."""
+E_FLOOR = math.exp(-80.0)
+"""Successes below this (from a block's first step) count as this: float32 holds it, and
+the rest of the block is at most e^44 better, so a frame credited with it is worth < 1e-15 bits."""
 SOLVE_ROWS = 128
 """Openings the programme solves together (sorted by length, so their rounds are nearly all full)."""
 
@@ -167,10 +172,10 @@ def log_ok_above(modulation: str, ebn0: Array) -> Array:
     return np.log1p(-ber, out=ber)
 
 
-LOG_EBN0_STEP = 2e-5
+LOG_EBN0_STEP = 4e-5
 """The per-byte model is tabulated every LOG_EBN0_STEP of log Eb/N0, from EBN0_FLOOR up
 to the Eb/N0 above which BER < CLEAR_BER, and read at the entry at or above each
-byte's: log(1 - BER) rises with Eb/N0, so it is read high (by less than 5e-4 of
+byte's: log(1 - BER) rises with Eb/N0, so it is read high (by less than 1e-3 of
 the error rate)."""
 
 
@@ -321,10 +326,10 @@ def _rate(q: Array, g: _Grid) -> Array:
     step log 1/2, as log(1 - BER) >= log 1/2)."""
     r, dr = g.rates
     u = q * (-1.0 / RATE_STEP)
-    i = u.astype(np.int64)
+    i = u.astype(np.intp)
     u -= i
-    u *= dr[i]
-    u += r[i]
+    u *= np.take(dr, i)
+    u += np.take(r, i)
     return u
 
 
@@ -368,15 +373,22 @@ def _segment_starts(lengths: Index) -> Index:
     return np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
 
 
-PREPARE_OPENINGS = 64
-"""Openings made ready together, sorted by length (their scratch tables stay a few megabytes)."""
+PREPARE_CELLS = 1 << 17
+"""Openings are made ready in groups of similar length of about this many steps
+(their scratch tables stay a megabyte each, so memory once mapped is used again)."""
 
 
 def _prepare(openings: list[OpeningPlan], g: _Grid, clear_log_ok: float, dead_rate: float, min_gap: int) -> tuple[_Rows, Index]:
     """The openings' rows, made ready in groups of similar length, and the opening of each row."""
-    order = np.argsort([o.steps for o in openings], kind="stable")
-    parts = [_prepare_some([openings[k] for k in order[c : c + PREPARE_OPENINGS]], g, clear_log_ok, dead_rate, min_gap)
-             for c in range(0, len(openings), PREPARE_OPENINGS)]  # fmt: skip
+    steps = np.array([o.steps for o in openings], dtype=np.int64)
+    order = np.argsort(steps, kind="stable")
+    parts, c = [], 0
+    while c < len(order):
+        count = max(1, min(len(order) - c, PREPARE_CELLS // int(steps[order[c]] + g.hi + 1)))
+        while count > 1 and count * int(steps[order[c + count - 1]] + g.hi + 1) > PREPARE_CELLS:
+            count //= 2
+        parts.append(_prepare_some([openings[k] for k in order[c : c + count]], g, clear_log_ok, dead_rate, min_gap))
+        c += count
     return (parts[0] if len(parts) == 1 else _Rows.concatenate(parts)), order
 
 
@@ -443,6 +455,9 @@ def _prepare_some(openings: list[OpeningPlan], g: _Grid, clear_log_ok: float, de
         if e - a - kept < min_gap:
             continue
         keep[k, a + kept : e] = False
+        # No frame of the programme spans the cut (the kept steps outreach the longest),
+        # so shift what follows to join on: no leap in log success between neighbours.
+        cs[k, e:] += cs[k, a + kept] - cs[k, e]
         removed[k] += e - a - kept
         gaps.append((k, dist_e, kept, sums_at))
         parts += [total[k, a : a + kept] - total[k, e], total[k, e] - total[k, e : e + hi]]
@@ -484,15 +499,19 @@ def _solve_batch(rows: _Rows, ks: Index, gaps: dict[int, list[tuple[int, int, in
     width = int(-(-n[0] // block) * block)
     cols = width + hi + 1
     front = width - n
-    c = np.arange(cols)
-    cs = rows.cs[rows.cs_at[ks][:, None] + np.maximum(c[None, :] - front[:, None], 0)]
+    cs = np.empty((count, cols))
+    for r, (k, f) in enumerate(zip(ks.tolist(), front.tolist(), strict=True)):
+        at = int(rows.cs_at[k])
+        cs[r, f:] = rows.cs[at : at + cols - f]
+        cs[r, :f] = rows.cs[at]
     value = np.zeros((count, cols), dtype=dtype)
     value[:, width:] = _up(rows.tail[ks], dtype)
     bits = g.bits.astype(dtype)
     groups = len(bits)
     item = np.dtype(dtype).itemsize
     span = block + hi
-    e64 = np.empty((count, span))
+    e64 = np.empty((count, E_ROUNDS * block + hi))
+    p64 = np.empty((count, span))
     e = np.empty((count, span), dtype=dtype)
     e_win = as_strided(e[:, lo:], shape=(count, block, groups), strides=(e.strides[0], item, item), writeable=False)
     v_win = as_strided(value, shape=(count, cols - groups + 1, groups), strides=(value.strides[0], item, item), writeable=False)
@@ -504,16 +523,23 @@ def _solve_batch(rows: _Rows, ks: Index, gaps: dict[int, list[tuple[int, int, in
             events.setdefault(c_e - kept, []).append((r, c_e, kept, at))
     growth, slack = dtype(1.0 + F32_GROWTH), dtype(F32_SLACK)
     inflate = dtype is np.float32
-    act = count
+    lengths = n.tolist()
+    act, ref = count, 0
     for rnd in range(width // block):
-        while act and n[act - 1] <= rnd * block:
+        while act and lengths[act - 1] <= rnd * block:
             act -= 1
         c0 = width - (rnd + 1) * block
-        ea, eb = e[:act], e64[:act]
-        np.subtract(cs[:act, c0 : c0 + span], cs[:act, c0 : c0 + 1], out=eb)
-        ea[...] = eb
-        np.maximum(ea, -80.0, out=ea)  # p below e^-80 (times at most e^44) counts as that
-        np.exp(ea, out=ea)
+        if rnd % E_ROUNDS == 0:  # exp(log success from step ref), for the next E_ROUNDS rounds
+            ref = max(0, c0 - (E_ROUNDS - 1) * block)
+            eb = e64[:act, : min(e64.shape[1], cols - ref)]
+            np.subtract(cs[:act, ref : ref + eb.shape[1]], cs[:act, ref : ref + 1], out=eb)
+            np.maximum(eb, -700.0, out=eb)  # from step c0 on at most e^(700 - 8 x 8 x 40 x log 2) = e^-340
+            np.exp(eb, out=eb)
+        o = c0 - ref
+        ea, pa = e[:act], p64[:act]
+        np.divide(e64[:act, o : o + span], e64[:act, o : o + 1], out=pa)  # success from c0 to each step
+        ea[...] = pa
+        np.maximum(ea, E_FLOOR, out=ea)
         inv = 1.0 / ea[:, :block]
         t = cand[:act]
         np.multiply(e_win[:act], bits, out=t)
