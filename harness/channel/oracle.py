@@ -15,12 +15,15 @@ the modulation's bit-error rate (``physics.bit_error_rate``), and a success
 probability of ``exp(bits x mean(log(1 - BER)))`` over points across the
 frame.  The model takes up to 16 points per frame; the oracle takes one per
 byte (:func:`opening_log_ok`), so that one prefix sum serves every frame of
-an opening (``tests/test_oracle.py`` checks the two agree).  Per byte it
-rounds in its own favour: the bit-error rate is Numerical Recipes' erfc
-scaled below the true one (:data:`ERFC_MARGIN`), tabulated over log Eb/N0
-and read at the entry above (:data:`LOG_EBN0_STEP`); a byte whose bit-error
-rate is below :data:`CLEAR_BER` counts as error-free, and one whose Eb/N0 is
-below :data:`EBN0_FLOOR` is taken at that floor.
+an opening (``tests/test_oracle.py`` checks the two agree).  Per byte the
+oracle rounds in its own favour, and tests check it is never below the
+channel's formulas: the bit-error rate is Numerical Recipes' erfc scaled
+below the true one (:data:`ERFC_MARGIN`), tabulated over log Eb/N0 and read
+at the entry above (:data:`LOG_EBN0_STEP`: log(1 - BER) rises with Eb/N0); a
+byte whose bit-error rate is below :data:`CLEAR_BER` counts as error-free,
+one whose Eb/N0 is below :data:`EBN0_FLOOR` counts as at it.  Envelopes are
+compared as log Eb/N0, where a decay is a straight line (one ``arange`` per
+trail) and the ripple is ``1 + 2 f cos(theta) + f^2`` over ``1 + f^2``.
 
 The dynamic programme runs on a grid of ``step_bytes`` byte times from the
 opening's first possible frame.  With V[i] the best expected payload from
@@ -30,43 +33,54 @@ step_bytes)`` steps.  With ``step_bytes = 1`` this is exact on the byte
 grid.  Coarser steps relax it in the oracle's favour: lengths are grouped by
 D, each group credited with its longest payload at the success probability
 of its first ``step_bytes x D`` bytes (for the shortest group that is fewer
-bytes than its shortest frame), and a frame may overlap the next by less
-than a step, so any schedule of real frames (starts rounded down to the
+bytes than its shortest frame: 10 of 11 on the report's grid, which raises
+the demo day's bound by 4e-6 of itself), and a frame may overlap the next by
+less than a step, so any schedule of real frames (starts rounded down to the
 grid) is matched or beaten as long as the envelope does not rise within a
-step.
+step.  Then p(i, D) = exp(C[i + D] - C[i]), C the cumulative log success
+per step, so the programme's work is a Hankel pattern: each block of steps
+reads strided views of C and V, no copies.
 
-The programme is the costly part, so much of each opening is left to an
-upper bound instead.  Any U that satisfies the programme's inequalities,
-``U[i] >= U[i + 1]`` and ``U[i] >= 8 L p(i, L) + U[i + D]`` at every step
-and ``U >= 0`` past the last start, is at least V everywhere (backwards
-induction), so the programme may take U's values over any stretch of steps
-and its answer stays a bound.  The U used is a per-step rate: with q_j the
-log success of step j, a frame of group D over steps i .. i + D - 1 has
-``p = exp(sum q_j) <= (1/D) sum exp(D q_j)`` (Jensen: exp is convex), so
-``bits_D p <= sum_j R(q_j)`` with ``R(q) = max_D (bits_D / D) exp(D q)``,
-the best rate a steady channel of step success exp(q) allows.  Then
-``U[i] = sum_{j = i}^{e - 1} R(q_j) + M`` over a stretch [a, e), with M the
-best of ``sum_{j = e}^{m - 1} R(q_j) + V[m]`` over the steps m a frame from
-inside can end on, satisfies the inequalities.  R is tight where the
-channel is clear (every frame succeeds, and the best rate is the longest
-frame's) and adds little where it is dead; the programme is kept for the
-steps between, where frame lengths trade off (:data:`CLEAR_LOG_OK`,
-:data:`DEAD_RATE`).  On the demo day this leaves about a quarter of the
-steps to the programme and raises the bound by about 0.4 % (the step grid
-itself is 0.8 % above the byte grid).  R is computed over real D (one
-turning point, a maximum), which is at least the maximum over whole D.
+Much of each opening is left to an upper bound instead of the programme.
+Any U that satisfies the programme's inequalities (``U[i] >= U[i + 1]``,
+``U[i] >= 8 L p(i, L) + U[i + D]`` at every step where frames may start, and
+``U >= 0`` past the last) is at least V everywhere, by backwards induction,
+so the programme may take U's values over any stretch of steps and its
+answer stays a bound.  The U used is a rate per step.  With q_j the log
+success of step j, a frame of group D over steps i .. i + D - 1 succeeds
+with ``p = exp(sum q_j) <= (1/D) sum exp(D q_j)`` (Jensen: exp is convex), so
+its credit ``bits_D p <= sum_j R(q_j)`` with ``R(q) = max_D (bits_D / D)
+exp(D q)``, the best payload rate a steady channel of step success e^q
+allows.  Over a stretch [a, e), ``U[i] = sum_{j=i}^{e-1} R(q_j) + M`` with M
+the best of ``sum_{j=e}^{m-1} R(q_j) + V[m]`` over the m in [e, e + hi) that
+a frame from inside can end on meets the inequalities: a frame inside is
+paid for by its steps' rates, one reaching past e by its steps' rates and
+the rates in M.  (R is computed over real D, whose one turning point is a
+maximum, so it is at least the maximum over whole D; it is tabulated and
+read on the chord between entries, which lies above a convex function.)
+R is nearly exact where the channel is clear (the best rate is then the
+longest frame's) or dead (rates near 0), and the programme is kept for the
+steps between, where frame lengths trade off: steps whose mean log success
+per bit is above :data:`CLEAR_LOG_OK`, or whose R is below :data:`DEAD_RATE`
+bits, go to the rate bound when they form a stretch at an opening's start
+(its value is U[0]), at its end (the programme's values past it are U's),
+or long enough in between (:data:`MIN_GAP`: the stretch's first ``hi`` steps
+stay, filled with U, for the steps before it to read).  On the demo day
+this leaves 16 % of the steps to the programme and raises the bound by
+0.37 % over the exact programme (the step grid itself is 0.8 % above the
+byte grid).
 
-The programme runs in float32 over many openings at once (openings are
-rows, right-aligned, solved ``lo`` steps at a time, ``lo`` being the
-shortest frame's steps: no frame ends within the block it starts in).
-Rounding is made to favour the oracle: every frame's credit is raised by
-:data:`F32_GROWTH` of itself and :data:`F32_SLACK` bits, more than the
-float32 error of ``bits x p + V`` (log successes are differenced in
-float64 and cast, |error| <= 2^-24 x |log p| + 1e-9; exp in float32 is
-within 3 ulp; three products and a sum round by 2^-24 each; with |log p| of
-a block's first step at most 44 nats and p x |log p| <= 1/e, the credit is
-off by at most 0.013 bits plus 2^-23 of the sum), and every value written
-from float64 is rounded up.
+The programme runs in float32 over many openings at once: openings are
+rows, right-aligned, longest first, and are solved ``lo`` steps at a time
+(``lo``, the shortest frame's steps: no frame ends in the block it starts
+in), each block's success ratios from float64 exponentials (taken every
+:data:`E_ROUNDS` blocks, then scaled).  Rounding favours the oracle: a
+frame's credit ``bits x p + V`` is computed within 6 float32 roundings
+(cast of p's ratios, the inverse, two products, the sum), and every credit
+is raised by :data:`F32_GROWTH` (8 roundings) and :data:`F32_SLACK` bits;
+values written from float64 are rounded up; success ratios below
+:data:`E_FLOOR` count as it.  ``plan_values(..., exact=True)`` is the
+programme in float64 with no step left to the rate bound (for tests).
 """
 
 from __future__ import annotations
@@ -93,7 +107,7 @@ P_MIN = 1e-6
 """An opening ends where even the shortest frame arrives with probability below this."""
 CLEAR_LOG_OK = -1e-3
 """Steps whose mean log success per bit is above this are left to the rate bound (clear enough)."""
-DEAD_RATE = 5.0
+DEAD_RATE = 6.0
 """So are steps whose rate bound R is below this many payload bits."""
 MIN_GAP = 16
 """Fewer steps than this are not worth cutting out of the middle of an opening's programme."""
@@ -117,10 +131,13 @@ bits: more than its rounding (see above)."""
 E_ROUNDS = 8
 """Successes are exponentiated (in float64) once every E_ROUNDS rounds, then scaled."""
 E_FLOOR = math.exp(-80.0)
-"""Successes below this (from a block's first step) count as this: float32 holds it, and
-the rest of the block is at most e^44 better, so a frame credited with it is worth < 1e-15 bits."""
+"""Success ratios below this (from a block's first step) count as this: float32 holds it,
+and from the block's other steps it is at most e^44 times more, so a frame credited
+with it is worth less than 1e-12 bits."""
 SOLVE_ROWS = 128
-"""Openings the programme solves together (sorted by length, so their rounds are nearly all full)."""
+SOLVE_CELLS = 1 << 20
+"""Openings the programme solves together, longest first: SOLVE_ROWS of them, fewer if
+that makes more than SOLVE_CELLS steps (memory: about 12 bytes a step)."""
 
 
 @dataclasses.dataclass(frozen=True)
@@ -399,16 +416,21 @@ def _prepare_some(openings: list[OpeningPlan], g: _Grid, clear_log_ok: float, de
     steps = np.array([o.steps for o in openings], dtype=np.int64)
     slots = steps + hi + 1  # steps 0 .. steps + hi - 1 (frames run on past the last start), and one to end on
     width = int(slots.max())
-    raw = np.full((m, s * width), math.log(0.5))  # past the known bytes: every bit a coin toss
+    q = np.full((m, width), s * math.log(0.5))  # past the known bytes: every bit a coin toss
     for k, o in enumerate(openings):
-        known = min(len(o.log_ok), s * int(slots[k] - 1))
-        raw[k, :known] = o.log_ok[:known]
-    q = raw[:, 0::s].copy()
-    for b in range(1, s):
-        q += raw[:, b::s]
+        row, end = q[k], int(slots[k] - 1)
+        known = min(len(o.log_ok), s * end)
+        whole = known // s
+        if s == 2:
+            np.add(o.log_ok[0 : 2 * whole : 2], o.log_ok[1 : 2 * whole : 2], out=row[:whole])
+        else:
+            row[:whole] = o.log_ok[: s * whole].reshape(whole, s).sum(axis=1)
+        if known > s * whole:
+            row[whole] = float(np.sum(o.log_ok[s * whole : known])) + (s * (whole + 1) - known) * math.log(0.5)
+        row[end:] = 0.0  # the slot to end on, and past it
     q *= 8.0  # log success of each step
+    np.clip(q, 8.0 * s * math.log(0.5), 0.0, out=q)  # as log(1 - min(BER, 1/2)) is (the rate table's reach)
     j = np.arange(width)[None, :]
-    q[j >= slots[:, None] - 1] = 0.0  # the slot to end on, and past it
     # Cumulative log success, and T[j], the rates summed from step j to the last a
     # frame can reach (steps + hi - 2), row by row: an opening's numbers never
     # depend on its neighbours.
@@ -469,12 +491,11 @@ def _prepare_some(openings: list[OpeningPlan], g: _Grid, clear_log_ok: float, de
 
 
 def _up(x: Array, dtype: type) -> NDArray[np.floating]:
-    """``x`` in ``dtype``, rounded up (a float64 sum's own rounding covered too)."""
+    """``x`` (>= 0) in ``dtype``, rounded up: raised by 2^-22 of itself and 1e-6 first,
+    more than float32's rounding (2^-24) and float64's in the sums that made it."""
     if dtype is np.float64:
         return np.asarray(x, dtype=np.float64)
-    x = np.asarray(x, dtype=np.float64) * (1.0 + 1e-12) + 1e-9
-    y = x.astype(dtype)
-    return np.where(y < x, np.nextafter(y, dtype(np.inf)), y)
+    return (np.asarray(x, dtype=np.float64) * (1.0 + 2.0**-22) + 1e-6).astype(dtype)
 
 
 def _solve(rows: _Rows, g: _Grid, dtype: type, batch: int) -> Array:
@@ -484,10 +505,15 @@ def _solve(rows: _Rows, g: _Grid, dtype: type, batch: int) -> Array:
     gaps: dict[int, list[tuple[int, int, int]]] = {}
     for k, dist_e, kept, at in rows.gaps:
         gaps.setdefault(k, []).append((dist_e, kept, at))
-    for b in range(0, len(order), batch):
-        ks = order[b : b + batch]
+    b = 0
+    while b < len(order):
+        count = max(1, min(batch, SOLVE_CELLS // int(rows.n[order[b]] + g.hi + 1)))
+        ks = order[b : b + count]
         first = _solve_batch(rows, ks, gaps, g, dtype)  # V at each row's first hi steps
         out[ks] = rows.head_sum[ks] + np.max(rows.head_ramp[ks] + first, axis=1)
+        b += count
+    if dtype is np.float32:
+        out += 1e-6  # the rounding of the rate sums
     return out
 
 
