@@ -101,14 +101,19 @@ def _rate_bound(plan: OpeningPlan, step_bytes: int, max_payload: int) -> float:
     return float(np.sum(oracle.jensen_rate(q, g)))
 
 
-def test_relaxed_programme_never_falls_below_brute_force() -> None:
+def test_relaxed_programme_never_falls_below_brute_force(monkeypatch: pytest.MonkeyPatch) -> None:
     """The programme as the report runs it (clear and dead stretches left to the
     rate bound, float32) is never below the best schedule, enumerated one by
     one, on openings built to have such stretches; nor above the rate bound
-    alone (plus float32's allowance), which it only tightens."""
+    alone (plus float32's allowance), which it only tightens.  Stretches at the
+    start of any length go to the rate bound here (HEAD_MIN 0), so that openings
+    small enough to enumerate have them."""
+    monkeypatch.setattr(oracle, "HEAD_MIN", 0)
     max_payload = 20
     plans = _small_plans(np.random.default_rng(12)) + _edgy_plans(np.random.default_rng(13))
     values = plan_values(plans, step_bytes=1, max_payload=max_payload)
+    rows, _ = oracle._prepare(plans, oracle._grid(1, max_payload, OVERHEAD), oracle.CLEAR_LOG_OK, oracle.DEAD_SHARE, oracle.MIN_GAP)
+    assert np.any(rows.head_sum > 0) and np.any(rows.tail[:, 0] > 0) and np.any(rows.n == 0) and np.any(rows.n > 0)
     for plan, value in zip(plans, values, strict=True):
         best = _brute_force(plan, max_payload)
         assert best <= value <= _rate_bound(plan, 1, max_payload) * (1 + 1e-5) + oracle.F32_SLACK * (plan.steps + 1), (plan.steps, best, value)
@@ -124,7 +129,9 @@ def _long_plans(rng: np.random.Generator) -> list[OpeningPlan]:
         fade = -1e-5 * (1.0 + np.cos(k / 9.0)) ** 6  # an overdense plateau's fading
         decay = -1e-9 * np.exp(np.maximum(k - n // 3, 0) / 40.0)  # a trail decaying after a third
         burst = np.where((k > n // 2) & (k < n // 2 + 300), 0.0, -0.5)  # a second trail, cut short
-        shapes = [fade, decay, np.maximum(decay, burst), fade + decay, -rng.uniform(0.0, 0.01, n) * (rng.uniform(0, 1, n) < 0.1)]
+        # Clear, fading, dead and middling by turns, each long enough to be cut out whole.
+        turns = np.array([0.0, -1.5e-3, -1e-7, -0.4, -1.8e-3, 0.0, -1.2e-3 * (1 + rng.uniform())])[(k // 500) % 7]
+        shapes = [fade, decay, np.maximum(decay, burst), fade + decay, turns, -rng.uniform(0.0, 0.01, n) * (rng.uniform(0, 1, n) < 0.1)]
         plans += [OpeningPlan(0.0, steps, np.maximum(shape, math.log(0.5))) for shape in shapes]
     return plans
 
@@ -137,11 +144,13 @@ def test_relaxations_never_fall_below_the_exact_programme(step_bytes: int, max_p
     plans = _long_plans(np.random.default_rng(14)) + _edgy_plans(np.random.default_rng(15))
     options = {"step_bytes": step_bytes, "max_payload": max_payload}
     exact = plan_values(plans, **options, exact=True)
-    float32 = plan_values(plans, **options, clear_log_ok=math.inf, dead_rate=-1.0)
+    float32 = plan_values(plans, **options, clear_log_ok=math.inf, dead_share=-1.0)
     relaxed = plan_values(plans, **options)
     assert np.all(float32 >= exact)
     assert np.all(float32 <= exact * (1 + 1e-4) + oracle.F32_SLACK * (np.array([p.steps for p in plans]) + 1))
     assert np.all(relaxed >= exact)
+    rows, _ = oracle._prepare(plans, oracle._grid(step_bytes, max_payload, OVERHEAD), oracle.CLEAR_LOG_OK, oracle.DEAD_SHARE, oracle.MIN_GAP)
+    assert rows.gaps and np.any(rows.head_sum > 0) and np.any(rows.tail[:, 0] > 0) and np.any(rows.n > 0), "every relaxation is exercised"
     bound = np.array([_rate_bound(p, step_bytes, max_payload) for p in plans])
     assert np.all(relaxed <= bound * (1 + 1e-5) + oracle.F32_SLACK * (np.array([p.steps for p in plans]) + 1))
 
@@ -157,6 +166,23 @@ def test_relaxations_loosen_real_openings_little() -> None:
     alone = sum(_rate_bound(p, oracle.STEP_BYTES, oracle.MAX_FRAGMENT_PAYLOAD) for p in plans)
     assert exact <= relaxed <= 1.01 * exact
     assert relaxed <= alone <= 1.02 * exact
+
+
+def test_a_cut_out_dead_stretch_lends_no_success() -> None:
+    """A dead stretch cut out of the programme between two middling ones: the steps
+    after the cut are credited their own success, not the success across the cut
+    (blocks of the programme straddle cuts; a bug once credited them success 1)."""
+    plans = []
+    for offset in range(10):  # where the cut falls within a block
+        k = np.arange(4000)
+        log_ok = np.select([k < 600 + 2 * offset, k < 1600 + 2 * offset, k < 2200 + 2 * offset], [-1.5e-3, -0.4, -1.5e-3], -0.6)
+        plans.append(OpeningPlan(0.0, 1200, np.maximum(log_ok, math.log(0.5))))
+    rows, _ = oracle._prepare(plans, oracle._grid(2, 256, OVERHEAD), oracle.CLEAR_LOG_OK, oracle.DEAD_SHARE, oracle.MIN_GAP)
+    assert len(rows.gaps) == len(plans)
+    exact = plan_values(plans, exact=True)
+    relaxed = plan_values(plans)
+    assert np.all(relaxed >= exact)
+    assert np.all(relaxed <= 1.002 * exact + 20.0), relaxed - exact
 
 
 def test_batches_and_neighbours_change_no_opening() -> None:

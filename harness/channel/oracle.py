@@ -61,14 +61,15 @@ read on the chord between entries, which lies above a convex function.)
 R is nearly exact where the channel is clear (the best rate is then the
 longest frame's) or dead (rates near 0), and the programme is kept for the
 steps between, where frame lengths trade off: steps whose mean log success
-per bit is above :data:`CLEAR_LOG_OK`, or whose R is below :data:`DEAD_RATE`
-bits, go to the rate bound when they form a stretch at an opening's start
+per bit is above :data:`CLEAR_LOG_OK`, or whose R is below :data:`DEAD_SHARE`
+of R(0), go to the rate bound when they form a stretch at an opening's start
 (its value is U[0]), at its end (the programme's values past it are U's),
-or long enough in between (:data:`MIN_GAP`: the stretch's first ``hi`` steps
-stay, filled with U, for the steps before it to read).  On the demo day
-this leaves 16 % of the steps to the programme and raises the bound by
-0.37 % over the exact programme (the step grid itself is 0.8 % above the
-byte grid).
+or long enough in between (:data:`HEAD_MIN`, :data:`MIN_GAP`: the
+stretch's first ``hi`` steps stay, filled with U, for the steps before it to
+read; what follows a cut is shifted so that log success does not leap
+across it).  On the demo day this leaves 18 % of the steps to the
+programme and raises the bound by 0.28 % over the exact programme (the step
+grid itself is 0.8 % above the byte grid).
 
 The programme runs in float32 over many openings at once: openings are
 rows, right-aligned, longest first, and are solved ``lo`` steps at a time
@@ -107,11 +108,12 @@ P_MIN = 1e-6
 """An opening ends where even the shortest frame arrives with probability below this."""
 CLEAR_LOG_OK = -1e-3
 """Steps whose mean log success per bit is above this are left to the rate bound (clear enough)."""
-DEAD_RATE = 6.0
-"""So are steps whose rate bound R is below this many payload bits."""
+DEAD_SHARE = 0.4
+"""So are steps whose rate bound R is below this share of the best rate (a clear
+channel's: 6.2 payload bits a step on the report's grid)."""
 MIN_GAP = 16
 """Fewer steps than this are not worth cutting out of the middle of an opening's programme."""
-HEAD_MIN = 0
+HEAD_MIN = 133
 """An opening's first steps are left to the rate bound if at least this many are clear or dead."""
 CLEAR_BER = 1e-10
 """Bytes whose bit-error rate is below this count as error-free (a 266-byte frame's
@@ -395,7 +397,7 @@ PREPARE_CELLS = 1 << 17
 (their scratch tables stay a megabyte each, so memory once mapped is used again)."""
 
 
-def _prepare(openings: list[OpeningPlan], g: _Grid, clear_log_ok: float, dead_rate: float, min_gap: int) -> tuple[_Rows, Index]:
+def _prepare(openings: list[OpeningPlan], g: _Grid, clear_log_ok: float, dead_share: float, min_gap: int) -> tuple[_Rows, Index]:
     """The openings' rows, made ready in groups of similar length, and the opening of each row."""
     steps = np.array([o.steps for o in openings], dtype=np.int64)
     order = np.argsort(steps, kind="stable")
@@ -404,12 +406,12 @@ def _prepare(openings: list[OpeningPlan], g: _Grid, clear_log_ok: float, dead_ra
         count = max(1, min(len(order) - c, PREPARE_CELLS // int(steps[order[c]] + g.hi + 1)))
         while count > 1 and count * int(steps[order[c + count - 1]] + g.hi + 1) > PREPARE_CELLS:
             count //= 2
-        parts.append(_prepare_some([openings[k] for k in order[c : c + count]], g, clear_log_ok, dead_rate, min_gap))
+        parts.append(_prepare_some([openings[k] for k in order[c : c + count]], g, clear_log_ok, dead_share, min_gap))
         c += count
     return (parts[0] if len(parts) == 1 else _Rows.concatenate(parts)), order
 
 
-def _prepare_some(openings: list[OpeningPlan], g: _Grid, clear_log_ok: float, dead_rate: float, min_gap: int) -> _Rows:
+def _prepare_some(openings: list[OpeningPlan], g: _Grid, clear_log_ok: float, dead_share: float, min_gap: int) -> _Rows:
     """Rows for openings of similar length, as a table: opening k's step j at [k, j]."""
     s, lo, hi = g.step, g.lo, g.hi
     m = len(openings)
@@ -441,8 +443,9 @@ def _prepare_some(openings: list[OpeningPlan], g: _Grid, clear_log_ok: float, de
     total = np.cumsum(rate[:, ::-1], axis=1)[:, ::-1]
     total += 1e-6  # a margin for the rounding of the sums
     # Stretches of steps left to the rate bound: clear or dead, where frames may start.
-    dead_q = -RATE_STEP * float(np.sum(g.rates[0] > dead_rate))
-    easy = (q >= 8.0 * s * clear_log_ok) | (q <= dead_q)  # R(q) <= dead_rate below dead_q: R rises with q
+    rates = g.rates[0]
+    dead_q = -RATE_STEP * float(np.sum(rates > dead_share * rates[0]))
+    easy = (q >= 8.0 * s * clear_log_ok) | (q <= dead_q)  # R(q) <= dead_share R(0) below dead_q: R rises with q
     easy &= j < steps[:, None]
     pad = np.zeros((m, 1), dtype=np.int8)
     run_k, edge = np.nonzero(np.diff(np.concatenate([pad, easy.view(np.int8), pad], axis=1), axis=1))
@@ -584,18 +587,18 @@ def _solve_batch(rows: _Rows, ks: Index, gaps: dict[int, list[tuple[int, int, in
 
 
 def plan_values(openings: list[OpeningPlan], *, step_bytes: int = STEP_BYTES, max_payload: int = MAX_FRAGMENT_PAYLOAD,
-                overhead: int = FRAGMENT_OVERHEAD_BYTES, clear_log_ok: float = CLEAR_LOG_OK, dead_rate: float = DEAD_RATE,
+                overhead: int = FRAGMENT_OVERHEAD_BYTES, clear_log_ok: float = CLEAR_LOG_OK, dead_share: float = DEAD_SHARE,
                 exact: bool = False) -> Array:  # fmt: skip
     """The oracle's expected payload bits for each opening (the dynamic programme above).
 
     ``exact``: the whole programme in float64, no step left to the rate bound
-    (``clear_log_ok`` and ``dead_rate`` are then ignored): for tests."""
+    (``clear_log_ok`` and ``dead_share`` are then ignored): for tests."""
     if not openings:
         return np.zeros(0)
     g = _grid(step_bytes, max_payload, overhead)
     if exact:
-        clear_log_ok, dead_rate = math.inf, -1.0
-    rows, order = _prepare(openings, g, clear_log_ok, dead_rate, MIN_GAP)
+        clear_log_ok, dead_share = math.inf, -1.0
+    rows, order = _prepare(openings, g, clear_log_ok, dead_share, MIN_GAP)
     out = np.empty(len(openings))
     out[order] = _solve(rows, g, np.float64 if exact else np.float32, SOLVE_ROWS)
     return out
