@@ -39,6 +39,15 @@ def test_matches_a_set_of_integers(operations: list[tuple[bool, tuple[int, int]]
     assert ranges.contains(start, end) == window.issubset(model)
     assert set().union(*(range(s, e) for s, e in ranges.overlapping(start, end))) == window & model
     assert set().union(*(range(s, e) for s, e in ranges.gaps(start, end))) == window - model
+    # first_gap is the first of gaps: from the lowest integer missing up to the next one held (or the end).
+    missing = window - model
+    first = ranges.first_gap(start, end)
+    assert first == next(iter(ranges.gaps(start, end)), None)
+    if not missing:
+        assert first is None
+    else:
+        low = min(missing)
+        assert first == (low, min([p for p in model if low < p < end], default=end))
     assert ranges.covered() == len(model)
     assert ranges.maximum() == (max(model) + 1 if model else 0)
 

@@ -2,10 +2,13 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-from ionotrail.terminal.delivery.sender import FRAGMENT_OVERHEAD, Priority, Sender
+from ionotrail.terminal.delivery.rangeset import RangeSet
+from ionotrail.terminal.delivery.sender import FRAGMENT_OVERHEAD, Priority, Sender, _Outgoing
 from ionotrail.terminal.limits import Limits
 from ionotrail.terminal.wire import AckBlock, Fragment
 
@@ -121,3 +124,100 @@ def test_fill_is_next_fragment_in_a_loop(
             assert filled.on_ack(block, now + 0.5, issued=now + 0.5) == looped.on_ack(block, now + 0.5, issued=now + 0.5)
     assert filled.outstanding() == looped.outstanding()
     assert filled.counters == looped.counters
+
+
+# --- the kept selection against the selection made afresh ------------------------------
+
+
+class Afresh(Sender):
+    """The reference: the selection made afresh on every call, through the
+    generators of ranges it was first written with, over every queued message
+    when presuming pieces lost, and ``awaiting`` asked of every message."""
+
+    def _eligible(self) -> list[_Outgoing]:
+        queued = list(self._queue.values())
+        if not queued:
+            return []
+        ready = [m for m in queued if m.seq - queued[0].seq < self.limits.duplicate_window]
+        ready.sort(key=lambda m: (m.priority, m.created, m.seq))
+        return ready[: self.limits.max_partials_per_source]
+
+    def _choose(self, take_most: int) -> tuple[_Outgoing, int, int] | None:
+        eligible = self._eligible()
+        for message in eligible:
+            for start, end in message.acked.gaps(0, len(message.sealed)):
+                for gap_start, gap_end in message.sent.gaps(start, end):
+                    return message, gap_start, min(gap_end - gap_start, take_most)
+        for message in eligible:
+            size = len(message.sealed)
+            if message.acked.contains(0, size) and not message.in_flight:
+                return message, size - 1, 1
+        return None
+
+    def presume_lost(self, sent_before: float) -> None:
+        for message in list(self._queue.values()):
+            if message.in_flight and message.in_flight[0][0] < sent_before:
+                self._settle(message, lambda piece: piece[0] < sent_before)
+
+    @property
+    def awaiting(self) -> bool:
+        return any(m.in_flight for m in self._queue.values())
+
+
+def _selection(sender: Sender, take_most: int) -> tuple[int, int, int] | None:
+    chosen = sender._choose(take_most)
+    return None if chosen is None else (chosen[0].wire_id, chosen[1], chosen[2])
+
+
+_steps = st.one_of(
+    st.tuples(st.just("queue"), st.integers(1, 300), st.booleans()),
+    st.tuples(st.just("next"), st.integers(1, 200), st.sampled_from([0.0, 8 / 4800])),
+    st.tuples(st.just("ack"), st.integers(0, 7), st.lists(st.tuples(st.integers(0, 310), st.integers(1, 40)), max_size=5),
+              st.sampled_from(["held", "complete", "refused", "stray"]), st.sampled_from([None, -1.0, 0.0, 1.0])),
+    st.tuples(st.just("presume"), st.sampled_from([-1.0, 0.0, 0.5])),
+    st.tuples(st.just("fill"), st.integers(0, 400)),
+)  # fmt: skip
+
+
+@pytest.mark.property
+@given(steps=st.lists(_steps, max_size=60), limits=st.sampled_from([Limits(), Limits(max_partials_per_source=2, max_unconfirmed_pieces=3, max_queued_messages=6, duplicate_window=3)]))
+def test_the_kept_selection_is_always_the_one_made_afresh(steps: list[tuple[Any, ...]], limits: Limits) -> None:
+    """Whatever the sender went through (queueing, fragments, fills, every kind of
+    acknowledgement, presumed losses), the selection it kept is the one made
+    afresh, at every step and for every length asked; the two senders give the
+    same fragments, events and state throughout; and the messages it counts as
+    having pieces in flight are exactly those that have some."""
+    kept, afresh = Sender(TERMINAL, MASTER, limits=limits), Afresh(TERMINAL, MASTER, limits=limits)
+    now = 0.0
+    for step in steps:
+        now += 0.25
+        kind = step[0]
+        if kind == "queue":
+            _, size, alarm = step
+            if kept.can_queue():
+                priority = Priority.ALARM if alarm else Priority.ROUTINE
+                assert kept.queue(bytes([size % 251]) * size, now, priority) == afresh.queue(bytes([size % 251]) * size, now, priority)
+        elif kind == "next":
+            _, most, per_byte = step
+            assert kept.next_fragment(most, now, per_byte) == afresh.next_fragment(most, now, per_byte)
+        elif kind == "ack":
+            _, which, spans, verdict, issued_offset = step
+            ids = [wire_id for wire_id, *_ in kept.outstanding()]
+            message_id = ids[which % len(ids)] if ids and verdict != "stray" else (kept.next_id + 1) & 0xFFFF
+            held = RangeSet((start, start + length) for start, length in spans).ranges()[:15]
+            block = AckBlock(TERMINAL, message_id, held if verdict in ("held", "stray") else (), verdict == "complete", refused=verdict == "refused")
+            issued = None if issued_offset is None else now + issued_offset
+            assert kept.on_ack(block, now, issued=issued) == afresh.on_ack(block, now, issued=issued)
+        elif kind == "presume":
+            kept.presume_lost(now + step[1])
+            afresh.presume_lost(now + step[1])
+        else:
+            assert kept.fill(step[1], now) == afresh.fill(step[1], now)
+        for take_most in (1, 7, 64, 256):
+            assert _selection(kept, take_most) == _selection(afresh, take_most)
+        assert kept.can_send() == afresh.can_send()
+        assert kept.awaiting == afresh.awaiting
+        assert kept._flying == {m.seq: m for m in kept._queue.values() if m.in_flight}
+        assert kept.outstanding() == afresh.outstanding()
+        assert list(kept.outcomes) == list(afresh.outcomes)
+        assert kept.counters == afresh.counters

@@ -99,6 +99,22 @@ class RangeSet:
                 yield s, e
             i += 1
 
+    def first_gap(self, start: int, end: int) -> ByteRange | None:
+        """The first part of [start, end) the set does not cover (the first of
+        :meth:`gaps`), or None when it covers it all: two bisections, no generator."""
+        if start >= end:
+            return None
+        starts = self._starts
+        i = bisect_right(starts, start)  # ranges [0, i) start at or before ``start``
+        if i and self._ends[i - 1] > start:  # ``start`` is covered: the gap begins where its range ends
+            start = self._ends[i - 1]
+            if start >= end:
+                return None
+        # Ranges are non-adjacent, so range i (if any) starts beyond ``start``.
+        if i < len(starts) and starts[i] < end:
+            return start, starts[i]
+        return start, end
+
     def gaps(self, start: int, end: int) -> Iterator[ByteRange]:
         """The parts of [start, end) that the set does not cover."""
         cursor = start

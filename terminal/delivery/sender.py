@@ -126,6 +126,13 @@ class Sender:
         # max_queued_messages + duplicate_window - 2 < 2^16 (both limits are below 2^15).
         self._by_wire_id: dict[int, _Outgoing] = {}
         self._eligible_now: list[_Outgoing] | None = None
+        # The selection of _choose, kept until something it reads changes: the queue, or
+        # any message's acked, sent or in_flight.  Every method that changes one of them
+        # calls _changed() (tests/test_sender.py checks it against the selection made afresh).
+        self._selection: tuple[_Outgoing, int, int] | None = None  # (message, start, bytes up to the next sent or held one)
+        self._selection_known = False
+        # The messages with a piece in flight, by unwrapped id: what presume_lost visits.
+        self._flying: dict[int, _Outgoing] = {}
         self.outcomes: collections.deque[tuple[int, bool]] = collections.deque(maxlen=OUTCOMES_KEPT)
         """(frame bytes, lost) of each settled piece from :meth:`next_fragment`,
         newest last, for a fragment policy that learns from them; the link drains it."""
@@ -147,6 +154,7 @@ class Sender:
         self._queue[message.seq] = message
         self._by_wire_id[message.wire_id] = message
         self._eligible_now = None
+        self._changed()
         self._next_seq += 1
         self.counters.queued += 1
         return message.wire_id
@@ -164,7 +172,7 @@ class Sender:
     @property
     def awaiting(self) -> bool:
         """True while a piece from :meth:`next_fragment` awaits confirmation."""
-        return any(m.in_flight for m in self._queue.values())
+        return bool(self._flying)
 
     @property
     def next_id(self) -> int:
@@ -217,8 +225,14 @@ class Sender:
             budget -= len(fragment.payload) + FRAGMENT_OVERHEAD
         return fragments
 
+    def _changed(self) -> None:
+        """The queue or a message's acked, sent or in_flight changed: the next
+        :meth:`_choose` selects afresh."""
+        self._selection_known = False
+
     def _fragment(self, message: _Outgoing, start: int, take: int) -> Fragment:
         message.sent.add(start, start + take)
+        self._changed()
         self.counters.payload_bytes += take
         self.counters.air_bytes += take + FRAGMENT_OVERHEAD
         return Fragment(
@@ -258,6 +272,7 @@ class Sender:
             # never sent again.
             self.counters.solicitations += 1
             message.sent.discard(start, start + take)
+            self._changed()
         return fragment
 
     def can_send(self) -> bool:
@@ -268,12 +283,34 @@ class Sender:
         """The selection, without side effects: (message, start, length) of the
         next fragment, or None.  Bytes owed and not in flight go first, most
         important message first; then the one-byte solicitation of a message
-        whose every byte is held but whose verdict has not come."""
+        whose every byte is held but whose verdict has not come.
+
+        The link asks twice per fragment (can_send, then next_fragment), so the
+        selection is kept until the sender's state changes (:meth:`_changed`);
+        only its length depends on ``take_most``."""
+        if not self._selection_known:
+            self._selection = self._select()
+            self._selection_known = True
+        selection = self._selection
+        if selection is None:
+            return None
+        message, start, run = selection
+        return message, start, min(run, take_most)
+
+    def _select(self) -> tuple[_Outgoing, int, int] | None:
+        """What :meth:`_choose` selects, with the longest the fragment could be."""
         eligible = self._eligible()
         for message in eligible:
-            for start, end in self._owed(message):
-                for gap_start, gap_end in message.sent.gaps(start, end):
-                    return message, gap_start, min(gap_end - gap_start, take_most)
+            # The first byte neither acknowledged nor sent, as _owed() and sent.gaps()
+            # would give it: the first of sent's gaps in the first owed range that has one.
+            size = len(message.sealed)
+            acked, sent = message.acked, message.sent
+            owed = acked.first_gap(0, size)
+            while owed is not None:
+                gap = sent.first_gap(owed[0], owed[1])
+                if gap is not None:
+                    return message, gap[0], gap[1] - gap[0]
+                owed = acked.first_gap(owed[1], size)
         for message in eligible:
             size = len(message.sealed)
             if message.acked.contains(0, size) and not message.in_flight:
@@ -284,6 +321,7 @@ class Sender:
         fragment = self._fragment(message, start, take)
         self.counters.fragments += 1
         bisect.insort(message.in_flight, (air_end, start, start + take))  # kept in airtime order
+        self._flying[message.seq] = message
         excess = len(message.in_flight) - self.limits.max_unconfirmed_pieces
         if excess > 0:  # the oldest count as lost: nothing waits unboundedly for a verdict
             # By position, not by airtime: pieces of one instant (a zero airtime)
@@ -303,8 +341,11 @@ class Sender:
         when a new burst starts: an earlier burst's unconfirmed tail most
         likely died with its trail, and the acknowledgement that would say
         otherwise may never come."""
-        for message in self._queue.values():
-            if message.in_flight and message.in_flight[0][0] < sent_before:
+        # Only messages with a piece in flight can have one to settle; in id order, as
+        # the queue holds them, so the outcomes keep their order.
+        for seq in sorted(self._flying):
+            message = self._flying[seq]
+            if message.in_flight[0][0] < sent_before:
                 self._settle(message, lambda piece: piece[0] < sent_before)
 
     def _settle(self, message: _Outgoing, due: Callable[[tuple[float, int, int]], bool]) -> None:
@@ -315,10 +356,13 @@ class Sender:
         for piece in message.in_flight:
             (settled if due(piece) else kept).append(piece)
         message.in_flight = kept
+        if not kept:
+            self._flying.pop(message.seq, None)
         self._settle_pieces(message, settled)
 
     def _settle_pieces(self, message: _Outgoing, pieces: list[tuple[float, int, int]]) -> None:
         """Confirm or declare lost ``pieces``, already removed from ``in_flight``."""
+        self._changed()
         for _, start, end in pieces:
             lost = 0
             for gap_start, gap_end in message.acked.gaps(start, end):  # not held: lost
@@ -343,6 +387,7 @@ class Sender:
         :meth:`next_fragment` whose airtime ended before then and whose bytes
         the acknowledgement does not show was lost, and becomes unsent again.
         """
+        self._changed()  # whatever it changes below (and a subclass after it)
         if block.terminal != self.terminal or block.downlink != self.downlink:
             self.counters.stray_acks += 1
             return []
@@ -353,11 +398,13 @@ class Sender:
         if block.complete:
             self.outcomes.extend((end - start + FRAGMENT_OVERHEAD, False) for _, start, end in message.in_flight)
             del self._queue[message.seq], self._by_wire_id[message.wire_id]
+            self._flying.pop(message.seq, None)
             self._eligible_now = None
             self.counters.acknowledged += 1
             return [MessageAcknowledged(message.wire_id, message.created, now)]
         if block.refused:
             del self._queue[message.seq], self._by_wire_id[message.wire_id]
+            self._flying.pop(message.seq, None)
             self._eligible_now = None
             self.counters.refused += 1
             return [MessageRefused(message.wire_id, message.created, now)]
