@@ -97,32 +97,35 @@ async def raise_callback_errors(awaitable: Awaitable[T]) -> T:
 
 
 class _OrderedTimer(asyncio.TimerHandle):
-    """A timer ordered by (when, sequence) so equal deadlines keep scheduling order."""
+    """A timer ordered by (when, sequence) so equal deadlines keep scheduling order.
 
-    __slots__ = ("_sequence",)
+    The pair is built once, here: the heap compares timers several times per
+    push and pop, and asyncio never moves a timer's ``_when``."""
+
+    __slots__ = ("_order",)
 
     def __init__(self, sequence: int, when: float, callback: Callable[..., object], args: tuple[Any, ...], loop: asyncio.AbstractEventLoop, context: Context | None) -> None:
         super().__init__(when, callback, args, loop, context)
-        self._sequence = sequence
+        self._order = (when, sequence)
 
     def __lt__(self, other: object) -> bool:
         if isinstance(other, _OrderedTimer):
-            return (self._when, self._sequence) < (other._when, other._sequence)
+            return self._order < other._order
         return NotImplemented
 
     def __le__(self, other: object) -> bool:
         if isinstance(other, _OrderedTimer):
-            return (self._when, self._sequence) <= (other._when, other._sequence)
+            return self._order <= other._order
         return NotImplemented
 
     def __gt__(self, other: object) -> bool:
         if isinstance(other, _OrderedTimer):
-            return (self._when, self._sequence) > (other._when, other._sequence)
+            return self._order > other._order
         return NotImplemented
 
     def __ge__(self, other: object) -> bool:
         if isinstance(other, _OrderedTimer):
-            return (self._when, self._sequence) >= (other._when, other._sequence)
+            return self._order >= other._order
         return NotImplemented
 
 
