@@ -48,6 +48,12 @@ def test_matches_a_set_of_integers(operations: list[tuple[bool, tuple[int, int]]
     else:
         low = min(missing)
         assert first == (low, min([p for p in model if low < p < end], default=end))
+    assert ranges.covered_within(start, end) == len(window & model)
+    # extended_at_end: a range ends exactly at start, and [start, end) reaches (or touches) no other.
+    extended = None
+    if start < end and start - 1 in model and not any(start <= p <= end for p in model):
+        extended = min(p for p in range(start) if set(range(p, start)) <= model)
+    assert ranges.extended_at_end(start, end) == extended
     assert ranges.covered() == len(model)
     assert ranges.maximum() == (max(model) + 1 if model else 0)
 

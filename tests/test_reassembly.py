@@ -8,7 +8,7 @@ from hypothesis import strategies as st
 from ionotrail.harness.testing.faults import FaultSchedule
 from ionotrail.harness.testing.pair import MASTER, TERMINAL, LinkPair
 from ionotrail.harness.testing.strategies import fault_schedules, workloads
-from ionotrail.terminal.delivery.reassembly import Reassembler
+from ionotrail.terminal.delivery.reassembly import Reassembler, _Partial
 from ionotrail.terminal.delivery.sender import FRAGMENT_OVERHEAD, MessageAcknowledged, MessageRefused, Priority, Sender
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.limits import DEFAULT_LIMITS, MAX_ACK_RANGES, Limits
@@ -371,3 +371,129 @@ def test_fault_schedules_then_fair_channel_deliver_exactly_once(
     acknowledged = [e.message_id for e in pair.sender_events if isinstance(e, MessageAcknowledged)]
     assert sorted(d.payload for d in pair.deliveries) == sorted(p for p, _, _ in workload)
     assert len(acknowledged) == len(workload)
+
+
+# --- the quick paths against the long way --------------------------------------------------
+
+
+class LongWay(Reassembler):
+    """The reference: the deadline found afresh, every partial message looked at
+    on every expiry, overlaps and growth read through generators of ranges, as
+    they were first written."""
+
+    def next_deadline(self) -> float | None:
+        if not self._partials:
+            return None
+        return min(p.first_fragment for p in self._partials.values()) + self.limits.reassembly_lifetime
+
+    def expire(self, now: float) -> None:
+        lifetime = self.limits.reassembly_lifetime
+        for partial in [p for p in self._partials.values() if p.first_fragment + lifetime <= now]:
+            self._drop(partial)
+            self.counters.expired += 1
+
+    def _consistent(self, partial: _Partial, fragment: Fragment) -> bool:
+        if fragment.final:
+            if partial.end is not None and partial.end != fragment.end:
+                self.counters.abandoned_length += 1
+                return False
+            if partial.held.maximum() > fragment.end:
+                self.counters.abandoned_length += 1
+                return False
+        elif partial.end is not None and fragment.end > partial.end:
+            self.counters.abandoned_length += 1
+            return False
+        for start, end in partial.held.overlapping(fragment.offset, fragment.end):
+            lo = start - fragment.offset
+            if partial.read(start, end) != fragment.payload[lo : lo + end - start]:
+                self.counters.abandoned_overlap += 1
+                return False
+        return True
+
+    def _store(self, partial: _Partial, fragment: Fragment) -> bool:
+        if partial.held.contains(fragment.offset, fragment.end):
+            if fragment.final:
+                partial.end = fragment.end
+            return True
+        if partial.held.ranges_after_add(fragment.offset, fragment.end) > self.limits.max_ranges_per_message:
+            self.counters.hole_cap_drops += 1
+            return False
+        growth = sum(e - s for s, e in partial.held.gaps(fragment.offset, fragment.end))
+        if not self._make_room(partial, growth):
+            return False
+        partial.write(fragment.offset, fragment.payload)
+        self._account(partial.source, growth)
+        if fragment.final:
+            partial.end = fragment.end
+        partial.urgent = partial.urgent or fragment.urgent
+        return True
+
+
+_pieces = st.lists(
+    st.tuples(
+        st.integers(0, 1),  # terminal
+        st.integers(0, 4),  # message id
+        st.integers(0, 90),  # offset
+        st.integers(1, 30),  # length
+        st.sampled_from(["true", "true", "true", "final", "forged"]),
+        st.sampled_from([0.0, 0.5, 1.0, 2.5]),  # time since the last piece (lifetime 5 s: often due exactly)
+        st.booleans(),  # expire explicitly first
+    ),
+    max_size=60,
+)
+
+
+@pytest.mark.property
+@given(_pieces)
+def test_quick_paths_give_what_the_long_way_gives(pieces: list[tuple[int, int, int, int, str, float, bool]]) -> None:
+    """Overlaps, forged bytes, finals, caps, evictions and expiry: the receiver
+    answers and holds exactly what the reference does, its kept deadline is
+    always the one found afresh, and each held range has one chunk holding
+    exactly the range's bytes."""
+    limits = Limits(max_message_payload=100, max_bytes_per_source=150, max_bytes_total=200, max_partials_per_source=2,
+                    max_partials_total=3, max_ranges_per_message=3, reassembly_lifetime=5.0)  # fmt: skip
+    quick, long_way = Reassembler(limits), LongWay(limits)
+    truth = {key: seal_message(bytes((7 * key[0] + 13 * key[1] + i) % 256 for i in range(60 + 9 * key[1]))) for key in ((t, m) for t in range(2) for m in range(5))}
+    now = 0.0
+    for terminal, message_id, offset, length, kind, wait, expire in pieces:
+        now += wait
+        sealed = truth[(terminal, message_id)]
+        if kind == "final":
+            offset = max(0, len(sealed) - length)
+        payload = sealed[offset : offset + length] or b"\x00"
+        if kind == "forged":
+            payload = bytes(b ^ 0x55 for b in payload)
+        final = kind == "final" or offset + len(payload) == len(sealed)
+        fragment = Fragment(TERMINAL + terminal, MASTER, message_id, offset, payload, final=final)
+        if expire:
+            quick.expire(now)
+            long_way.expire(now)
+        assert quick.receive(fragment, now) == long_way.receive(fragment, now)
+        assert quick.next_deadline() == long_way.next_deadline()
+        assert quick.counters == long_way.counters
+        assert quick.buffered_bytes == long_way.buffered_bytes
+        assert list(quick.partials()) == list(long_way.partials())
+        for key in quick.partials():
+            held = quick.held(*key)
+            assert held == long_way.held(*key)
+            partial = quick._partials[key]
+            assert sorted(partial.chunks) == [start for start, _ in held]
+            for start, end in held:
+                assert partial.chunks[start] == long_way._partials[key].chunks[start]
+                assert len(partial.chunks[start]) == end - start
+
+
+@pytest.mark.property
+@given(st.lists(st.tuples(st.integers(0, 120), st.integers(1, 40)), max_size=25))
+def test_a_partial_holds_one_chunk_per_range_with_exactly_its_bytes(writes: list[tuple[int, int]]) -> None:
+    """Whatever order consistent bytes arrive in (extending a range at its end,
+    bridging two, inside one, before one), every held range has one chunk,
+    holding that range's bytes."""
+    message = bytes((31 * i + 5) % 256 for i in range(200))
+    partial = _Partial(SOURCE, 1, 0.0)
+    for start, length in writes:
+        partial.write(start, message[start : start + length])
+        assert sorted(partial.chunks) == [s for s, _ in partial.held]
+        for s, e in partial.held:
+            assert partial.chunks[s] == message[s:e]
+            assert partial.read(s, e) == message[s:e]

@@ -115,6 +115,32 @@ class RangeSet:
             return start, starts[i]
         return start, end
 
+    def covered_within(self, start: int, end: int) -> int:
+        """How many integers of [start, end) the set covers (the sum over
+        :meth:`overlapping`, without a generator)."""
+        if start >= end:
+            return 0
+        starts, ends = self._starts, self._ends
+        i = bisect_right(ends, start)  # the first range ending beyond ``start``
+        total = 0
+        while i < len(starts) and starts[i] < end:
+            total += min(ends[i], end) - max(starts[i], start)
+            i += 1
+        return total
+
+    def extended_at_end(self, start: int, end: int) -> int | None:
+        """The start of the range that ends exactly at ``start``, when adding
+        [start, end) would grow that one range and touch no other; else None."""
+        if start >= end:
+            return None
+        ends = self._ends
+        i = bisect_left(ends, start)
+        if i == len(ends) or ends[i] != start:
+            return None
+        if i + 1 < len(ends) and self._starts[i + 1] <= end:  # it would reach the next range too
+            return None
+        return self._starts[i]
+
     def gaps(self, start: int, end: int) -> Iterator[ByteRange]:
         """The parts of [start, end) that the set does not cover."""
         cursor = start

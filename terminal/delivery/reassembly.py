@@ -107,15 +107,13 @@ class _Partial:
     def write(self, start: int, payload: bytes) -> None:
         """Hold ``payload`` at ``start``, merging it with the chunks it overlaps or touches."""
         end = start + len(payload)
-        if self.held.ranges_after_add(start, end) == len(self.chunks) and self.held.contains(start - 1, start):
+        first = self.held.extended_at_end(start, end)
+        if first is not None:
             # The common case, bytes that extend a held range at its end without
-            # reaching the next one: extend that one chunk, no merge needed.
-            first = max(s for s in self.chunks if s < start)
-            chunk = self.chunks[first]
-            if first + len(chunk) == start:
-                self.chunks[first] = chunk + payload
-                self.held.add(start, end)
-                return
+            # reaching the next one: extend that range's one chunk, no merge needed.
+            self.chunks[first] += payload
+            self.held.add(start, end)
+            return
         low, high = start, end
         pieces: list[tuple[int, bytes]] = []
         for first in [s for s in self.chunks if s <= end and s + len(self.chunks[s]) >= start]:
@@ -144,6 +142,10 @@ class Reassembler:
         self.completed = DuplicateFilter(limits.duplicate_window, limits.max_duplicate_sources)
         self._check_duplicates = duplicate_window  # off only to prove tests catch duplicates
         self._partials: dict[tuple[Source, int], _Partial] = {}  # least recently fed first
+        # next_deadline(), kept: it changes only when a partial message starts or is dropped
+        # (a partial's first_fragment never changes); _start and _drop forget it.
+        self._deadline: float | None = None
+        self._deadline_known = True
         self._bytes_by_source: dict[Source, int] = {}
         self._count_by_source: dict[Source, int] = {}
         self._bytes = 0
@@ -179,12 +181,21 @@ class Reassembler:
 
     def next_deadline(self) -> float | None:
         """When the oldest partial message expires (None: nothing to expire)."""
-        if not self._partials:
-            return None
-        return min(p.first_fragment for p in self._partials.values()) + self.limits.reassembly_lifetime
+        if not self._deadline_known:
+            if self._partials:
+                self._deadline = min(p.first_fragment for p in self._partials.values()) + self.limits.reassembly_lifetime
+            else:
+                self._deadline = None
+            self._deadline_known = True
+        return self._deadline
 
     def expire(self, now: float) -> None:
         """Drop partial messages whose lifetime has run out."""
+        deadline = self.next_deadline()
+        if deadline is None or now < deadline:
+            # None is due: rounding is monotonic, so min(first) + lifetime is the
+            # least of the sums each partial is judged by below.
+            return
         lifetime = self.limits.reassembly_lifetime
         # The same sum as next_deadline(), so a call at the deadline always expires
         # (now - first >= lifetime can round the other way).
@@ -236,6 +247,7 @@ class Reassembler:
             self.counters.evicted_count += 1
         partial = _Partial(source, fragment.message_id, now)
         self._partials[partial.key] = partial
+        self._deadline_known = False
         self._count_by_source[source] = self._count_by_source.get(source, 0) + 1
         return partial
 
@@ -251,6 +263,8 @@ class Reassembler:
         elif partial.end is not None and fragment.end > partial.end:
             self.counters.abandoned_length += 1
             return False
+        if not partial.held.covered_within(fragment.offset, fragment.end):
+            return True  # nothing held to compare with
         for start, end in partial.held.overlapping(fragment.offset, fragment.end):
             lo = start - fragment.offset
             if partial.read(start, end) != fragment.payload[lo : lo + end - start]:
@@ -267,7 +281,7 @@ class Reassembler:
         if partial.held.ranges_after_add(fragment.offset, fragment.end) > self.limits.max_ranges_per_message:
             self.counters.hole_cap_drops += 1
             return False
-        growth = sum(e - s for s, e in partial.held.gaps(fragment.offset, fragment.end))
+        growth = fragment.end - fragment.offset - partial.held.covered_within(fragment.offset, fragment.end)
         if not self._make_room(partial, growth):
             return False
         partial.write(fragment.offset, fragment.payload)
@@ -342,6 +356,7 @@ class Reassembler:
     def _drop(self, partial: _Partial) -> None:
         if self._partials.pop(partial.key, None) is None:
             return
+        self._deadline_known = False
         if partial.size:
             self._account(partial.source, -partial.size)
         self._count_by_source[partial.source] -= 1
