@@ -124,6 +124,18 @@ def test_the_batch_success_probability_agrees_with_the_one_frame_path() -> None:
     assert compared > 2000
 
 
+def test_a_batch_across_openings_and_a_window_boundary_agrees_with_the_one_frame_path() -> None:
+    """Probes gathered over five minutes (many openings, quiet time between,
+    and the midnight where a one-window channel loads the next day)."""
+    s = demo("scenario.duration_hours=48")
+    streamed, whole = Channel(TrailSet(s)), Channel(TrailSet(s, window_s=2 * 86400.0))
+    times = np.arange(86400.0 - 150.0, 86400.0 + 150.0, 0.1)
+    batch = streamed.success_probabilities("down", times, 160)
+    one = np.array([whole.success_probability("down", float(t), 160) for t in times])
+    assert np.allclose(batch, one, rtol=1e-9, atol=1e-12)
+    assert np.count_nonzero(one > 0.5) > 20 and np.count_nonzero(one == 0.0) > 1000
+
+
 # --- the lazy probe stream -----------------------------------------------------------------
 
 

@@ -63,7 +63,12 @@ def below(key: int, n: int, bound: int) -> int:
 def uniforms(key: int, first: int, count: int) -> NDArray[np.float64]:
     """Draws ``first .. first + count - 1`` of stream ``key``: :func:`uniform`, vectorised
     (numpy's uint64 arithmetic wraps modulo 2^64, as the reference's does)."""
-    n = np.arange(first + 1, first + 1 + count, dtype=np.uint64)
+    return uniforms_at(key, np.arange(first, first + count, dtype=np.int64))
+
+
+def uniforms_at(key: int, counters: NDArray[np.int64]) -> NDArray[np.float64]:
+    """Draws ``counters`` (any order, each at least 0) of stream ``key``: :func:`uniform`, vectorised."""
+    n = counters.astype(np.uint64) + np.uint64(1)
     with np.errstate(over="ignore"):
         z = np.uint64(key) + n * np.uint64(GAMMA)
         z = (z ^ (z >> np.uint64(30))) * np.uint64(_M1)

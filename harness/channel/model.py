@@ -267,6 +267,14 @@ class TrailSet:
         self._fixed = self._all = value
         self._generated = len(value)
 
+    def with_window(self, window_s: float) -> TrailSet:
+        """This set with windows of ``window_s``: the same trails, drawn in other portions."""
+        if self._fixed is not None:
+            return self
+        out = TrailSet(self.scenario, keep=self.keep, progress=self.progress, window_s=window_s)
+        out._all, out._generated = self._all, self._generated
+        return out
+
     def fixed(self, trails: Trails) -> TrailSet:
         """A copy of this set (scenario, geometry) whose trails are exactly ``trails``, in one window."""
         out = copy.copy(self)
@@ -933,11 +941,12 @@ class Channel:
 
     def success_probabilities(self, direction: str, t0: Array, bits: int) -> Array:
         """:meth:`success_probability` of frames of ``bits`` sent at each of ``t0``
-        (sorted), in one numpy pass: the lazy probe stream's reckoning of the
-        probes it did not simulate one by one.  The same model and the same
-        shortcuts (1.0 when some trail is surely clear, 0.0 when none is
-        live); the numbers agree with the scalar path to rounding
-        (tests/test_channel_model.py)."""
+        (sorted, spanning less than :data:`RETAIN_S`), in one numpy pass: the
+        lazy probe stream's reckoning of the probes it did not simulate one by
+        one.  Each frame sees exactly the trails :meth:`_live` would give it
+        (the work is the live (frame, trail) pairs), the same model and the same shortcuts (1.0 when some
+        trail is surely clear, 0.0 when none is live); the numbers agree with
+        the scalar path to rounding (tests/test_scale.py)."""
         out = np.zeros(len(t0))
         if not len(t0):
             return out
@@ -946,39 +955,53 @@ class Channel:
         tr = self.trails
         if tr is None or not len(tr):
             return out
-        lo = int(np.searchsorted(tr.t, float(t0[0]) + duration - self._reach[direction], side="left"))
-        hi = int(np.searchsorted(tr.t, float(t0[-1]) + duration, side="right"))
-        idx = np.arange(lo, hi, dtype=np.int64)
-        live_end = tr.t[idx] + tr.hold[direction][idx] + FADED_TAUS * tr.tau[direction][idx]
-        idx, live_end = idx[live_end > t0[0]], live_end[live_end > t0[0]]
-        if not len(idx):
+        t1 = t0 + duration
+        # The (frame, trail) pairs _live would give: each candidate trail is live for a
+        # contiguous run of the (sorted) frames, those with t0 < its fade-out and t1 >= its start.
+        first = int(np.searchsorted(tr.t, float(t1[0]) - self._reach[direction], side="left"))
+        last = int(np.searchsorted(tr.t, float(t1[-1]), side="right"))
+        cand = np.arange(first, last, dtype=np.int64)
+        start_c = tr.t[cand]
+        live_end = start_c + tr.hold[direction][cand] + FADED_TAUS * tr.tau[direction][cand]
+        a = np.searchsorted(t1, start_c, side="left")
+        b = np.searchsorted(t0, live_end, side="left")
+        runs = b > a
+        cand, a, b = cand[runs], a[runs], b[runs]
+        if not len(cand):
             return out
-        start = tr.t[idx]
-        live = (start[None, :] <= t0[:, None] + duration) & (live_end[None, :] > t0[:, None])  # (frames, trails), as _live
+        lengths = b - a
+        total = int(lengths.sum())
+        offsets = np.repeat(np.cumsum(lengths) - lengths, lengths)
+        frame = np.repeat(a, lengths) + (np.arange(total) - offsets)  # each pair's frame
+        trail = np.repeat(cand, lengths)  # and trail
+        start = tr.t[trail]
+        hold, tau, peak = tr.hold[direction][trail], tr.tau[direction][trail], tr.peak_ebn0[direction][trail]
+        f = tr.fade_depth[trail]
         samples = _sample_count(duration)
-        times = t0[:, None] + (np.arange(samples) + 0.5) * (duration / samples)  # (frames, samples)
-        hold, tau, peak = tr.hold[direction][idx], tr.tau[direction][idx], tr.peak_ebn0[direction][idx]
-        f = tr.fade_depth[idx]
-        age = times[..., None] - start  # (frames, samples, trails)
-        env = np.exp(-np.maximum(age - hold, 0.0) / tau)
+        age = (t0[frame] - start)[:, None] + (np.arange(samples) + 0.5) * (duration / samples)  # (pairs, samples)
+        env = np.exp(-np.maximum(age - hold[:, None], 0.0) / tau[:, None])
         if np.any(hold > 0):
-            ripple = (1 + 2 * f * np.cos(2 * math.pi * tr.fade_hz[idx] * age + tr.fade_phase[idx]) + f * f) / (1 + f * f)
-            env = np.where(age < hold, ripple, env)
-        env = np.where((age >= 0) & live[:, None, :], peak * env, 0.0).max(axis=2)
+            fd = f[:, None]
+            ripple = (1 + 2 * fd * np.cos(2 * math.pi * tr.fade_hz[trail][:, None] * age + tr.fade_phase[trail][:, None]) + fd * fd) / (1 + fd * fd)
+            env = np.where(age < hold[:, None], ripple, env)
+        env = np.where(age >= 0, peak[:, None] * env, 0.0)
+        strongest = np.zeros((len(t0), samples))
+        np.maximum.at(strongest, frame, env)
         # Only samples weak enough to err count: above _nil_ebn0 a bit's error rate is below
         # 1e-30, and log1p(-ber) rounds to zero in any sum it could join.
-        log_ok = np.zeros(env.shape)
-        weak = env < self._nil_ebn0
+        log_ok = np.zeros(strongest.shape)
+        weak = strongest < self._nil_ebn0
         if np.any(weak):
-            log_ok[weak] = np.log1p(-np.minimum(physics.bit_error_rate(self.modulation, env[weak]), 0.5))
+            log_ok[weak] = np.log1p(-np.minimum(physics.bit_error_rate(self.modulation, strongest[weak]), 0.5))
         p = np.exp(np.sum(log_ok, axis=1) * bits / samples)
         # The scalar path's shortcut: some started trail stays above the clear floor over the frame.
-        age0 = t0[:, None] - start
+        age0 = t0[frame] - start
         lowest = peak * np.exp(-np.maximum(age0 + duration - hold, 0.0) / tau)
         ripple_floor = peak * (1 - f) ** 2 / (1 + f**2)
         lowest = np.where(age0 < hold, np.minimum(lowest, ripple_floor), lowest)
-        clear = np.any(live & (age0 >= 0) & (lowest > self._clear_ebn0), axis=1)
-        return np.where(clear, 1.0, np.where(live.any(axis=1), p, 0.0))
+        clear = np.bincount(frame[(age0 >= 0) & (lowest > self._clear_ebn0)], minlength=len(t0)) > 0
+        live = np.bincount(frame, minlength=len(t0)) > 0
+        return np.where(clear, 1.0, np.where(live, p, 0.0))
 
     def frame_ok(self, direction: str, t0: float, bits: int, rng: np.random.Generator) -> bool:
         """Did a frame of ``bits`` sent at t0 get through?  Drawn from ``rng``."""

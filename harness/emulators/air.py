@@ -48,6 +48,9 @@ DIRECTION_OF = {"terminal": "up", "master": "down"}
 SHORTEST_PROBE_BYTES = IDLE_PROBE_BYTES  # a probe carrying no poll, acknowledgement or command
 AIR_STREAM = 0x41495230  # "AIR0": the air's draws, apart from the trails'
 FRAME_DRAW, FLIP_DRAW, PROBE_DRAW = 1, 2, 3
+RECKON_SPAN_S = 300.0
+"""Probes reckoned together span at most this long (the channel keeps trails
+RETAIN_S = 600 s behind the latest time asked about)."""
 SCALAR_BATCH = 8
 """Up to this many probes, a bulk reckoning asks the channel one probe at a time."""
 EPOCH_SHIFT = 40
@@ -275,46 +278,37 @@ class Air:
         ``until`` (channel time), reckoned in bulk: drawn from the same keyed
         counters and the same success model as one by one, counted, and handed
         to the terminal together (the Eb/N0 of each only if it asks, from the
-        same lookup as one by one).  At least the current probe is reckoned."""
+        same lookup as one by one).  At least the current probe is reckoned.
+        Probes are gathered over the openings of the stretch and reckoned a
+        few minutes' worth at a time (the channel holds that much behind the
+        latest time asked about)."""
         port = self.master
         frame = port.probe_frame
         assert frame is not None and self.idle_terminal is not None
         bits = 8 * len(frame)
         airtime = bits / self.bit_rate["down"]
         heard: list[float] = []  # emission times of the probes the terminal hears
+        pending: list[np.ndarray] = []  # emission times gathered, not yet reckoned
+        pending_first = 0  # the probe number of the first of them
         first = True
         while True:
             nxt = self._next_probe()
-            if nxt is None:
-                break
-            _, end, window_end = nxt
-            if end >= until and not first:
-                break
+            if nxt is not None:
+                emit, end, window_end = nxt
+            if nxt is None or (end >= until and not first) or (pending and emit - pending[0][0] > RECKON_SPAN_S):
+                if pending:
+                    heard.extend(self._reckon_some(np.concatenate(pending), pending_first, bits))
+                    pending = []
+                if nxt is None or (end >= until and not first):
+                    break
             first = False
             k0 = port.probe_count
+            if not pending:
+                pending_first = k0
             # Probes of this opening: emitted before it closes, arriving before ``until``.
             last_emit = min(window_end, until - airtime)
             count = max(1, math.ceil((last_emit - port.probe_epoch) / port.probe_interval) - k0)
-            emits = port.probe_epoch + np.arange(k0, k0 + count) * port.probe_interval
-            if count <= SCALAR_BATCH:  # numpy's per-call cost outweighs a few scalar lookups
-                key, counter = self._probe_key, self._probe_counter(k0)
-                intact = np.array([draws.uniform(key, counter + i) < self.channel.success_probability("down", t, bits)
-                                   for i, t in enumerate(emits.tolist())], dtype=bool)  # fmt: skip
-            else:
-                p = self.channel.success_probabilities("down", emits, bits)
-                intact = draws.uniforms(self._probe_key, self._probe_counter(k0), count) < p
-            if not (self.terminal.listening and not self.terminal.closed):
-                got = np.zeros(count, dtype=bool)
-            elif self.half_duplex:
-                got = intact & ~(self.terminal.busy_until > emits)
-            else:
-                got = intact
-            n_heard = int(np.count_nonzero(got))
-            self.counters.probes_emitted_in_openings += count
-            self.counters.probes_reckoned += count
-            self.counters.probes_delivered += n_heard
-            self.counters.probes_unheard += int(np.count_nonzero(intact)) - n_heard
-            heard.extend(emits[got].tolist())
+            pending.append(port.probe_epoch + np.arange(k0, k0 + count) * port.probe_interval)
             port.probe_count = k0 + count
         if heard:
             origin = self.origin
@@ -324,6 +318,33 @@ class Air:
                 return _db(self.channel.frame_carrier("down", heard[i], bits))
 
             self.idle_terminal.heard_unchanged(frame, [origin + t + airtime for t in heard], snr_db)
+
+    def _reckon_some(self, emits: np.ndarray, k_first: int, bits: int) -> list[float]:
+        """Reckon probes emitted at ``emits`` (probe numbers from ``k_first`` on,
+        in order, gaps between openings allowed); the emission times of those heard."""
+        port = self.master
+        ks = np.rint((emits - port.probe_epoch) / port.probe_interval).astype(np.int64)  # each probe's own number
+        count = len(emits)
+        if count <= SCALAR_BATCH:  # numpy's per-call cost outweighs a few scalar lookups
+            key = self._probe_key
+            intact = np.array([draws.uniform(key, self._probe_counter(int(k))) < self.channel.success_probability("down", t, bits)
+                               for k, t in zip(ks.tolist(), emits.tolist(), strict=True)], dtype=bool)  # fmt: skip
+        else:
+            p = self.channel.success_probabilities("down", emits, bits)
+            u = draws.uniforms_at(self._probe_key, self._probe_counter(0) + ks)
+            intact = u < p
+        if not (self.terminal.listening and not self.terminal.closed):
+            got = np.zeros(count, dtype=bool)
+        elif self.half_duplex:
+            got = intact & ~(self.terminal.busy_until > emits)
+        else:
+            got = intact
+        n_heard = int(np.count_nonzero(got))
+        self.counters.probes_emitted_in_openings += count
+        self.counters.probes_reckoned += count
+        self.counters.probes_delivered += n_heard
+        self.counters.probes_unheard += int(np.count_nonzero(intact)) - n_heard
+        return emits[got].tolist()
 
 
 def _db(carrier: tuple[int, float] | None) -> float:

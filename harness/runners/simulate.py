@@ -21,7 +21,7 @@ from typing import IO, Any
 
 import numpy as np
 from ionotrail.harness.channel import oracle
-from ionotrail.harness.channel.model import Channel, Trails, TrailSet, last_live
+from ionotrail.harness.channel.model import CELL_S, Channel, Trails, TrailSet, last_live
 from ionotrail.harness.channel.scenario import Scenario
 from ionotrail.harness.demo.gauge import Backlog, DemoGauge
 from ionotrail.harness.emulators.air import Air
@@ -51,6 +51,9 @@ REPORT_KEYS = (
     *(f"frames.refused.{r.value}" for r in FRAME_REFUSALS),
 )  # fmt: skip
 PROGRESS_EVERY_S = 600.0  # simulated seconds between progress reports
+BOUND_WINDOW_S = CELL_S
+"""The bounds are planned six hours at a time: a summer window's openings and
+their bytes, some 700 of them, are all that is held at once."""
 SEGMENT_MARGIN_S = 3600.0
 """The oracle plans a window's openings on its trails and an hour either side (see :func:`period_figures`)."""
 
@@ -256,9 +259,10 @@ def period_figures(trail_set: TrailSet, *, until: float, limits: Limits = DEFAUL
     run on past midnight are seen whole.  ``progress(done_s, until)`` hears
     each window as it is done."""
     turnaround, silence, max_payload = limits.turnaround, limits.burst_silence, limits.max_fragment_payload
+    if trail_set.window_count > 1 and trail_set.window_s > BOUND_WINDOW_S:
+        trail_set = trail_set.with_window(BOUND_WINDOW_S)  # the same trails (cells are keyed), fewer at a time
     count, capacity, bound = 0, 0.0, 0.0
     reach = -math.inf  # the latest end of an uplink opening so far (the union runs across windows)
-    batch: list[oracle.OpeningPlan] = []
     last = trail_set.window_count - 1
     held: dict[int, Trails] = {}
     byte_s = 8.0 / trail_set.directions["up"].bit_rate
@@ -301,15 +305,11 @@ def period_figures(trail_set: TrailSet, *, until: float, limits: Limits = DEFAUL
                     continue
                 raise RuntimeError(f"an uplink opening runs on for more than a window from {plans[-1].start_s:.1f} s: its trails are not all held")
             break
-        for plan in plans:
-            batch.append(plan)
-            if len(batch) == oracle.ORACLE_BATCH:
-                bound += float(np.sum(oracle.plan_values(batch, max_payload=max_payload)))
-                batch = []
+        for first in range(0, len(plans), oracle.ORACLE_BATCH):
+            bound += float(np.sum(oracle.plan_values(plans[first : first + oracle.ORACLE_BATCH], max_payload=max_payload)))
+        del plans
         if progress is not None:
             progress(min(hi, until), until)
-    if batch:
-        bound += float(np.sum(oracle.plan_values(batch, max_payload=max_payload)))
     return PeriodFigures(count, capacity * trail_set.scenario.bit_rate, bound)
 
 
