@@ -614,14 +614,15 @@ def openings(channel: Channel, *, until: float, turnaround: float, burst_silence
 
 def iter_openings(channel: Channel, *, until: float, turnaround: float, burst_silence: float, step_bytes: int = STEP_BYTES,
                   max_payload: int = MAX_FRAGMENT_PAYLOAD, overhead: int = FRAGMENT_OVERHEAD_BYTES,
-                  p_min: float = P_MIN) -> Iterator[OpeningPlan]:  # fmt: skip
+                  p_min: float = P_MIN, since: float = -math.inf) -> Iterator[OpeningPlan]:  # fmt: skip
     """The uplink's openings before ``until`` as the oracle plans them, one at a time.
 
     An opening is a period in which the shortest fragment could arrive with
     probability above ``p_min`` (``Channel.audible_windows``), periods less
     than ``burst_silence`` apart joined (a burst can bridge them, so no new
     turnaround); the first frame goes ``turnaround`` after its start.  Each
-    opening's bytes are :func:`opening_log_ok`'s."""
+    opening's bytes are :func:`opening_log_ok`'s.  Openings that start before
+    ``since`` are passed over (their joining still seen) without being computed."""
     trails = channel.trails
     if trails is None or not len(trails):
         return
@@ -641,6 +642,8 @@ def iter_openings(channel: Channel, *, until: float, turnaround: float, burst_si
     longest_life = float(np.max(live_end - trails.t))  # no trail that began earlier than this is still live
     tail_bytes = (max_payload + overhead + 2 * step_bytes) + 1
     for a, b in joined:
+        if a < since:
+            continue
         first = a + turnaround
         end = min(b, until)
         steps = math.ceil((end - first) / (step_bytes * byte_s))

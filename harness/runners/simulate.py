@@ -294,12 +294,10 @@ def period_figures(trail_set: TrailSet, *, until: float, limits: Limits = DEFAUL
             horizon = hi + margin if margin < math.inf else trail_set.window_bounds(w + 1)[1] if w < last else math.inf
             plans = []
             for plan in oracle.iter_openings(Channel(trail_set.fixed(segment)), until=until, turnaround=turnaround,
-                                             burst_silence=silence, max_payload=max_payload):  # fmt: skip
-                start = plan.start_s - turnaround
-                if start >= hi:
+                                             burst_silence=silence, max_payload=max_payload, since=lo):  # fmt: skip
+                if plan.start_s - turnaround >= hi:
                     break
-                if start >= lo:
-                    plans.append(plan)
+                plans.append(plan)
             if plans and plans[-1].start_s + plans[-1].steps * oracle.STEP_BYTES * byte_s > horizon - silence:
                 if margin < math.inf:
                     continue
