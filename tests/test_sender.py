@@ -157,7 +157,8 @@ class Afresh(Sender):
     def presume_lost(self, sent_before: float) -> None:
         for message in list(self._queue.values()):
             if message.in_flight and message.in_flight[0][0] < sent_before:
-                self._settle(message, lambda piece: piece[0] < sent_before)
+                settled = [piece for piece in message.in_flight if piece[0] < sent_before]
+                self._settle(message, settled, [piece for piece in message.in_flight if piece[0] >= sent_before])
 
     @property
     def awaiting(self) -> bool:

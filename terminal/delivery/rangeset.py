@@ -58,6 +58,14 @@ class RangeSet:
     def add(self, start: int, end: int) -> None:
         if start >= end:
             return
+        starts, ends = self._starts, self._ends
+        if not ends or start > ends[-1]:  # beyond every range: a new last one
+            starts.append(start)
+            ends.append(end)
+            return
+        if start >= starts[-1]:  # overlaps or touches the last range only (the others end before it starts)
+            ends[-1] = max(ends[-1], end)
+            return
         lo, hi = self._span(start, end)
         if lo < hi:
             start = min(start, self._starts[lo])

@@ -26,7 +26,7 @@ import bisect
 import collections
 import dataclasses
 import enum
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 
 from ionotrail.terminal.delivery.rangeset import ByteRange, RangeSet
 from ionotrail.terminal.errors import UsageError
@@ -84,10 +84,17 @@ class _Outgoing:
     # acknowledgement forgot it may overlap an older one; that costs airtime only).
     in_flight: list[tuple[float, int, int]] = dataclasses.field(default_factory=list)
     last_ack: AckBlock | None = None  # the block last applied (probes repeat it)
+    # Fixed at creation, as seq, priority and created are.
+    wire_id: int = dataclasses.field(init=False)  # the low 16 bits of seq
+    order: tuple[Priority, float, int] = dataclasses.field(init=False)  # most important first
 
-    @property
-    def wire_id(self) -> int:
-        return self.seq & ((1 << MESSAGE_ID_BITS) - 1)
+    def __post_init__(self) -> None:
+        self.wire_id = self.seq & ((1 << MESSAGE_ID_BITS) - 1)
+        self.order = (self.priority, self.created, self.seq)
+
+
+def _order(message: _Outgoing) -> tuple[Priority, float, int]:
+    return message.order
 
 
 @dataclasses.dataclass(slots=True)
@@ -198,7 +205,7 @@ class Sender:
                 oldest = next(iter(self._queue))
                 span = self.limits.duplicate_window
                 ready = [m for m in self._queue.values() if m.seq - oldest < span]
-                ready.sort(key=lambda m: (m.priority, m.created, m.seq))
+                ready.sort(key=_order)
             self._eligible_now = ready[: self.limits.max_partials_per_source]
         return self._eligible_now
 
@@ -345,16 +352,17 @@ class Sender:
         # the queue holds them, so the outcomes keep their order.
         for seq in sorted(self._flying):
             message = self._flying[seq]
-            if message.in_flight[0][0] < sent_before:
-                self._settle(message, lambda piece: piece[0] < sent_before)
+            in_flight = message.in_flight
+            if in_flight[0][0] < sent_before:
+                # In airtime order, the pieces that ended before sent_before come first:
+                # (air_end, start, end) < (sent_before,) exactly when air_end < sent_before.
+                due = bisect.bisect_left(in_flight, (sent_before,))
+                self._settle(message, in_flight[:due], in_flight[due:])
 
-    def _settle(self, message: _Outgoing, due: Callable[[tuple[float, int, int]], bool]) -> None:
-        """Settle the in-flight pieces ``due`` says are known: held ones are
-        confirmed, the rest lost (their bytes become unsent again)."""
-        settled: list[tuple[float, int, int]] = []
-        kept: list[tuple[float, int, int]] = []
-        for piece in message.in_flight:
-            (settled if due(piece) else kept).append(piece)
+    def _settle(self, message: _Outgoing, settled: list[tuple[float, int, int]], kept: list[tuple[float, int, int]]) -> None:
+        """Settle the in-flight pieces ``settled``, whose fate is known, keeping
+        ``kept`` (the rest, in order) in flight: held ones are confirmed, the
+        others lost (their bytes become unsent again)."""
         message.in_flight = kept
         if not kept:
             self._flying.pop(message.seq, None)
@@ -363,11 +371,13 @@ class Sender:
     def _settle_pieces(self, message: _Outgoing, pieces: list[tuple[float, int, int]]) -> None:
         """Confirm or declare lost ``pieces``, already removed from ``in_flight``."""
         self._changed()
+        acked = message.acked
         for _, start, end in pieces:
             lost = 0
-            for gap_start, gap_end in message.acked.gaps(start, end):  # not held: lost
-                message.sent.discard(gap_start, gap_end)
-                lost += gap_end - gap_start
+            if not acked.contains(start, end):
+                for gap_start, gap_end in acked.gaps(start, end):  # not held: lost
+                    message.sent.discard(gap_start, gap_end)
+                    lost += gap_end - gap_start
             self.counters.presumed_lost_bytes += lost
             self.outcomes.append((end - start + FRAGMENT_OVERHEAD, lost > 0))
 
@@ -416,8 +426,17 @@ class Sender:
             message.last_ack = block
         elif not message.in_flight or (issued is not None and message.in_flight[0][0] > issued):
             return []  # a repeat, and nothing it could settle
+        # Known now: pieces the acknowledgement shows held, and pieces whose airtime
+        # ended by the time it was issued (held or not, it has said).
         acked = message.acked
-        self._settle(message, lambda piece: acked.contains(piece[1], piece[2]) or (issued is not None and piece[0] <= issued))
+        settled: list[tuple[float, int, int]] = []
+        kept: list[tuple[float, int, int]] = []
+        for piece in message.in_flight:
+            if (issued is not None and piece[0] <= issued) or acked.contains(piece[1], piece[2]):
+                settled.append(piece)
+            else:
+                kept.append(piece)
+        self._settle(message, settled, kept)
         return []
 
     def _find(self, wire_id: int) -> _Outgoing | None:
