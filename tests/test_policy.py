@@ -6,14 +6,18 @@ import math
 import random
 
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 from ionotrail.harness.channel import physics
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.link.policy import (
     MAX_FRAGMENT_PAYLOAD,
     OVERHEAD_BITS,
+    RECENT_SAMPLES,
     Adaptive,
     Fixed,
     StopAndWait,
+    _fit,
     by_name,
     expected_payload_bits,
     optimal_payload_bits,
@@ -107,3 +111,23 @@ def test_policies_by_name() -> None:
     for bad in ("fixed-2", "fixed-999", "fixed-", "greedy", "FIXED-64"):
         with pytest.raises(UsageError):
             by_name(bad, 4800)
+
+
+@pytest.mark.property
+@given(st.lists(st.tuples(st.sampled_from(["probe", "probe", "probe", "burst", "ask"]), st.floats(0.0, 0.2), st.floats(-5.0, 30.0)), max_size=40))
+def test_the_decay_estimate_is_the_lesser_of_the_long_and_short_fits(steps: list[tuple[str, float, float]]) -> None:
+    """Whatever probes and bursts came, the tau the policy sizes for is the
+    lesser of the fit over every kept sample and the fit over the last
+    RECENT_SAMPLES (either alone when the other has no answer), or the running
+    mean without a fit: computed here the long way, both fits always made."""
+    policy = Adaptive(4800.0)
+    now = 0.0
+    for kind, wait, snr_db in steps:
+        now += wait
+        if kind == "probe":
+            policy.probe_heard(now, snr_db)
+        elif kind == "burst":
+            policy.burst_started(now)
+        samples = list(policy._samples)
+        fits = [f for f in (_fit(samples), _fit(samples[-RECENT_SAMPLES:])) if f is not None]
+        assert policy.tau_estimate_s == (min(fits) if fits else policy.typical_tau_s)

@@ -183,9 +183,14 @@ class Adaptive:
 
     def _refit(self) -> None:
         if not self._fitted:
-            long, short = _fit(self._samples), _fit(self._samples[-RECENT_SAMPLES:])
-            fits = [f for f in (long, short) if f is not None]
-            self._tau_s = min(fits) if fits else None
+            samples = self._samples
+            long = _fit(samples)
+            # With no more samples than the short fit takes, the two fits are one.
+            short = long if len(samples) <= RECENT_SAMPLES else _fit(samples[-RECENT_SAMPLES:])
+            if long is None or short is None:
+                self._tau_s = short if long is None else long
+            else:
+                self._tau_s = min(long, short)
             self._fitted = True
 
     @property
