@@ -129,14 +129,15 @@ class TerminalService:
 
     def _carry_out(self, effects: list[Effect]) -> None:
         assert self._loop is not None
-        now = self._loop.time()
-        for effect in effects:
-            if isinstance(effect, Transmit):
-                self.port.send(effect.frame)
-            elif isinstance(effect, CommandArrived):
-                status, result = self.source.command(effect.opcode, effect.arguments)
-                self.link.reply(effect.command_id, status, result)
-            self._tell(now, effect)
+        if effects:  # most probes give none
+            now = self._loop.time()
+            for effect in effects:
+                if isinstance(effect, Transmit):
+                    self.port.send(effect.frame)
+                elif isinstance(effect, CommandArrived):
+                    status, result = self.source.command(effect.opcode, effect.arguments)
+                    self.link.reply(effect.command_id, status, result)
+                self._tell(now, effect)
         self._arm_link()
 
     def _tell(self, now: float, event: ServiceEvent) -> None:
@@ -145,9 +146,10 @@ class TerminalService:
 
     def _arm_link(self) -> None:
         assert self._loop is not None
-        deadline = self.link.deadline
-        if deadline is None:
+        timer = self.link.timer  # its deadline (Link.deadline), read once per frame or timer
+        if timer is None:
             return  # an armed timer stays; it will find nothing due
+        deadline = timer.at
         if self._link_timer is not None:
             if self._link_timer.when() <= deadline:
                 return
