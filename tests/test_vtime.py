@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import asyncio
+import heapq
 import math
+import random
 from collections.abc import Callable, Coroutine
 from fractions import Fraction
 from typing import Any, TypeVar
@@ -271,3 +273,105 @@ async def _report_without_exception() -> int:
     loop.call_exception_handler({"message": "a report that carries no exception"})
     await asyncio.sleep(1.0)
     return 42
+
+
+# --- the loop's turn on a heap of entries against asyncio's own turn --------------------
+
+
+class _SelfComparingTimer(asyncio.TimerHandle):
+    """A timer ordered by (when, sequence), as the loop's timers once were."""
+
+    __slots__ = ("_order",)
+
+    def __init__(self, sequence: int, when: float, callback: Callable[..., object], args: tuple[Any, ...], loop: asyncio.AbstractEventLoop, context: Any) -> None:
+        super().__init__(when, callback, args, loop, context)
+        self._order = (when, sequence)
+
+    def __lt__(self, other: object) -> bool:
+        assert isinstance(other, _SelfComparingTimer)
+        return self._order < other._order
+
+
+class AsyncioTurnLoop(VirtualTimeLoop):
+    """The reference: timers in asyncio's heap comparing themselves, and
+    asyncio's own ``_run_once`` taking them off it."""
+
+    def call_at(self, when: float, callback: Callable[..., object], *args: Any, context: Any = None) -> asyncio.TimerHandle:  # type: ignore[override]
+        timer = _SelfComparingTimer(next(self._sequence), when, callback, args, self, context)
+        heapq.heappush(self._scheduled, timer)  # type: ignore[attr-defined]
+        timer._scheduled = True  # type: ignore[attr-defined]
+        return timer
+
+    _run_once = asyncio.BaseEventLoop._run_once  # type: ignore[attr-defined]
+
+    def advance_if_idle(self, when: float) -> bool:
+        if self._ready or when < self._virtual_now:  # type: ignore[attr-defined]
+            return False
+        if self._scheduled and self._scheduled[0]._when <= when:  # type: ignore[attr-defined]
+            return False
+        self._virtual_now = when
+        self.wakeups += 1
+        return True
+
+    def quiet_until(self) -> float:
+        if self._ready:  # type: ignore[attr-defined]
+            return -math.inf
+        return float(self._scheduled[0]._when) if self._scheduled else math.inf  # type: ignore[attr-defined]
+
+
+def _random_program(loop_class: type[VirtualTimeLoop], seed: int, start: float) -> list[tuple[object, ...]]:
+    """Timers with many ties, cancelled ones (sometimes most of a large heap),
+    call_soon, sleeps, advance_if_idle and quiet_until, all chosen by ``seed``
+    as callbacks run: what ran, when, and what the loop answered."""
+    rng = random.Random(seed)
+    trace: list[tuple[object, ...]] = []
+    delays = [0.0, 0.0, 0.05, 0.1, 0.1, 0.25, 1.0]
+
+    async def main() -> None:
+        loop = asyncio.get_running_loop()
+        assert isinstance(loop, VirtualTimeLoop)
+        handles: list[asyncio.Handle] = []
+        budget = [400]
+
+        def fire(tag: int) -> None:
+            trace.append(("ran", tag, loop.time(), loop.quiet_until()))
+            for _ in range(rng.choice([0, 1, 1, 2, 3])):
+                budget[0] -= 1
+                if budget[0] <= 0:
+                    return
+                roll = rng.random()
+                new = rng.randrange(1 << 30)
+                if roll < 0.6:
+                    handles.append(loop.call_at(loop.time() + rng.choice(delays), fire, new))
+                elif roll < 0.7:
+                    handles.append(loop.call_soon(fire, new))
+                elif roll < 0.85 and handles:
+                    rng.choice(handles).cancel()
+                elif roll < 0.95:
+                    trace.append(("advance", loop.advance_if_idle(loop.time() + rng.choice(delays)), loop.time()))
+                else:  # a burst of timers, most of them cancelled at once (asyncio then sweeps its heap)
+                    burst = [loop.call_at(loop.time() + 5.0 + rng.choice(delays), fire, new + k) for k in range(120)]
+                    for handle in burst[: rng.randrange(60, 120)]:
+                        handle.cancel()
+                    handles.extend(burst)
+
+        for tag in range(20):
+            handles.append(loop.call_at(start + rng.choice(delays), fire, tag))
+        for _ in range(6):
+            await asyncio.sleep(rng.choice(delays))
+            trace.append(("slept", loop.time()))
+        await asyncio.sleep(30.0)
+        trace.append(("end", loop.time(), loop.wakeups))
+
+    with asyncio.Runner(loop_factory=lambda: loop_class(start)) as runner:
+        runner.run(main())
+    return trace
+
+
+@pytest.mark.parametrize("start", [0.0, 2.0**31 - 0.15])
+@pytest.mark.parametrize("seed", range(40))
+def test_the_loop_turns_as_asyncio_own_turn_does(seed: int, start: float) -> None:
+    """Same callbacks in the same order at the same times, same answers from
+    advance_if_idle and quiet_until, same clock jumps: the loop's turn on a heap
+    of (when, sequence, timer) entries is asyncio's turn on self-comparing timers."""
+    assert _random_program(VirtualTimeLoop, seed, start) == _random_program(AsyncioTurnLoop, seed, start)

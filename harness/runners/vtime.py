@@ -9,7 +9,9 @@ of times faster here.  Two guarantees a simulation needs and asyncio does not
 give:
 
 * timers due at the same instant run in the order they were scheduled (a
-  sequence number breaks the tie), so a run replays exactly;
+  sequence number breaks the tie), so a run replays exactly: the loop keeps
+  its timers as ``(when, sequence, timer)`` entries, a heap that compares in
+  C, and takes one turn as asyncio's ``_run_once`` does, on those entries;
 * a loop with nothing scheduled and nothing that could wake it raises
   :class:`VirtualTimeDeadlock` instead of hanging;
 * the clock keeps running however far it gets (tested to 3.2e9 s, a century):
@@ -32,14 +34,22 @@ the run instead, with :class:`CallbackError`.
 from __future__ import annotations
 
 import asyncio
+import collections
 import heapq
 import itertools
 import math
 import selectors
+from asyncio import base_events
+from asyncio.log import logger
 from collections.abc import Awaitable, Callable
 from contextvars import Context
 from typing import Any, TypeVar
 
+# What asyncio's turn of the loop uses, as base_events defines it (typeshed does not declare them).
+_MAXIMUM_SELECT_TIMEOUT: float = base_events.MAXIMUM_SELECT_TIMEOUT  # type: ignore[attr-defined]
+_MIN_SCHEDULED_TIMER_HANDLES: int = base_events._MIN_SCHEDULED_TIMER_HANDLES  # type: ignore[attr-defined]
+_MIN_CANCELLED_TIMER_HANDLES_FRACTION: float = base_events._MIN_CANCELLED_TIMER_HANDLES_FRACTION  # type: ignore[attr-defined]
+_format_handle: Callable[[asyncio.Handle], str] = base_events._format_handle  # type: ignore[attr-defined]
 POLL_EVERY = 16
 MIN_CLOCK_RESOLUTION = 1e-9
 """The loop's clock resolution near zero (asyncio's on Linux); above 2^23 s it is the clock's ulp."""
@@ -96,39 +106,6 @@ async def raise_callback_errors(awaitable: Awaitable[T]) -> T:
     return task.result()
 
 
-class _OrderedTimer(asyncio.TimerHandle):
-    """A timer ordered by (when, sequence) so equal deadlines keep scheduling order.
-
-    The pair is built once, here: the heap compares timers several times per
-    push and pop, and asyncio never moves a timer's ``_when``."""
-
-    __slots__ = ("_order",)
-
-    def __init__(self, sequence: int, when: float, callback: Callable[..., object], args: tuple[Any, ...], loop: asyncio.AbstractEventLoop, context: Context | None) -> None:
-        super().__init__(when, callback, args, loop, context)
-        self._order = (when, sequence)
-
-    def __lt__(self, other: object) -> bool:
-        if isinstance(other, _OrderedTimer):
-            return self._order < other._order
-        return NotImplemented
-
-    def __le__(self, other: object) -> bool:
-        if isinstance(other, _OrderedTimer):
-            return self._order <= other._order
-        return NotImplemented
-
-    def __gt__(self, other: object) -> bool:
-        if isinstance(other, _OrderedTimer):
-            return self._order > other._order
-        return NotImplemented
-
-    def __ge__(self, other: object) -> bool:
-        if isinstance(other, _OrderedTimer):
-            return self._order >= other._order
-        return NotImplemented
-
-
 class _JumpingSelector(selectors.DefaultSelector):
     """Polls without waiting; where the loop would wait, moves the clock instead."""
 
@@ -162,6 +139,14 @@ class _JumpingSelector(selectors.DefaultSelector):
 class VirtualTimeLoop(asyncio.SelectorEventLoop):
     """A selector event loop on a virtual clock starting at ``start`` seconds."""
 
+    # The state of asyncio's BaseEventLoop that this loop works on (private there, so undeclared).
+    _scheduled: list[tuple[float, int, asyncio.TimerHandle]]  # a heap of (when, sequence, timer)
+    _ready: collections.deque[asyncio.Handle]
+    _stopping: bool
+    _timer_cancelled_count: int
+    _debug: bool
+    _current_handle: asyncio.Handle | None
+
     def __init__(self, start: float = 0.0) -> None:
         selector = _JumpingSelector()
         super().__init__(selector)
@@ -176,7 +161,7 @@ class VirtualTimeLoop(asyncio.SelectorEventLoop):
 
     @property
     def _clock_resolution(self) -> float:
-        """How far ahead of the clock a timer counts as due (read by asyncio's ``_run_once``).
+        """How far ahead of the clock a timer counts as due (read by :meth:`_run_once`).
 
         ``when < now + resolution`` must hold for ``when == now`` at any
         magnitude: one ulp of the clock makes ``now + resolution`` the next
@@ -206,10 +191,10 @@ class VirtualTimeLoop(asyncio.SelectorEventLoop):
         outcome is exactly what the timer would have given, at a fraction of
         the cost.  False (and the clock untouched) otherwise: schedule as usual.
         """
-        if self._ready or when < self._virtual_now:  # type: ignore[attr-defined]
+        if self._ready or when < self._virtual_now:
             return False
-        scheduled = self._scheduled  # type: ignore[attr-defined]
-        if scheduled and scheduled[0]._when <= when:
+        scheduled = self._scheduled
+        if scheduled and scheduled[0][0] <= when:
             return False
         self._virtual_now = when
         self.wakeups += 1
@@ -219,10 +204,10 @@ class VirtualTimeLoop(asyncio.SelectorEventLoop):
         """Loop time of the next thing that could run: -inf when a callback is
         ready, else the earliest timer (a cancelled one included: the answer
         may be early, never late), or inf.  Nothing but the caller runs before it."""
-        if self._ready:  # type: ignore[attr-defined]
+        if self._ready:
             return -math.inf
-        scheduled = self._scheduled  # type: ignore[attr-defined]
-        return float(scheduled[0]._when) if scheduled else math.inf
+        scheduled = self._scheduled
+        return float(scheduled[0][0]) if scheduled else math.inf
 
     def call_at(  # type: ignore[override]
         self, when: float, callback: Callable[..., object], *args: Any, context: Context | None = None
@@ -230,9 +215,66 @@ class VirtualTimeLoop(asyncio.SelectorEventLoop):
         if when is None:
             raise TypeError("when cannot be None")
         self._check_closed()  # type: ignore[attr-defined]
-        timer = _OrderedTimer(next(self._sequence), when, callback, args, self, context)
+        timer = asyncio.TimerHandle(when, callback, args, self, context)
         if timer._source_traceback:  # type: ignore[attr-defined]
             del timer._source_traceback[-1]  # type: ignore[attr-defined]
-        heapq.heappush(self._scheduled, timer)  # type: ignore[attr-defined]
+        heapq.heappush(self._scheduled, (when, next(self._sequence), timer))
         timer._scheduled = True  # type: ignore[attr-defined]
         return timer
+
+    def _run_once(self) -> None:
+        """One turn of the loop: asyncio's own (``BaseEventLoop._run_once`` of
+        Python 3.11, which 3.12 and 3.13 keep but for how they clamp the
+        timeout), on a heap of ``(when, sequence, timer)`` entries rather than
+        of timers: the heap compares in C (a timer comparing itself was a
+        Python call, several per timer), and a tie on ``when`` goes to the
+        timer scheduled first.  tests/test_vtime.py runs random programs on
+        both and expects the same trace."""
+        scheduled = self._scheduled
+        count = len(scheduled)
+        if count > _MIN_SCHEDULED_TIMER_HANDLES and self._timer_cancelled_count / count > _MIN_CANCELLED_TIMER_HANDLES_FRACTION:
+            kept = []  # mostly cancelled timers: sweep them all out
+            for entry in scheduled:
+                if entry[2]._cancelled:
+                    entry[2]._scheduled = False  # type: ignore[attr-defined]
+                else:
+                    kept.append(entry)
+            heapq.heapify(kept)
+            self._scheduled = scheduled = kept
+            self._timer_cancelled_count = 0
+        else:  # drop the cancelled timers at the head
+            while scheduled and scheduled[0][2]._cancelled:
+                self._timer_cancelled_count -= 1
+                heapq.heappop(scheduled)[2]._scheduled = False  # type: ignore[attr-defined]
+
+        timeout: float | None = None
+        ready = self._ready
+        if ready or self._stopping:
+            timeout = 0
+        elif scheduled:
+            timeout = min(max(0, scheduled[0][0] - self.time()), _MAXIMUM_SELECT_TIMEOUT)
+        self._process_events(self._selector.select(timeout))  # type: ignore[attr-defined]
+
+        end_time = self.time() + self._clock_resolution
+        while scheduled and scheduled[0][0] < end_time:  # due: to the ready queue, in order
+            timer = heapq.heappop(scheduled)[2]
+            timer._scheduled = False  # type: ignore[attr-defined]
+            ready.append(timer)
+
+        # Run what is ready now, not what those callbacks make ready (the next turn's).
+        for _ in range(len(ready)):
+            handle = ready.popleft()
+            if handle._cancelled:
+                continue
+            if self._debug:
+                try:
+                    self._current_handle = handle
+                    t0 = self.time()
+                    handle._run()
+                    dt = self.time() - t0
+                    if dt >= self.slow_callback_duration:
+                        logger.warning("Executing %s took %.3f seconds", _format_handle(handle), dt)
+                finally:
+                    self._current_handle = None
+            else:
+                handle._run()
