@@ -310,22 +310,10 @@ class Link:
     def _apply(self, event: Input, now: float, effects: list[Effect], snr_db: float = float("nan")) -> None:
         state, action = decide(self.state, event)
         self.state = state
-        limits = self.limits
-        if action is Action.STAY_IDLE:
-            self.timer = None
-        elif action is Action.START_BURST:
-            self.counters.bursts += 1
-            self._burst_frames = 0
-            self.sender.presume_lost(now)
-            self.sender.outcomes.clear()  # the last burst's tail died with its trail: the decay's loss, not the path's
-            self.policy.burst_started(now)
-            self.policy.probe_heard(now, snr_db)
-            effects.append(BurstStarted(now, snr_db))
-            self.timer = Timer(Purpose.TURNAROUND, now + limits.turnaround)
-        elif action is Action.ARM_TURNAROUND:
-            self.timer = Timer(Purpose.TURNAROUND, now + limits.turnaround)
-        elif action is Action.KEEP_TURNAROUND:
-            self.timer = self._running(Purpose.TURNAROUND)
+        # A burst in full flow is nearly all probes kept waiting for the frame on
+        # the air, and frames sent: those two actions are tried first.
+        if action is Action.KEEP_AIR_END:
+            self.timer = self._running(Purpose.AIR_END)
         elif action is Action.TRANSMIT:
             frame = self._prepare(now)
             if frame is None:
@@ -335,10 +323,23 @@ class Link:
             self._burst_frames += 1
             effects.append(Transmit(frame, air_end))
             self.timer = Timer(Purpose.AIR_END, air_end)
-        elif action is Action.KEEP_AIR_END:
-            self.timer = self._running(Purpose.AIR_END)
+        elif action is Action.STAY_IDLE:
+            self.timer = None
+        elif action is Action.START_BURST:
+            self.counters.bursts += 1
+            self._burst_frames = 0
+            self.sender.presume_lost(now)
+            self.sender.outcomes.clear()  # the last burst's tail died with its trail: the decay's loss, not the path's
+            self.policy.burst_started(now)
+            self.policy.probe_heard(now, snr_db)
+            effects.append(BurstStarted(now, snr_db))
+            self.timer = Timer(Purpose.TURNAROUND, now + self.limits.turnaround)
+        elif action is Action.ARM_TURNAROUND:
+            self.timer = Timer(Purpose.TURNAROUND, now + self.limits.turnaround)
+        elif action is Action.KEEP_TURNAROUND:
+            self.timer = self._running(Purpose.TURNAROUND)
         elif action is Action.WAIT:
-            self.timer = Timer(Purpose.SILENCE, self._silence_since() + limits.burst_silence)
+            self.timer = Timer(Purpose.SILENCE, self._silence_since() + self.limits.burst_silence)
         else:  # Action.END_BURST
             self.timer = None
             effects.append(BurstEnded(now, self._burst_frames))
