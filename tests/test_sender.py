@@ -165,6 +165,17 @@ class Afresh(Sender):
         return any(m.in_flight for m in self._queue.values())
 
 
+def _as_checked(fragments: Fragment | list[Fragment] | None) -> Fragment | list[Fragment] | None:
+    """The sender builds its fragments without the constructor's checks: each
+    must be what the checked constructor makes of the same fields, type for type."""
+    for fragment in fragments if isinstance(fragments, list) else [fragments]:
+        if fragment is not None:
+            checked = Fragment(*fragment)
+            assert type(fragment) is Fragment and fragment == checked
+            assert [type(field) for field in fragment] == [type(field) for field in checked]
+    return fragments
+
+
 def _selection(sender: Sender, take_most: int) -> tuple[int, int, int] | None:
     chosen = sender._choose(take_most)
     return None if chosen is None else (chosen[0].wire_id, chosen[1], chosen[2])
@@ -181,14 +192,18 @@ _steps = st.one_of(
 
 
 @pytest.mark.property
-@given(steps=st.lists(_steps, max_size=60), limits=st.sampled_from([Limits(), Limits(max_partials_per_source=2, max_unconfirmed_pieces=3, max_queued_messages=6, duplicate_window=3)]))
-def test_the_kept_selection_is_always_the_one_made_afresh(steps: list[tuple[Any, ...]], limits: Limits) -> None:
+@given(
+    steps=st.lists(_steps, min_size=10, max_size=80),
+    limits=st.sampled_from([Limits(), Limits(max_partials_per_source=2, max_unconfirmed_pieces=3, max_queued_messages=6, duplicate_window=3, max_fragment_payload=40)]),
+    downlink=st.booleans(),
+)
+def test_the_kept_selection_is_always_the_one_made_afresh(steps: list[tuple[Any, ...]], limits: Limits, downlink: bool) -> None:
     """Whatever the sender went through (queueing, fragments, fills, every kind of
     acknowledgement, presumed losses), the selection it kept is the one made
     afresh, at every step and for every length asked; the two senders give the
     same fragments, events and state throughout; and the messages it counts as
     having pieces in flight are exactly those that have some."""
-    kept, afresh = Sender(TERMINAL, MASTER, limits=limits), Afresh(TERMINAL, MASTER, limits=limits)
+    kept, afresh = Sender(TERMINAL, MASTER, limits=limits, downlink=downlink), Afresh(TERMINAL, MASTER, limits=limits, downlink=downlink)
     now = 0.0
     for step in steps:
         now += 0.25
@@ -200,20 +215,20 @@ def test_the_kept_selection_is_always_the_one_made_afresh(steps: list[tuple[Any,
                 assert kept.queue(bytes([size % 251]) * size, now, priority) == afresh.queue(bytes([size % 251]) * size, now, priority)
         elif kind == "next":
             _, most, per_byte = step
-            assert kept.next_fragment(most, now, per_byte) == afresh.next_fragment(most, now, per_byte)
+            assert _as_checked(kept.next_fragment(most, now, per_byte)) == afresh.next_fragment(most, now, per_byte)
         elif kind == "ack":
             _, which, spans, verdict, issued_offset = step
             ids = [wire_id for wire_id, *_ in kept.outstanding()]
             message_id = ids[which % len(ids)] if ids and verdict != "stray" else (kept.next_id + 1) & 0xFFFF
             held = RangeSet((start, start + length) for start, length in spans).ranges()[:15]
-            block = AckBlock(TERMINAL, message_id, held if verdict in ("held", "stray") else (), verdict == "complete", refused=verdict == "refused")
+            block = AckBlock(TERMINAL, message_id, held if verdict in ("held", "stray") else (), verdict == "complete", downlink, verdict == "refused")
             issued = None if issued_offset is None else now + issued_offset
             assert kept.on_ack(block, now, issued=issued) == afresh.on_ack(block, now, issued=issued)
         elif kind == "presume":
             kept.presume_lost(now + step[1])
             afresh.presume_lost(now + step[1])
         else:
-            assert kept.fill(step[1], now) == afresh.fill(step[1], now)
+            assert _as_checked(kept.fill(step[1], now)) == afresh.fill(step[1], now)
         for take_most in (1, 7, 64, 256):
             assert _selection(kept, take_most) == _selection(afresh, take_most)
         assert kept.can_send() == afresh.can_send()

@@ -41,6 +41,7 @@ from ionotrail.terminal.wire.codec import seal_message
 from ionotrail.terminal.wire.frames import AckBlock, Fragment
 
 FRAGMENT_OVERHEAD = FRAGMENT_OVERHEAD_BYTES
+_checked_already = tuple.__new__  # a frame from values known to keep its rules (as wire/fastpath.py decodes)
 
 
 class Priority(enum.IntEnum):
@@ -125,6 +126,7 @@ class Sender:
         # Validate the addresses once, through the frame constructor.
         Fragment(terminal, master, 0, 0, b"\x00", downlink=downlink)
         self.terminal, self.master, self.downlink = terminal, master, downlink
+        self._downlink = bool(downlink)  # as the constructor stores it
         self.limits = limits
         self.counters = SenderCounters()
         self._next_seq = first_id
@@ -242,15 +244,23 @@ class Sender:
         self._changed()
         self.counters.payload_bytes += take
         self.counters.air_bytes += take + FRAGMENT_OVERHEAD
-        return Fragment(
-            self.terminal,
-            self.master,
-            message.wire_id,
-            start,
-            message.sealed[start : start + take],
-            final=start + take == len(message.sealed),
-            urgent=message.priority is Priority.ALARM,
-            downlink=self.downlink,
+        # Built without Fragment's checks, which every value here keeps: the addresses
+        # passed them in __init__, the id is 16 bits, and 1 to max_fragment_payload bytes
+        # (at most MAX_FRAGMENT_PAYLOAD) lie inside a sealed message of at most
+        # max_sealed_message bytes (at most MAX_MESSAGE_STREAM): Limits checks both bounds.
+        # tests/test_sender.py compares every fragment with the checked constructor's.
+        return _checked_already(
+            Fragment,
+            (
+                self.terminal,
+                self.master,
+                message.wire_id,
+                start,
+                message.sealed[start : start + take],
+                start + take == len(message.sealed),  # final
+                message.priority is Priority.ALARM,  # urgent
+                self._downlink,
+            ),
         )
 
     # --- one fragment at a time, for a burst with acknowledgements flowing back ------
