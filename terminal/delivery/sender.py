@@ -430,9 +430,13 @@ class Sender:
             return [MessageRefused(message.wire_id, message.created, now)]
         if block != message.last_ack:
             size = len(message.sealed)
-            message.acked = RangeSet((s, min(e, size)) for s, e in block.ranges if s < size)
-            for start, end in message.acked:  # acknowledged bytes are no longer "sent, unconfirmed"
-                message.sent.discard(start, end)
+            acked, sent = RangeSet(), message.sent
+            for start, end in block.ranges:
+                if start < size:
+                    end = min(end, size)
+                    acked.add(start, end)
+                    sent.discard(start, end)  # acknowledged bytes are no longer "sent, unconfirmed"
+            message.acked = acked
             message.last_ack = block
         elif not message.in_flight or (issued is not None and message.in_flight[0][0] > issued):
             return []  # a repeat, and nothing it could settle
