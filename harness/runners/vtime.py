@@ -253,7 +253,9 @@ class VirtualTimeLoop(asyncio.SelectorEventLoop):
             timeout = 0
         elif scheduled:
             timeout = min(max(0, scheduled[0][0] - self.time()), _MAXIMUM_SELECT_TIMEOUT)
-        self._process_events(self._selector.select(timeout))  # type: ignore[attr-defined]
+        event_list = self._selector.select(timeout)  # moves the clock when nothing is ready
+        if event_list:  # only ever the wake-up pipe
+            self._process_events(event_list)  # type: ignore[attr-defined]
 
         end_time = self.time() + self._clock_resolution
         while scheduled and scheduled[0][0] < end_time:  # due: to the ready queue, in order
