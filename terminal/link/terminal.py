@@ -63,6 +63,13 @@ class Duplex(enum.Enum):
     """One radio that either sends or hears."""
 
 
+# The enum members read on every probe and timer, kept as module globals: on Python
+# 3.11 reading a member off its class costs ~70 ns (EnumType's __getattr__ takes the
+# class off the fast attribute path), several times the comparison it is read for.
+_LISTENING, _HALF, _AIR_END = State.LISTENING, Duplex.HALF, Purpose.AIR_END
+_KEEP_AIR_END, _TRANSMIT = Action.KEEP_AIR_END, Action.TRANSMIT
+
+
 class Arrival(NamedTuple):
     """A frame the modem received, with what it measured."""
 
@@ -194,7 +201,7 @@ class Link:
             self._take_command(block.command_id, block.opcode, block.arguments, effects)
         self._last_probe = arrival.time
         self._last_probe_ours = ours
-        if self.state is not State.LISTENING:  # in a burst (a new one starts in START_BURST)
+        if self.state is not _LISTENING:  # in a burst (a new one starts in START_BURST)
             # A piece unconfirmed for a whole silence interval of live probes is lost
             # (acknowledgements ride on every probe); this is what times out a
             # stop-and-wait fragment whose loss no acknowledgement shows.
@@ -216,7 +223,7 @@ class Link:
             timer.purpose,
             silent=now >= self._silence_since() + self.limits.burst_silence,
             ours=self._last_probe_ours,
-            hold=self.duplex is Duplex.HALF or self.policy.waits_for_ack,
+            hold=self.duplex is _HALF or self.policy.waits_for_ack,
             ready=self._ready(),
         )
         self._apply(event, now, effects)
@@ -312,9 +319,9 @@ class Link:
         self.state = state
         # A burst in full flow is nearly all probes kept waiting for the frame on
         # the air, and frames sent: those two actions are tried first.
-        if action is Action.KEEP_AIR_END:
-            self.timer = self._running(Purpose.AIR_END)
-        elif action is Action.TRANSMIT:
+        if action is _KEEP_AIR_END:
+            self.timer = self._running(_AIR_END)
+        elif action is _TRANSMIT:
             frame = self._prepare(now)
             if frame is None:
                 raise ProtocolError(f"the link's table transmits on {event.name}, an input with no frame ready")
@@ -322,7 +329,7 @@ class Link:
             self.counters.bytes_sent += len(frame)
             self._burst_frames += 1
             effects.append(Transmit(frame, air_end))
-            self.timer = Timer(Purpose.AIR_END, air_end)
+            self.timer = Timer(_AIR_END, air_end)
         elif action is Action.STAY_IDLE:
             self.timer = None
         elif action is Action.START_BURST:
@@ -353,7 +360,7 @@ class Link:
     def _silence_since(self) -> float:
         """Since when the terminal has heard no probe: the last probe, or in half
         duplex the end of its own last frame, if later (it was deaf meanwhile)."""
-        if self.duplex is Duplex.HALF:
+        if self.duplex is _HALF:
             return max(self._last_probe, self._air_end)
         return self._last_probe
 
