@@ -70,6 +70,7 @@ class MessageRefused:
 
 
 SenderEvent = MessageAcknowledged | MessageRefused
+_ALARM = Priority.ALARM  # read per fragment; a member read off its class is ~70 ns on Python 3.11
 
 
 @dataclasses.dataclass(slots=True)
@@ -258,7 +259,7 @@ class Sender:
                 start,
                 message.sealed[start : start + take],
                 start + take == len(message.sealed),  # final
-                message.priority is Priority.ALARM,  # urgent
+                message.priority is _ALARM,  # urgent
                 self._downlink,
             ),
         )
