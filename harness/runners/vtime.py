@@ -169,7 +169,7 @@ class VirtualTimeLoop(asyncio.SelectorEventLoop):
         due, however large ``now`` is.  Below 2^23 s the 1e-9 s floor rules,
         as it always did.
         """
-        return max(MIN_CLOCK_RESOLUTION, math.ulp(self._virtual_now))
+        return max(MIN_CLOCK_RESOLUTION, math.ulp(self._virtual_now))  # also written out in _run_once
 
     @_clock_resolution.setter
     def _clock_resolution(self, host_resolution: float) -> None:
@@ -252,12 +252,13 @@ class VirtualTimeLoop(asyncio.SelectorEventLoop):
         if ready or self._stopping:
             timeout = 0
         elif scheduled:
-            timeout = min(max(0, scheduled[0][0] - self.time()), _MAXIMUM_SELECT_TIMEOUT)
-        event_list = self._selector.select(timeout)  # moves the clock when nothing is ready
+            timeout = min(max(0, scheduled[0][0] - self._virtual_now), _MAXIMUM_SELECT_TIMEOUT)
+        event_list = self._selector.select(timeout)  # type: ignore[attr-defined]  # moves the clock when nothing is ready
         if event_list:  # only ever the wake-up pipe
             self._process_events(event_list)  # type: ignore[attr-defined]
 
-        end_time = self.time() + self._clock_resolution
+        now = self._virtual_now
+        end_time = now + max(MIN_CLOCK_RESOLUTION, math.ulp(now))  # now + self._clock_resolution, read out
         while scheduled and scheduled[0][0] < end_time:  # due: to the ready queue, in order
             timer = heapq.heappop(scheduled)[2]
             timer._scheduled = False  # type: ignore[attr-defined]
