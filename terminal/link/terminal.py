@@ -66,7 +66,7 @@ class Duplex(enum.Enum):
 # The enum members read on every probe and timer, kept as module globals: on Python
 # 3.11 reading a member off its class costs ~70 ns (EnumType's __getattr__ takes the
 # class off the fast attribute path), several times the comparison it is read for.
-_LISTENING, _HALF, _AIR_END = State.LISTENING, Duplex.HALF, Purpose.AIR_END
+_LISTENING, _WAITING, _HALF, _AIR_END = State.LISTENING, State.WAITING, Duplex.HALF, Purpose.AIR_END
 _KEEP_AIR_END, _TRANSMIT = Action.KEEP_AIR_END, Action.TRANSMIT
 
 
@@ -247,13 +247,13 @@ class Link:
         A simulator may then hand such probes over in bulk (:meth:`heard_unchanged`)."""
         frame = self._last_frame
         return (
-            raw == self._last_raw
+            self.sender.pending == 0  # first: a busy terminal is never indifferent, and it is asked each probe
+            and raw == self._last_raw
             and isinstance(frame, Probe)
             and frame.master == self.master
             and not (frame.command is not None and frame.poll == self.terminal)
-            and (self.state is State.LISTENING or self.state is State.WAITING)
+            and (self.state is _LISTENING or self.state is _WAITING)
             and not self.commands.queued
-            and self.sender.pending == 0
             and not self.sender.outcomes
         )
 
