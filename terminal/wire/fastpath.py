@@ -306,13 +306,7 @@ def encode_ack(frame: Ack) -> bytes:
 
 def decode_ack(data: bytes) -> Ack:
     """Decode untrusted bytes whose first byte is :data:`ACK_HEAD`."""
-    size = len(data)
-    if size > MAX_FRAME_BYTES:
-        raise FrameTooLong(f"frame of {size} bytes exceeds the {MAX_FRAME_BYTES}-byte maximum")
-    if size < MIN_FRAME_BYTES:
-        raise TruncatedFrame(f"{size} bytes cannot hold a type byte and a CRC")
-    if crc16(data):
-        raise CrcMismatch("frame CRC-16 does not match: corrupted on the air or misframed")
+    size = check_envelope(data)
     end = size - FRAME_CRC_BYTES
     if end < _ACK_FRAME_FIXED_BYTES:
         raise _cut_short("ack", size)
@@ -357,13 +351,7 @@ def encode_probe(frame: Probe) -> bytes:
 
 def decode_probe(data: bytes) -> Probe:
     """Decode untrusted bytes whose first byte is :data:`PROBE_HEAD`."""
-    size = len(data)
-    if size > MAX_FRAME_BYTES:
-        raise FrameTooLong(f"frame of {size} bytes exceeds the {MAX_FRAME_BYTES}-byte maximum")
-    if size < MIN_FRAME_BYTES:
-        raise TruncatedFrame(f"{size} bytes cannot hold a type byte and a CRC")
-    if crc16(data):
-        raise CrcMismatch("frame CRC-16 does not match: corrupted on the air or misframed")
+    size = check_envelope(data)
     end = size - FRAME_CRC_BYTES
     if end < _PROBE_FIXED_BYTES:
         raise _cut_short("probe", size)
