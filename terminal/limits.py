@@ -166,6 +166,21 @@ CLOSE_TIMEOUT_S = 2.0
 """How long the serial port's close waits for the port's executor close."""
 
 
+# --- power (terminal/power) ---------------------------------------------------
+
+DUTY_INTERVALS_MAX = 32
+"""Keyed intervals a duty-cycle ledger holds (16 bytes each); past this the
+oldest two merge, which overstates airtime and so keeps the limit safe."""
+
+RATE_BINS = 24
+"""Usable-burst rate bins: one per hour of local solar time (meteor rates
+follow the Earth's rotation into the meteoroid stream)."""
+
+RATE_MEMORY_S = 10 * 3600.0
+"""Listening seconds a rate bin remembers: past this its counts are scaled
+down together, so the rate follows the season (ten hours of listening per
+hour of the day, a few weeks at a modest duty cycle)."""
+
 # --- link limits (per deployment, overridable) --------------------------------
 
 

@@ -8,6 +8,15 @@ link's deadline, and moves messages from the application's
 event loop's clock, so the same code runs in real time on a modem and
 thousands of times faster on a virtual-time loop.
 
+With a :class:`~ionotrail.terminal.power.scheduler.PowerScheduler` the
+service also switches the receiver: it asks for a plan at the start, when
+the plan's time comes, when messages are queued and when a burst ends;
+turns the receiver on or off as the plan says (never in the middle of a
+burst: off waits for the burst's end); and holds routine traffic in the
+sender while the plan defers it.  The state of charge comes from a *gauge*
+the caller supplies (a fuel gauge on a real terminal, the energy model in a
+simulation).  Without a scheduler the receiver is always on.
+
 The timer is re-armed lazily: when the link's deadline moves later (every
 probe pushes the silence deadline), the armed timer is left alone, fires
 early, finds nothing due and is armed again.  That keeps the loop to about
@@ -22,8 +31,11 @@ from collections.abc import Callable
 from typing import Protocol
 
 from ionotrail.terminal.delivery.sender import Priority
-from ionotrail.terminal.link.terminal import Arrival, CommandArrived, Effect, Link, Transmit
+from ionotrail.terminal.errors import UsageError
+from ionotrail.terminal.link.table import State
+from ionotrail.terminal.link.terminal import Arrival, BurstEnded, CommandArrived, Effect, Link, Transmit
 from ionotrail.terminal.ports import Port
+from ionotrail.terminal.power.scheduler import Plan, PowerScheduler, QueueView
 from ionotrail.terminal.wire.formats import ReplyStatus
 
 
@@ -59,20 +71,55 @@ class MessageAbandoned:
     created: float
     size: int
     reason: str
+    priority: Priority = Priority.ROUTINE
 
 
-ServiceEvent = Effect | MessageQueued | MessageAbandoned
+@dataclasses.dataclass(frozen=True, slots=True)
+class ReceiverSwitched:
+    """The receiver went on (True) or off."""
+
+    time: float
+    on: bool
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class PlanMade:
+    """The power scheduler's plan from ``time``, made at state of charge ``soc``."""
+
+    time: float
+    plan: Plan
+    soc: float
+
+
+ServiceEvent = Effect | MessageQueued | MessageAbandoned | ReceiverSwitched | PlanMade
+Gauge = Callable[[float], float]
+"""The state of charge (0 to 1) at a time on the loop's clock."""
 Observer = Callable[[float, ServiceEvent], None]
 
 
 class TerminalService:
     """Runs one :class:`Link` over one :class:`Port` until stopped."""
 
-    def __init__(self, link: Link, port: Port, source: MessageSource, *, observer: Observer | None = None) -> None:
+    def __init__(
+        self,
+        link: Link,
+        port: Port,
+        source: MessageSource,
+        *,
+        observer: Observer | None = None,
+        power: PowerScheduler | None = None,
+        gauge: Gauge | None = None,
+    ) -> None:
+        if (power is None) != (gauge is None):
+            raise UsageError("a power scheduler needs a gauge of the state of charge, and a gauge a scheduler")
         self.link = link
         self.port = port
         self.source = source
         self.observer = observer
+        self.power = power
+        self.gauge = gauge
+        self.receiver_on = False
+        self._power_timer: asyncio.TimerHandle | None = None
         self._loop: asyncio.AbstractEventLoop | None = None
         self._link_timer: asyncio.TimerHandle | None = None
         self._source_timer: asyncio.TimerHandle | None = None
@@ -83,7 +130,10 @@ class TerminalService:
         self._loop = loop = asyncio.get_running_loop()
         self._stopped = asyncio.Event()
         self.port.attach(self._arrived)
-        self.port.start_listening()
+        if self.power is None:
+            self._switch(True, loop.time())
+        else:
+            self._replan()
         self._arm_source()
         stop_timer = loop.call_at(until, self.stop) if until is not None else None
         try:
@@ -91,11 +141,12 @@ class TerminalService:
         finally:
             if stop_timer is not None:
                 stop_timer.cancel()
-            for handle in (self._link_timer, self._source_timer):
+            for handle in (self._link_timer, self._source_timer, self._power_timer):
                 if handle is not None:
                     handle.cancel()
-            self._link_timer = self._source_timer = None
-            self.port.stop_listening()
+            self._link_timer = self._source_timer = self._power_timer = None
+            if self.receiver_on:
+                self._switch(False, loop.time())
 
     def stop(self) -> None:
         if self._stopped is not None:
@@ -117,13 +168,42 @@ class TerminalService:
         now = self._loop.time()
         sender = self.link.sender
         room = sender.limits.max_queued_messages - sender.pending
-        for payload, priority in self.source.take(now, room):
+        taken = self.source.take(now, room)
+        for payload, priority in taken:
             if sender.can_queue():
                 message_id = sender.queue(payload, now, priority)
                 self._tell(now, MessageQueued(message_id, now, payload, priority))
             else:
-                self._tell(now, MessageAbandoned(now, len(payload), "queue_full"))
+                self._tell(now, MessageAbandoned(now, len(payload), "queue_full", priority))
+        if taken and self.power is not None:
+            self._replan()
         self._arm_source()
+
+    def _replan(self) -> None:
+        """Ask the power scheduler for a plan from now and carry it out."""
+        loop, power, gauge = self._loop, self.power, self.gauge
+        assert loop is not None and power is not None and gauge is not None
+        if self._power_timer is not None:
+            self._power_timer.cancel()
+        now = loop.time()
+        sender = self.link.sender
+        alarms, routine, oldest_alarm, oldest_routine = sender.queue_view()
+        soc = gauge(now)
+        queue = QueueView(alarms, routine, oldest_alarm, oldest_routine, sender.limits.max_queued_messages)
+        plan = power.decide(now, soc, queue, heard=self.link.counters.openings_heard, listening=self.receiver_on)
+        sender.hold_routine = not plan.routine
+        self._tell(now, PlanMade(now, plan, soc))
+        if plan.listen != self.receiver_on and (plan.listen or self.link.state is State.LISTENING):
+            self._switch(plan.listen, now)  # off waits for the burst's end
+        self._power_timer = loop.call_at(max(plan.until, now), self._replan)
+
+    def _switch(self, on: bool, now: float) -> None:
+        if on:
+            self.port.start_listening()
+        else:
+            self.port.stop_listening()
+        self.receiver_on = on
+        self._tell(now, ReceiverSwitched(now, on))
 
     # --- the core's outputs ----------------------------------------------------------
 
@@ -138,6 +218,8 @@ class TerminalService:
                     status, result = self.source.command(effect.opcode, effect.arguments)
                     self.link.reply(effect.command_id, status, result)
                 self._tell(now, effect)
+                if isinstance(effect, BurstEnded) and self.power is not None:
+                    self._replan()
         self._arm_link()
 
     def _tell(self, now: float, event: ServiceEvent) -> None:

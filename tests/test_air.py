@@ -21,7 +21,7 @@ def arrivals(*overrides: str) -> list[tuple[str, Arrival]]:
     def watch(air: Air) -> None:
         air.on_arrival = lambda role, arrival: got.append((role, arrival))
 
-    simulate(scenarios.load(None, list(overrides)), configure_air=watch)
+    simulate(scenarios.load(None, [*overrides, *scenarios.PROTOCOL_ONLY]), configure_air=watch)
     return got
 
 

@@ -45,13 +45,13 @@ def test_the_demo_gauge_failing_in_its_callback_ends_the_run() -> None:
 
 
 def test_a_failing_command_handler_ends_the_run() -> None:
-    scenario = scenarios.load(None, ["scenario.duration_hours=0.01"])
+    scenario = scenarios.load(None, ["scenario.duration_hours=0.01", *scenarios.PROTOCOL_ONLY])
     trails = with_openings(TrailSet(scenario), [Opening(5.0, 30.0, 0.3, hold=2.0)])
     with pytest.raises(CallbackError, match="OSError: sensor bus not answering"):
         simulate(scenario, source=_CommandFails(), trails=trails, seconds=25.0, master_commands=[(0x0A31, 1, (900).to_bytes(4, "big"))])
 
 
 def test_a_failing_source_ends_a_real_time_run_too() -> None:
-    scenario = scenarios.load(None, ["scenario.duration_hours=0.01"])
+    scenario = scenarios.load(None, ["scenario.duration_hours=0.01", *scenarios.PROTOCOL_ONLY])
     with pytest.raises(CallbackError, match="OSError: sensor bus not answering"):
         simulate(scenario, source=_Refuses(), seconds=30.0, realtime=True)

@@ -24,7 +24,7 @@ from ionotrail.terminal.link.terminal import Arrival, Link
 
 
 def demo(*overrides: str) -> scenarios.Scenario:
-    return scenarios.load(None, list(overrides))
+    return scenarios.load(None, [*overrides, *scenarios.PROTOCOL_ONLY])
 
 
 def same_trails(a: Trails, b: Trails) -> None:

@@ -36,7 +36,9 @@ class Messages:
 
 
 def short_scenario(hours: float = 0.01) -> scenarios.Scenario:
-    return scenarios.load(None, [f"scenario.duration_hours={hours}"])
+    # The protocol's tests keep the receiver on: with the power scheduler's
+    # batching, a lone message would wait for company (tests/test_power_run.py).
+    return scenarios.load(None, [f"scenario.duration_hours={hours}", *scenarios.PROTOCOL_ONLY])
 
 
 def openings(s: scenarios.Scenario, *items: Opening) -> TrailSet:
@@ -127,7 +129,7 @@ def test_lost_acknowledgements_cause_retransmission_not_double_delivery(policy: 
     # keeps one copy.  Waiting for each acknowledgement (stop-and-wait, half
     # duplex) it had one fragment out, which that probe confirms.  Either way
     # nothing is delivered twice.
-    s = scenarios.load(None, ["scenario.duration_hours=0.01", f"protocol.duplex={duplex}"])
+    s = scenarios.load(None, ["scenario.duration_hours=0.01", f"protocol.duplex={duplex}", *scenarios.PROTOCOL_ONLY])
     def lose_acks_in_first_opening(air: object) -> None:
         def keep(t: float, frame: bytes) -> bool:
             probe = decode(frame)
@@ -170,7 +172,7 @@ def test_half_duplex_and_stop_and_wait_still_deliver_everything() -> None:
     s = short_scenario()
     trails = openings(s, *(Opening(10.0 + 20 * k, 25.0, 0.4, hold=3.0) for k in range(4)))
     for policy, duplex in (("stop-and-wait", "full"), ("adaptive", "half")):
-        scenario = scenarios.load(None, ["scenario.duration_hours=0.03", f"protocol.duplex={duplex}"])
+        scenario = scenarios.load(None, ["scenario.duration_hours=0.03", f"protocol.duplex={duplex}", *scenarios.PROTOCOL_ONLY])
         run = simulate(scenario, policy, source=Messages(300, 40, 500), trails=trails, seconds=100.0)
         assert run.report["messages"]["delivered"] == 3, (policy, duplex, run.report["messages"])
         assert invariant_holds(run.report)
@@ -219,7 +221,7 @@ def test_every_policy_keeps_using_the_openings(policy: str, duplex: str) -> None
     as a fragment waiting forever for an acknowledgement, shows as a collapse).
     The floor is far below every policy's measured efficiency (ionotrail bench
     link), so this is not a performance test."""
-    s = scenarios.load(None, ["scenario.duration_hours=2", f"protocol.duplex={duplex}"])
+    s = scenarios.load(None, ["scenario.duration_hours=2", f"protocol.duplex={duplex}", *scenarios.PROTOCOL_ONLY])
     report = simulate(s, policy, source="backlog", backlog_size=1001).report
     assert report["bursts"] >= 0.5 * report["trails"]["used"] > 0
     assert report["utilisation"] > 0.2

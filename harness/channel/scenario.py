@@ -20,6 +20,8 @@ from pathlib import Path
 from typing import Any
 
 from ionotrail.harness.demo.gauge import REPORT_HEADER
+from ionotrail.terminal.power.battery import CHEMISTRIES
+from ionotrail.terminal.power.scheduler import POLICIES
 
 
 class ScenarioError(ValueError):
@@ -71,6 +73,13 @@ def _choice(options: Iterable[str]) -> Callable[[Any], str | None]:
 
 def _text(value: Any) -> str | None:
     return None if isinstance(value, str) and 0 < len(value) <= 80 else "a name of 1 to 80 characters"
+
+
+def _hourly_rates(value: Any) -> str | None:
+    ok = isinstance(value, list) and (
+        not value or (len(value) == 24 and all(isinstance(v, (int, float)) and not isinstance(v, bool) and 0 < v < 1e6 for v in value))
+    )
+    return None if ok else "an empty list, or 24 positive openings per hour (hour 0 of local solar time first)"
 
 
 def _flag(value: Any) -> str | None:
@@ -148,7 +157,53 @@ SCHEMA: dict[str, dict[str, Field]] = {
         "turnaround_s": Field(0.010, "terminal's receive-to-transmit switching time", _number(0, 1, "s")),
         "burst_silence_s": Field(0.25, "the terminal ends a burst after this long without a probe", _number(0.01, 60, "s")),
     },
+    "power": {
+        "policy": Field("adaptive", "listening policy: always-on, fixed-duty (baselines) or adaptive", _choice(POLICIES)),
+        "listen_duty": Field(0.25, "fixed-duty: fraction of each duty period the receiver listens", _number(0.001, 1)),
+        "duty_period_s": Field(3600.0, "fixed-duty: the period of the listening schedule, s", _number(60, 86400, "s")),
+        "alarm_deadline_s": Field(900.0, "an alarm delivered later than this after its creation missed its deadline, s", _number(1, 30 * 86400, "s")),
+        "routine_deadline_s": Field(14400.0, "the same for a routine report, s", _number(1, 30 * 86400, "s")),
+        "batch": Field(4, "adaptive: routine messages worth opening the receiver for in a good hour", _integer(1, 1000)),
+        "conserve_batch": Field(12, "routine messages sent together while the battery is conserving", _integer(1, 1000)),
+        "tx_duty_limit": Field(0.25, "most of any sliding window the transmitter may be keyed (a thermal or regulatory limit; 1: none)", _number(0.001, 1)),
+        "tx_duty_window_s": Field(60.0, "the sliding window of tx_duty_limit, s", _number(1, 86400, "s")),
+        "uplink_backoff": Field(True, "stop transmitting on probes weaker than those whose frames went unacknowledged", _flag),
+        "burst_rate_prior": Field([], "openings per hour by hour of local solar time, from a channel forecast (empty: a flat 30 per hour, then learned)", _hourly_rates),
+    },
+    "battery": {
+        "chemistry": Field("lead-acid", "cell chemistry: its floor, charge efficiency and cold-charging rule", _choice(CHEMISTRIES)),
+        "capacity_wh": Field(480.0, "nominal capacity, Wh (12 V 40 Ah)", _number(1, 1e5, "Wh")),
+        "initial_soc": Field(0.9, "state of charge at the start", _number(0, 1)),
+        "reserve": Field(0.25, "fraction of the usable window (floor to full) kept for alarms", _number(0, 0.9)),
+        "conserve": Field(0.5, "fraction of the usable window below which routine traffic is deferred and batched", _number(0.05, 0.95)),
+    },
+    "solar": {
+        "panel_w": Field(20.0, "panel peak power at 1000 W/m2, W", _number(0, 10000, "W")),
+        "tilt_deg": Field(60.0, "panel tilt from horizontal, degrees", _number(0, 90, "degrees")),
+        "azimuth_deg": Field(180.0, "direction the panel faces, degrees clockwise from north", _number(0, 360, "degrees")),
+        "albedo": Field(0.2, "ground reflectance (snow: 0.6 to 0.9)", _number(0, 1)),
+        "system_efficiency": Field(0.8, "panel to battery terminals: wiring, controller, soiling, heat (common practice, no source)", _number(0.05, 1)),
+        "clearness_mean": Field(0.55, "mean of the daily cloudiness factor on the clear-sky harvest (1: always clear)", _number(0.01, 1)),
+    },
+    "climate": {
+        "temp_mean_c": Field(2.0, "mean air temperature at the battery, deg C", _number(-60, 50, "deg C")),
+        "temp_seasonal_c": Field(12.0, "half the swing between the warmest and coldest day, deg C", _number(0, 50, "deg C")),
+        "temp_daily_c": Field(4.0, "half the swing between afternoon and dawn, deg C", _number(0, 30, "deg C")),
+        "warmest_day": Field(200, "day of the year of the warmest days (200 is mid-July)", _integer(1, 366)),
+    },
+    "loads": {
+        "controller_w": Field(0.005, "controller asleep, W", _number(0, 100, "W")),
+        "receiver_w": Field(0.6, "receiver listening, W", _number(0, 100, "W")),
+        "modem_w": Field(0.25, "modem powered and idle (with the receiver), W", _number(0, 100, "W")),
+        "pa_efficiency": Field(0.5, "transmitter supply power is RF power over this", _number(0.05, 1)),
+        "sensor_j": Field(2.0, "energy of one sensor sample (each message created), J", _number(0, 10000, "J")),
+    },
 }
+ENERGY_SECTIONS = ("power", "battery", "solar", "climate", "loads")
+PROTOCOL_ONLY = ("power.policy=always-on", "power.uplink_backoff=false", "power.tx_duty_limit=1")
+"""Overrides that leave the protocol alone on the air: the receiver always on,
+no uplink gate, no transmit duty-cycle limit (the protocol's own tests use them;
+the energy is still accounted)."""
 
 
 @dataclasses.dataclass(frozen=True)
@@ -162,6 +217,53 @@ class Station:
     tx_power_w: float
     noise_figure_db: float
     environment: str
+
+
+@dataclasses.dataclass(frozen=True)
+class Energy:
+    """The terminal's power settings (sections power, battery, solar, climate, loads)."""
+
+    policy: str
+    listen_duty: float
+    duty_period_s: float
+    alarm_deadline_s: float
+    routine_deadline_s: float
+    batch: int
+    conserve_batch: int
+    tx_duty_limit: float
+    tx_duty_window_s: float
+    uplink_backoff: bool
+    burst_rate_prior: tuple[float, ...]
+    chemistry: str
+    capacity_wh: float
+    initial_soc: float
+    reserve: float
+    conserve: float
+    panel_w: float
+    tilt_deg: float
+    azimuth_deg: float
+    albedo: float
+    system_efficiency: float
+    clearness_mean: float
+    temp_mean_c: float
+    temp_seasonal_c: float
+    temp_daily_c: float
+    warmest_day: int
+    controller_w: float
+    receiver_w: float
+    modem_w: float
+    pa_efficiency: float
+    sensor_j: float
+
+
+def _energy(m: dict[str, dict[str, Any]]) -> Energy:
+    values = {k: m[section][k] for section in ENERGY_SECTIONS for k in SCHEMA[section]}
+    values["burst_rate_prior"] = tuple(float(v) for v in values["burst_rate_prior"])
+    return Energy(**values)
+
+
+def default_energy() -> Energy:
+    return _energy({section: {k: f.default for k, f in fields.items()} for section, fields in SCHEMA.items()})
 
 
 @dataclasses.dataclass(frozen=True)
@@ -191,6 +293,7 @@ class Scenario:
     turnaround_s: float = 0.010
     burst_silence_s: float = 0.25
     source: str = "built-in demo"
+    energy: Energy = dataclasses.field(default_factory=default_energy)
 
     @property
     def duration_s(self) -> float:
@@ -295,6 +398,16 @@ def _build(m: dict[str, dict[str, Any]], origin: str, given: dict[str, str] | No
             f"end the run at {_utc_text(end)}, which is not usable; expected a run that ends before {_utc_text(END_UNIX_S)} {_CARRIED}"
         )
     stations = {name: Station(**{k: m[name][k] for k in SCHEMA[name]}) for name in ("terminal", "master")}
+    b = m["battery"]
+    if not b["reserve"] < b["conserve"]:
+        where = " and ".join(dict.fromkeys(given.get(k, origin) for k in ("battery.reserve", "battery.conserve")))
+        raise ScenarioError(f"{where}: battery.reserve = {b['reserve']!r} must be below battery.conserve = {b['conserve']!r}")
+    floor = CHEMISTRIES[b["chemistry"]].soc_floor
+    if not b["initial_soc"] >= floor:
+        where = " and ".join(dict.fromkeys(given.get(k, origin) for k in ("battery.initial_soc", "battery.chemistry")))
+        raise ScenarioError(f"{where}: battery.initial_soc = {b['initial_soc']!r} is below the {b['chemistry']} floor {floor}")
+    if not m["power"]["batch"] <= m["power"]["conserve_batch"]:
+        raise ScenarioError(f"{origin}: power.batch = {m['power']['batch']!r} must be at most power.conserve_batch = {m['power']['conserve_batch']!r}")
     return Scenario(
         name=m["scenario"]["name"],
         start=start.astimezone(dt.UTC),
@@ -306,6 +419,7 @@ def _build(m: dict[str, dict[str, Any]], origin: str, given: dict[str, str] | No
         **{k: m["link"][k] for k in SCHEMA["link"]},
         **{k: m["channel"][k] for k in SCHEMA["channel"]},
         **{k: m["protocol"][k] for k in SCHEMA["protocol"]},
+        energy=_energy(m),
     )
 
 

@@ -76,6 +76,9 @@ class AirCounters:
     probes_unheard: int = 0  # intact but the terminal was deaf (receiver off or transmitting half duplex)
     probes_filtered: int = 0  # intact but removed by a fault hook
     probes_reckoned: int = 0  # of those emitted in openings, reckoned in bulk rather than one by one
+    airtime_s: dict[str, float] = dataclasses.field(default_factory=lambda: {"up": 0.0, "down": 0.0})
+    wasted_airtime_s: dict[str, float] = dataclasses.field(default_factory=lambda: {"up": 0.0, "down": 0.0})
+    """Airtime of frames that did not arrive intact at a listening receiver."""
 
 
 class Air:
@@ -141,6 +144,7 @@ class Air:
         end = start + bits / self.bit_rate[direction]
         sender.busy_until = end
         self.counters.frames_sent[direction] += 1
+        self.counters.airtime_s[direction] += end - start
         serial = self._frame_serial[direction]
         self._frame_serial[direction] = serial + 1
         outlook = self.channel.outlook(direction, start, bits)
@@ -160,13 +164,17 @@ class Air:
             delivered = bytes(damaged)
             self.counters.frames_corrupted[direction] += 1
         else:
+            self.counters.wasted_airtime_s[direction] += end - start
             return
         receiver = self.terminal if sender is self.master else self.master
         arrival = Arrival(delivered, self.origin + end, snr_db, self._offset(direction, carrier))  # type: ignore[operator]
         loop.call_at(arrival.time, self._arrive, receiver, arrival, start, direction, intact)
 
     def _arrive(self, receiver: SimulatedPort, arrival: Arrival, start: float, direction: str, intact: bool) -> None:
-        if not receiver.hears(start):
+        heard = receiver.hears(start)
+        if not (heard and intact):
+            self.counters.wasted_airtime_s[direction] += 8 * len(arrival.frame) / self.bit_rate[direction]
+        if not heard:
             return
         if intact:
             self.counters.frames_delivered[direction] += 1
@@ -244,13 +252,17 @@ class Air:
                 return
 
     def _may_reckon(self) -> bool:
+        """Probes may be reckoned in bulk up to the loop's next event: the
+        terminal's receiver is off (it hears none of them; it can only come
+        on at an event), or the terminal is indifferent to them."""
         frame = self.master.probe_frame
+        terminal = self.terminal
         return (
             self.idle_terminal is not None
             and self.probe_filter is None
             and self.on_arrival is None  # an observer of every arrival is owed every probe
             and frame is not None
-            and self.idle_terminal.indifferent_to(frame)
+            and (not terminal.listening or terminal.closed or self.idle_terminal.indifferent_to(frame))
         )
 
     def _probe_counter(self, k: int) -> int:

@@ -47,6 +47,8 @@ class DeliveryRecord:
     delivered_s: float
     size: int
     crc32c: int
+    priority: str = "routine"
+    """alarm or routine: the urgency its fragments carried."""
 
     def to_json(self) -> str:
         latency = None if self.created_s is None else round(self.delivered_s - self.created_s, 3)
@@ -59,6 +61,7 @@ class DeliveryRecord:
                 "latency_s": latency,
                 "size": self.size,
                 "crc32c": f"0x{self.crc32c:08x}",
+                "priority": self.priority,
             }
         )
 
@@ -193,6 +196,7 @@ class MasterStation:
             delivered_s=delivery.completed,
             size=len(delivery.payload),
             crc32c=crc32c(delivery.payload),
+            priority="alarm" if delivery.urgent else "routine",
         )
         self.deliveries.append(record)
         if self.sink is not None:

@@ -26,14 +26,18 @@ from ionotrail.harness.channel.scenario import Scenario
 from ionotrail.harness.demo.gauge import Backlog, DemoGauge
 from ionotrail.harness.emulators.air import Air
 from ionotrail.harness.emulators.master import DeliveryRecord, MasterStation
+from ionotrail.harness.energy.meter import PRIORITY_NAMES, EnergyMeter, EnergyTimeline, scheduler_for
 from ionotrail.harness.reports.trace import TraceWriter, TracingPort
 from ionotrail.harness.runners.vtime import VirtualTimeLoop, raise_callback_errors
-from ionotrail.terminal.delivery.sender import MessageAcknowledged, MessageRefused, Sender
+from ionotrail.terminal.delivery.sender import MessageAcknowledged, MessageRefused, Priority, Sender
 from ionotrail.terminal.errors import Reason
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.link.gate import UplinkGate
 from ionotrail.terminal.link.policy import by_name
 from ionotrail.terminal.link.terminal import BurstEnded, BurstStarted, Duplex, Link
 from ionotrail.terminal.ports import Port
+from ionotrail.terminal.power.duty import DutyCycle
+from ionotrail.terminal.power.loads import LOAD_NAMES
 from ionotrail.terminal.service import MessageAbandoned, MessageQueued, MessageSource, ServiceEvent, TerminalService
 from ionotrail.terminal.wire.crc import crc32c
 
@@ -49,6 +53,12 @@ REPORT_KEYS = (
     "bits.payload_delivered", "bits.capacity_bound", "bits.oracle_bound", "utilisation",
     "trails.total", "trails.used", "frames.sent", "frames.received", "frames.crc_failed",
     *(f"frames.refused.{r.value}" for r in FRAME_REFUSALS),
+    "latency_s.alarm.p50", "latency_s.alarm.p95", "latency_s.alarm.max",
+    "latency_s.routine.p50", "latency_s.routine.p95", "latency_s.routine.max",
+    "messages.deadlines_missed.alarm", "messages.deadlines_missed.routine",
+    "energy.harvested_wh", *(f"energy.consumed_wh.{name}" for name in LOAD_NAMES), "energy.soc_min", "energy.soc_final",
+    "energy.hours_below_reserve", "energy.listen_hours", "energy.tx_seconds", "energy.wasted_tx_seconds",
+    "energy.uplink_backoffs", "energy.degradation",
 )  # fmt: skip
 PROGRESS_EVERY_S = 600.0  # simulated seconds between progress reports
 BOUND_WINDOW_S = CELL_S
@@ -65,6 +75,7 @@ class Timeline:
     bursts: list[tuple[float, float, float]] = dataclasses.field(default_factory=list)  # start, end, probe Eb/N0 dB
     queue: list[tuple[float, int]] = dataclasses.field(default_factory=list)  # time, messages pending
     openings: list[tuple[float, float, float]] = dataclasses.field(default_factory=list)  # trail start, peak Eb/N0 dB, open s (uplink)
+    energy: EnergyTimeline = dataclasses.field(default_factory=EnergyTimeline)
 
 
 @dataclasses.dataclass
@@ -75,6 +86,7 @@ class Simulation:
     link: Link
     master: MasterStation
     air: Air
+    meter: EnergyMeter
 
 
 class _Ledger:
@@ -87,20 +99,28 @@ class _Ledger:
         self.offered = 0
         self.abandoned: dict[str, int] = {}
         self.in_sender: dict[int, int] = {}  # wire id -> CRC-32C of the payload, while queued
+        self.queued: dict[int, tuple[Priority, float]] = {}  # wire id -> (priority, created), while queued
+        self.abandoned_by_priority: dict[Priority, int] = {p: 0 for p in Priority}
         self.burst_start: tuple[float, float] | None = None
+        self.origin = 0.0  # the loop time of the run's start
 
     def observe(self, now: float, event: ServiceEvent) -> None:
         if isinstance(event, MessageQueued):
             self.offered += 1
             self.in_sender[event.message_id] = crc32c(event.payload)
+            self.queued[event.message_id] = (event.priority, event.created)
         elif isinstance(event, MessageAbandoned):
             self.offered += 1
             self.abandoned[event.reason] = self.abandoned.get(event.reason, 0) + 1
+            self.abandoned_by_priority[event.priority] += 1
         elif isinstance(event, MessageAcknowledged):
             self.in_sender.pop(event.message_id, None)
+            self.queued.pop(event.message_id, None)
         elif isinstance(event, MessageRefused):
             self.in_sender.pop(event.message_id, None)
+            priority, _ = self.queued.pop(event.message_id, (Priority.ROUTINE, 0.0))
             self.abandoned["refused"] = self.abandoned.get("refused", 0) + 1
+            self.abandoned_by_priority[priority] += 1
         elif self.timeline is not None and isinstance(event, BurstStarted):
             self.burst_start = (event.time, event.snr_db)
         elif self.timeline is not None and isinstance(event, BurstEnded) and self.burst_start is not None:
@@ -148,6 +168,8 @@ def simulate(
     trace: IO[str] | None = None,
     lazy_probes: bool = True,
     bound_progress: Callable[[float, float], None] | None = None,
+    power_policy: str | None = None,
+    uplink_backoff: bool | None = None,
 ) -> Simulation:
     """Run ``scenario`` for its whole period (or ``seconds``); ``trails`` may be
     passed to reuse a realisation (the benchmark runs every policy on the same
@@ -158,7 +180,13 @@ def simulate(
     ``bound_progress(done_s, total_s)`` hears the pass over the period that
     computes the bounds after the run (:func:`period_figures`);
     ``lazy_probes`` lets the air reckon in bulk the probes the idle terminal would
-    ignore (:mod:`~ionotrail.harness.emulators.air`; off only to check that it changes nothing)."""
+    ignore (:mod:`~ionotrail.harness.emulators.air`; off only to check that it changes nothing);
+    ``power_policy`` and ``uplink_backoff`` override the scenario's power settings.
+
+    Energy is part of every run: the terminal's receiver is switched by its
+    power scheduler, its battery integrated by an
+    :class:`~ionotrail.harness.energy.meter.EnergyMeter`, and the report's
+    ``energy`` section says where the energy went."""
     wall_start = time.perf_counter()
     duration = scenario.duration_s if seconds is None else float(seconds)
     if trails is None:
@@ -168,7 +196,11 @@ def simulate(
     timeline = Timeline() if record_timeline else None
     fragment_policy = by_name(policy, scenario.bit_rate, tau_scale=(scenario.down_mhz / scenario.up_mhz) ** 2)
     sender = Sender(scenario.terminal_address, scenario.master_address, limits=limits)
-    link = Link(sender, fragment_policy, bit_rate=scenario.bit_rate, duplex=Duplex(scenario.duplex), limits=limits)
+    e = scenario.energy
+    gate = UplinkGate() if (e.uplink_backoff if uplink_backoff is None else uplink_backoff) else None
+    duty = DutyCycle(e.tx_duty_limit, e.tx_duty_window_s) if e.tx_duty_limit < 1 else None
+    power_name = power_policy or e.policy
+    link = Link(sender, fragment_policy, bit_rate=scenario.bit_rate, duplex=Duplex(scenario.duplex), limits=limits, gate=gate, duty=duty)
     ledger = _Ledger(sender, timeline)
     deliveries: list[DeliveryRecord] = []
 
@@ -177,9 +209,12 @@ def simulate(
         if on_delivery is not None:
             on_delivery(record)
 
-    async def main() -> tuple[Air, MasterStation]:
+    async def main() -> tuple[Air, MasterStation, EnergyMeter]:
         loop = asyncio.get_running_loop()
         origin = loop.time()
+        meter = EnergyMeter(scenario, origin, timeline=timeline.energy if timeline is not None else None)
+        ledger.origin = origin
+        scheduler = scheduler_for(scenario, scenario.start.timestamp() - origin, power_name)
         air = Air(channel, seed=scenario.seed, half_duplex=scenario.duplex == "half", origin=origin, oscillator_ppm=scenario.oscillator_ppm)
         if lazy_probes and trace is None:
             air.idle_terminal = link
@@ -200,7 +235,12 @@ def simulate(
             sink=delivered,
         )
         app = make_source(source, scenario, backlog_size, origin) if isinstance(source, str) else source
-        service = TerminalService(link, terminal_port, app, observer=ledger.observe)
+
+        def observe(now: float, event: ServiceEvent) -> None:
+            ledger.observe(now, event)
+            meter.observe(now, event)
+
+        service = TerminalService(link, terminal_port, app, observer=observe, power=scheduler, gauge=meter.gauge)
         master.start()
         for terminal, opcode, arguments in master_commands:
             master.command(terminal, opcode, arguments)
@@ -216,18 +256,19 @@ def simulate(
 
             ticker = loop.call_at(origin + PROGRESS_EVERY_S, tick)
         await service.run(until=end)
+        meter.finish(loop.time())
         if ticker is not None:
             ticker.cancel()
         await master.stop()
         if progress is not None:
             progress(duration, duration, len(deliveries))
-        return air, master
+        return air, master, meter
 
     if realtime:
-        air, master = asyncio.run(raise_callback_errors(main()))
+        air, master, meter = asyncio.run(raise_callback_errors(main()))
     else:
         with asyncio.Runner(loop_factory=VirtualTimeLoop) as runner:
-            air, master = runner.run(raise_callback_errors(main()))
+            air, master, meter = runner.run(raise_callback_errors(main()))
     wall = time.perf_counter() - wall_start
     if timeline is not None and trails.trails is not None:
         tr = trails.trails
@@ -236,7 +277,39 @@ def simulate(
         timeline.openings = list(zip(tr.t[up].tolist(), peak_db.tolist(), tr.open_s["up"][up].tolist(), strict=True))
     figures = period_figures(trails, until=duration, limits=limits, progress=bound_progress)
     report = _report(scenario, policy, figures, air, master, link, ledger, deliveries, wall, duration)
-    return Simulation(report, deliveries, timeline, link, master, air)
+    energy = meter.section(wasted_tx_s=air.counters.wasted_airtime_s["up"], backoffs=gate.backoffs if gate else 0,
+                           duty_refusals=duty.refusals if duty else 0)  # fmt: skip
+    energy["policy"] = power_name
+    report["energy"] = energy
+    _deadlines(report, scenario, ledger, deliveries, link, duration)
+    return Simulation(report, deliveries, timeline, link, master, air, meter)
+
+
+def _deadlines(report: dict[str, Any], scenario: Scenario, ledger: _Ledger, deliveries: list[DeliveryRecord], link: Link, end: float) -> None:
+    """Latency by priority, and deadlines missed: delivered late, still pending
+    past the deadline at the end, or abandoned."""
+    e = scenario.energy
+    deadline = {"alarm": e.alarm_deadline_s, "routine": e.routine_deadline_s}
+    latencies: dict[str, list[float]] = {"alarm": [], "routine": []}
+    for r in deliveries:
+        if r.created_s is not None:
+            latencies[r.priority].append(r.delivered_s - r.created_s)
+    missed = {name: sum(1 for v in values if v > deadline[name]) for name, values in latencies.items()}
+    pending = {wire_id for wire_id, *_ in link.sender.outstanding()}
+    for wire_id, (priority, created) in ledger.queued.items():
+        name = PRIORITY_NAMES[priority]
+        if wire_id in pending and end - (created - ledger.origin) > deadline[name]:
+            missed[name] += 1
+    for priority, count in ledger.abandoned_by_priority.items():
+        missed[PRIORITY_NAMES[priority]] += count
+    for name, values in latencies.items():
+        report["latency_s"][name] = {
+            "p50": _percentile(values, 0.50),
+            "p95": _percentile(values, 0.95),
+            "p99": _percentile(values, 0.99),
+            "max": round(max(values), 3) if values else None,
+        }
+    report["messages"]["deadlines_missed"] = missed
 
 
 @dataclasses.dataclass(frozen=True)

@@ -136,6 +136,7 @@ class Sender:
         # max_queued_messages + duplicate_window - 2 < 2^16 (both limits are below 2^15).
         self._by_wire_id: dict[int, _Outgoing] = {}
         self._eligible_now: list[_Outgoing] | None = None
+        self._hold_routine = False
         # The selection of _choose, kept until something it reads changes: the queue, or
         # any message's acked, sent or in_flight.  Every method that changes one of them
         # calls _changed() (tests/test_sender.py checks it against the selection made afresh).
@@ -174,6 +175,40 @@ class Sender:
         """Messages queued and not yet acknowledged or refused."""
         return len(self._queue)
 
+    @property
+    def hold_routine(self) -> bool:
+        """While True, routine messages stay queued but are not sent (the power
+        scheduler defers them); alarms go as before."""
+        return self._hold_routine
+
+    @hold_routine.setter
+    def hold_routine(self, hold: bool) -> None:
+        if bool(hold) is not self._hold_routine:
+            self._hold_routine = bool(hold)
+            self._eligible_now = None
+            self._changed()
+
+    @property
+    def sendable(self) -> int:
+        """Pending messages that may be sent now (all of them unless routine traffic is held)."""
+        if not self._hold_routine:
+            return len(self._queue)
+        return sum(1 for m in self._queue.values() if m.priority is _ALARM)
+
+    def queue_view(self) -> tuple[int, int, float | None, float | None]:
+        """(alarms, routine, creation time of the oldest alarm, of the oldest routine message)."""
+        alarms = routine = 0
+        oldest_alarm: float | None = None
+        oldest_routine: float | None = None
+        for m in self._queue.values():
+            if m.priority is _ALARM:
+                alarms += 1
+                oldest_alarm = m.created if oldest_alarm is None else min(oldest_alarm, m.created)
+            else:
+                routine += 1
+                oldest_routine = m.created if oldest_routine is None else min(oldest_routine, m.created)
+        return alarms, routine, oldest_alarm, oldest_routine
+
     def outstanding(self) -> list[tuple[int, int, tuple[tuple[int, int], ...], tuple[tuple[int, int], ...]]]:
         """(message id, sealed size, ranges acknowledged, ranges sent unconfirmed) per
         pending message, oldest first: for reports and test diagnostics."""
@@ -207,7 +242,7 @@ class Sender:
             if self._queue:
                 oldest = next(iter(self._queue))
                 span = self.limits.duplicate_window
-                ready = [m for m in self._queue.values() if m.seq - oldest < span]
+                ready = [m for m in self._queue.values() if m.seq - oldest < span and (m.priority is _ALARM or not self._hold_routine)]
                 ready.sort(key=_order)
             self._eligible_now = ready[: self.limits.max_partials_per_source]
         return self._eligible_now

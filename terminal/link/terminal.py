@@ -31,11 +31,13 @@ from typing import NamedTuple
 
 from ionotrail.terminal.delivery.sender import Sender, SenderEvent
 from ionotrail.terminal.errors import DecodeError, ProtocolError, UsageError
-from ionotrail.terminal.limits import DEFAULT_LIMITS, MAX_COMMAND_BYTES, Limits
+from ionotrail.terminal.limits import DEFAULT_LIMITS, MAX_COMMAND_BYTES, MAX_FRAME_BYTES, Limits
 from ionotrail.terminal.link.commands import CommandMemory, Verdict
+from ionotrail.terminal.link.gate import UplinkGate
 from ionotrail.terminal.link.policy import FragmentPolicy
 from ionotrail.terminal.link.table import TRANSITIONS, Action, Input, State, classify_probe, classify_timer, decide
 from ionotrail.terminal.link.timer import Purpose, Timer, due_at
+from ionotrail.terminal.power.duty import DutyCycle
 from ionotrail.terminal.wire import Ack, AckBlock, Command, Frame, Probe, Reply, decode, encode
 from ionotrail.terminal.wire.formats import ReplyStatus
 
@@ -120,6 +122,9 @@ class LinkCounters:
     bytes_sent: int = 0
     decode_errors: int = 0
     ignored_frames: int = 0
+    openings_heard: int = 0
+    """Probes heard after more than burst_silence without one: the openings the
+    receiver caught (what the power scheduler learns burst rates from)."""
 
 
 class Link:
@@ -133,7 +138,14 @@ class Link:
         bit_rate: float,
         duplex: Duplex = Duplex.FULL,
         limits: Limits = DEFAULT_LIMITS,
+        gate: UplinkGate | None = None,
+        duty: DutyCycle | None = None,
     ) -> None:
+        """``gate`` stops transmissions into a path open only downward
+        (:mod:`~ionotrail.terminal.link.gate`); ``duty`` holds a transmit
+        duty-cycle limit (:mod:`~ionotrail.terminal.power.duty`).  A frame is
+        *ready* only when both allow it, so neither needs a cell of its own in
+        the table: a refused frame is one not ready."""
         if not bit_rate > 0:
             raise UsageError(f"bit_rate must be positive, not {bit_rate!r}")
         self.sender = sender
@@ -154,6 +166,16 @@ class Link:
         self._last_frame: Frame | None = None
         self.commands = CommandMemory(limits)
         """Executed command ids, kept replies and replies waiting (its counters count commands)."""
+        self.gate = gate
+        self.duty = duty
+        self._max_airtime = self._airtime(MAX_FRAME_BYTES)  # what the duty check reserves for the next frame
+        self._last_snr = float("nan")  # Eb/N0 of the last probe heard
+        # The burst in progress, for the gate: its first probe's Eb/N0, pieces confirmed,
+        # probes heard after its first frame left the antenna (plus the ack margin).
+        self._burst_snr = float("nan")
+        self._burst_confirmed = 0
+        self._burst_heard_after = 0
+        self._burst_first_end = float("inf")
 
     @property
     def deadline(self) -> float | None:
@@ -193,6 +215,8 @@ class Link:
 
     def _take_probe(self, frame: Probe, arrival: Arrival, effects: list[Effect]) -> None:
         self.counters.probes_heard += 1
+        if arrival.time - self._last_probe > self.limits.burst_silence:
+            self.counters.openings_heard += 1
         if frame.ack is not None:
             self._take_ack(frame.ack, arrival, effects)
         ours = frame.poll is None or frame.poll == self.terminal
@@ -202,6 +226,8 @@ class Link:
         self._last_probe = arrival.time
         self._last_probe_ours = ours
         if self.state is not _LISTENING:  # in a burst (a new one starts in START_BURST)
+            if arrival.time >= self._burst_first_end:
+                self._burst_heard_after += 1
             # A piece unconfirmed for a whole silence interval of live probes is lost
             # (acknowledgements ride on every probe); this is what times out a
             # stop-and-wait fragment whose loss no acknowledgement shows.
@@ -210,8 +236,10 @@ class Link:
             self.policy.probe_heard(arrival.time, arrival.snr_db)
         if not ours:
             self.counters.probes_elsewhere += 1
-        event = classify_probe(ours=ours, ready=self._has_something())
+        event = classify_probe(ours=ours, ready=self._has_something() and self._may_send(arrival.time, arrival.snr_db))
         self._apply(event, arrival.time, effects, arrival.snr_db)
+        if self.state is not _LISTENING:  # the timers' decisions read it; idle, nothing does
+            self._last_snr = arrival.snr_db
 
     def on_timer(self, now: float) -> list[Effect]:
         """Call at (or after) the timer's time; an early call does nothing."""
@@ -224,7 +252,7 @@ class Link:
             silent=now >= self._silence_since() + self.limits.burst_silence,
             ours=self._last_probe_ours,
             hold=self.duplex is _HALF or self.policy.waits_for_ack,
-            ready=self._ready(),
+            ready=self._ready() and self._may_send(now, self._last_snr),
         )
         self._apply(event, now, effects)
         return effects
@@ -273,6 +301,12 @@ class Link:
             # Each would count, settle nothing (a stray acknowledgement: nothing is held) and stay idle.
             count = len(times)
             self.counters.probes_heard += count
+            last, silence, openings = self._last_probe, self.limits.burst_silence, 0
+            for t in times:
+                if t - last > silence:
+                    openings += 1
+                last = t
+            self.counters.openings_heard += openings
             if frame.ack is not None and frame.ack.terminal == self.terminal and not frame.ack.downlink:
                 self.sender.count_stray_acks(count)
             if frame.poll is not None and frame.poll != self.terminal:
@@ -294,7 +328,15 @@ class Link:
             return True
         if self.policy.waits_for_ack and self.state is not State.LISTENING and self.sender.awaiting:
             return False  # within a burst; a new burst presumes the last one's fragment lost
-        return self.sender.pending > 0
+        return self.sender.sendable > 0
+
+    def _may_send(self, now: float, snr_db: float) -> bool:
+        """The gate passes a probe heard at ``snr_db``, and the duty-cycle budget
+        has room for the longest frame from ``now``."""
+        gate, duty = self.gate, self.duty
+        if gate is not None and not gate.allows(snr_db, now):
+            return False
+        return duty is None or duty.allows(now, self._max_airtime)
 
     def _ready(self) -> bool:
         """A frame could be built now: a reply waits, or the sender would give a fragment."""
@@ -328,6 +370,10 @@ class Link:
             air_end = self._air_end = now + self._airtime(len(frame))
             self.counters.bytes_sent += len(frame)
             self._burst_frames += 1
+            if self._burst_first_end == float("inf"):
+                self._burst_first_end = air_end + self.limits.ack_margin
+            if self.duty is not None:
+                self.duty.record(now, air_end)
             effects.append(Transmit(frame, air_end))
             self.timer = Timer(_AIR_END, air_end)
         elif action is Action.STAY_IDLE:
@@ -339,6 +385,8 @@ class Link:
             self.sender.outcomes.clear()  # the last burst's tail died with its trail: the decay's loss, not the path's
             self.policy.burst_started(now)
             self.policy.probe_heard(now, snr_db)
+            self._burst_snr, self._burst_confirmed, self._burst_heard_after = snr_db, 0, 0
+            self._burst_first_end = float("inf")
             effects.append(BurstStarted(now, snr_db))
             self.timer = Timer(Purpose.TURNAROUND, now + self.limits.turnaround)
         elif action is Action.ARM_TURNAROUND:
@@ -349,6 +397,9 @@ class Link:
             self.timer = Timer(Purpose.SILENCE, self._silence_since() + self.limits.burst_silence)
         else:  # Action.END_BURST
             self.timer = None
+            if self.gate is not None:
+                self.gate.burst_ended(now, sent=self._burst_frames, confirmed=self._burst_confirmed,
+                                      heard_after=self._burst_heard_after, first_snr_db=self._burst_snr)  # fmt: skip
             effects.append(BurstEnded(now, self._burst_frames))
 
     def _running(self, purpose: Purpose) -> Timer:
@@ -379,7 +430,10 @@ class Link:
     def _report_outcomes(self) -> None:
         outcomes = self.sender.outcomes
         while outcomes:
-            self.policy.fragment_settled(*outcomes.popleft())
+            size, lost = outcomes.popleft()
+            if not lost:
+                self._burst_confirmed += 1
+            self.policy.fragment_settled(size, lost)
 
     def _take_command(self, command_id: int, opcode: int, arguments: bytes, effects: list[Effect]) -> None:
         if self.commands.arrived(command_id) is Verdict.NEW:
