@@ -179,6 +179,11 @@ class TerminalService:
             self._replan()
         self._arm_source()
 
+    def gauge_alert(self) -> None:
+        """The fuel gauge says the state of charge crossed a threshold: decide again now."""
+        if self.power is not None and self._loop is not None and self._stopped is not None and not self._stopped.is_set():
+            self._replan()
+
     def _replan(self) -> None:
         """Ask the power scheduler for a plan from now and carry it out."""
         loop, power, gauge = self._loop, self.power, self.gauge

@@ -41,8 +41,8 @@ HOUR = 3600.0  # seconds in an hour; 1 Wh = 3600 J (SI definitions)
 # 1. Battery
 # =====================================================================================
 
-# Seconds and watts are zero or at least 1e-9 and 1e-6: a product of the two that underflows
-# to zero crashes the battery (see the xfail test below), which the bounds here are not about.
+# Seconds and watts are zero or at least 1e-9 and 1e-6; a product of the two that underflows
+# to zero has its own test below.
 pieces = st.lists(
     st.tuples(
         st.sampled_from([0.0, 1e-9, 1e-6, 1e-3, 0.02]) | st.floats(1e-9, 1e5),  # seconds, tiny ones included
@@ -69,7 +69,7 @@ def test_battery_ledger_bounds_and_availability(chemistry: Chemistry, window: fl
     capacity_j = capacity_wh * HOUR
     floor_j = floor * capacity_j
     start_j = battery.stored_j
-    full_slack = 4 * math.ulp(capacity_j)  # the one-ulp overshoot at full: see the xfail test below
+    full_slack = 0.0  # filling up never overshoots: see test_filling_up_never_stores_more_than_the_capacity
     observed = [soc0]  # soc_min starts at the state of charge the battery was given
     offered_j = demanded_j = 0.0
     total_s = 0.0
@@ -121,11 +121,6 @@ def test_a_small_battery_filling_up_in_one_piece_reaches_full() -> None:
     assert battery.soc == pytest.approx(1.0, abs=1e-12)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="terminal/power/battery.py:153,157: e1 = e0 + ((capacity_j - e0) / efficiency) * efficiency"
-    " rounds one ulp above capacity_j, so soc reads 1.0000000000000002 and Battery(spec, soc) refuses it",
-)
 def test_filling_up_never_stores_more_than_the_capacity() -> None:
     spec = BatterySpec(1.1, LEAD)
     battery = Battery(spec, 0.5)
@@ -134,12 +129,6 @@ def test_filling_up_never_stores_more_than_the_capacity() -> None:
     Battery(spec, battery.soc)  # a battery rebuilt from the state of charge it reports
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=ZeroDivisionError,
-    reason="terminal/power/battery.py:178: served_fraction divides by load_w * seconds, which underflows to 0.0"
-    " for a subnormal product while the battery sits at its floor",
-)
 def test_a_piece_whose_demand_underflows_at_the_floor_is_accounted_not_a_crash() -> None:
     battery = Battery(BatterySpec(1.1, LEAD), 0.5)  # at the floor: any deficit goes unserved
     battery.run(1e-300, 0.0, {"controller": 1e-30}, 20.0)  # 1e-330 J: below the smallest double
@@ -399,13 +388,10 @@ def test_duty_cycle_holds_in_every_window(fraction: float, window: float, max_in
                                           attempts: list[tuple[float, float]]) -> None:  # fmt: skip
     duty = DutyCycle(fraction, window, max_intervals=max_intervals)
     keyed: list[tuple[float, float]] = []
-    t = asked_until = 0.0
+    t = 0.0
     for gap, airtime in attempts:
-        # One transmitter: a frame starts after the last one ended.  And each question ends
-        # no earlier than the one before it: a refused longer frame followed by a shorter
-        # one at the same moment is the defect of the xfail test below.
-        t = max(t, keyed[-1][1] if keyed else 0.0, asked_until - airtime) + gap
-        asked_until = t + airtime
+        # One transmitter: a frame starts after the last one ended.
+        t = max(t, keyed[-1][1] if keyed else 0.0) + gap
         if duty.allows(t, airtime):
             duty.record(t, t + airtime)
             keyed.append((t, t + airtime))
@@ -418,11 +404,6 @@ def test_duty_cycle_holds_in_every_window(fraction: float, window: float, max_in
         assert keyed_within(merged, a, b) <= fraction * window + 1e-9, (a, b)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="terminal/power/duty.py:44: allows() forgets keyed intervals ending before now + airtime - window"
-    " even when it refuses, so a shorter frame asked for next at the same moment no longer sees them",
-)
 def test_a_refused_long_frame_does_not_make_a_shorter_one_forget_the_past() -> None:
     # 10 % of 10 s: 1 s of airtime in any 10 s window.  One second was keyed at [0, 1].
     duty = DutyCycle(0.1, 10.0)

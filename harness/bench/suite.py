@@ -285,7 +285,7 @@ def link_benchmark(hours: float = 24.0, policies: tuple[str, ...] = POLICY_NAMES
     from ionotrail.harness.channel.model import TrailSet
     from ionotrail.harness.runners.simulate import simulate
 
-    demo = scenario.load(None, [f"scenario.duration_hours={hours}"])
+    demo = scenario.load(None, [f"scenario.duration_hours={hours}", *scenario.PROTOCOL_ONLY])  # the fragment policy alone
     start = time.perf_counter()
     trails = TrailSet(demo)
     generation = time.perf_counter() - start
@@ -341,4 +341,109 @@ def format_link(report: dict[str, Any]) -> str:
         "vs open: payload delivered / open-time bound (uplink open time x bit rate, no overhead);",
         "bits/burst: payload bits per trail that carried an intact frame; speedup: simulated s per wall s.",
     ]
+    return "\n".join(lines)
+
+
+# --- power ------------------------------------------------------------------------------
+
+POWER_POLICIES = ("always-on", "fixed-duty", "adaptive")
+
+
+def _power_run(args: tuple[float, str]) -> dict[str, Any]:
+    """One power policy over the demo period (in a worker process)."""
+    from ionotrail.harness.channel import scenario
+    from ionotrail.harness.runners.simulate import simulate
+
+    days, policy = args
+    demo = scenario.load(None, [f"scenario.duration_hours={days * 24}"])
+    start = time.process_time()
+    r = simulate(demo, power_policy=policy, bounds=False).report
+    cpu = time.process_time() - start
+    e, m, lat = r["energy"], r["messages"], r["latency_s"]
+    used_wh = sum(e["consumed_wh"].values())
+    return {
+        "offered": m["offered"],
+        "delivered": m["delivered"],
+        "pending": m["pending"],
+        "abandoned": m["abandoned"],
+        "deadlines_missed": m["deadlines_missed"]["alarm"] + m["deadlines_missed"]["routine"],
+        "deadlines_missed_by_priority": m["deadlines_missed"],
+        "soc_min": e["soc_min"],
+        "soc_final": e["soc_final"],
+        "hours_below_reserve": e["hours_below_reserve"],
+        "consumed_wh": round(used_wh, 3),
+        "consumed_by_load_wh": e["consumed_wh"],
+        "harvested_wh": e["harvested_wh"],
+        "messages_per_kwh": round(m["delivered"] / (used_wh / 1000.0), 1) if used_wh > 0 else None,
+        "listen_hours": e["listen_hours"],
+        "tx_seconds": e["tx_seconds"],
+        "wasted_tx_seconds": e["wasted_tx_seconds"],
+        "latency_s": {p: {"p50": lat[p]["p50"], "p95": lat[p]["p95"], "max": lat[p]["max"]} for p in ("alarm", "routine")},
+        "cpu_seconds": round(cpu, 1),
+        "scenario": r["scenario"],
+        "seed": r["seed"],
+    }
+
+
+def power_benchmark(days: float = 365.0, policies: tuple[str, ...] = POWER_POLICIES, workers: int = 2,
+                    progress: Callable[[str], None] | None = None) -> dict[str, Any]:  # fmt: skip
+    """Every power policy over ``days`` of the demo scenario: the same trails,
+    weather and sensor (one seed), each policy in its own run (``workers``
+    processes at a time).  messages_per_kwh = messages delivered per kWh the
+    terminal consumed (every load: controller, receiver, modem, transmitter,
+    sensor); deadlines_missed counts messages delivered after their deadline,
+    still pending past it at the end, or abandoned."""
+    from concurrent.futures import ProcessPoolExecutor
+
+    start = time.perf_counter()
+    results: dict[str, dict[str, Any]] = {}
+    jobs = [(days, name) for name in policies]
+    if workers > 1 and len(jobs) > 1:
+        if progress:
+            progress(f"power, {', '.join(policies)} over {days:g} days, {min(workers, len(jobs))} at a time")
+        with ProcessPoolExecutor(max_workers=min(workers, len(jobs))) as pool:
+            for name, result in zip(policies, pool.map(_power_run, jobs), strict=True):
+                results[name] = result
+    else:
+        for job in jobs:
+            if progress:
+                progress(f"power, {job[1]}")
+            results[job[1]] = _power_run(job)
+    first = next(iter(results.values()))
+    return {
+        "python": platform.python_version(),
+        "scenario": first["scenario"],
+        "seed": first["seed"],
+        "days": days,
+        "wall_seconds": round(time.perf_counter() - start, 1),
+        "policies": results,
+    }
+
+
+def format_power(report: dict[str, Any]) -> str:
+    def s(value: float | None) -> str:
+        return "-" if value is None else f"{value:,.0f}"
+
+    lines = [
+        f"{report['scenario']}, seed {report['seed']}, {report['days']:g} days, the same channel, weather and sensor for every policy",
+        "",
+        (
+            f"{'policy':<11} {'delivered':>9} {'missed':>6} {'soc min':>7} {'used Wh':>8} {'msg/kWh':>8} {'listen h':>8}"
+            f" {'alarm p50/p95 s':>16} {'routine p50/p95 s':>18} {'cpu s':>6}"
+        ),
+    ]
+    for name, r in report["policies"].items():
+        a, rt = r["latency_s"]["alarm"], r["latency_s"]["routine"]
+        lines.append(
+            f"{name:<11} {r['delivered']:>9,} {r['deadlines_missed']:>6,} {100 * r['soc_min']:>6.1f}% {r['consumed_wh']:>8,.1f}"
+            f" {s(r['messages_per_kwh']):>8} {r['listen_hours']:>8,.0f} {s(a['p50']) + ' / ' + s(a['p95']):>16}"
+            f" {s(rt['p50']) + ' / ' + s(rt['p95']):>18} {r['cpu_seconds']:>6,.0f}"
+        )
+    policies = report["policies"]
+    if "adaptive" in policies and "fixed-duty" in policies:
+        a, f = policies["adaptive"], policies["fixed-duty"]
+        if a["messages_per_kwh"] and f["messages_per_kwh"]:
+            ratio = a["messages_per_kwh"] / f["messages_per_kwh"]
+            lines += ["", f"adaptive / fixed-duty: {ratio:.2f}x the messages per kWh, {a['deadlines_missed']:,} vs {f['deadlines_missed']:,} deadlines missed"]
+    lines.append(f"wall time {report['wall_seconds']:,.0f} s")
     return "\n".join(lines)

@@ -22,6 +22,7 @@ from ionotrail.harness.cli.common import (
 )
 
 log = logging.getLogger(__name__)
+POWER_POLICIES = ("always-on", "fixed-duty", "adaptive")  # terminal/power/scheduler.py POLICIES (imported late: startup time)
 
 
 def add_parser(commands: Any) -> None:
@@ -34,16 +35,21 @@ def add_parser(commands: Any) -> None:
             "talks through the meteor-burst channel to an emulated master that probes,\n"
             "acknowledges and reassembles.  Prints what was offered, delivered, pending and\n"
             "abandoned, the latency distribution, and how much of the channel's capacity the\n"
-            "traffic used.  The same seed replays the same run exactly.\n"
-            "Fragment policies: adaptive (default), fixed-N (N payload bytes), stop-and-wait."
+            "traffic used, and where the terminal's energy went: its battery and solar panel,\n"
+            "what it listened and transmitted, and how its power scheduler degraded service as\n"
+            "the battery fell.  The same seed replays the same run exactly.\n"
+            "Fragment policies: adaptive (default), fixed-N (N payload bytes), stop-and-wait.\n"
+            "Power policies: adaptive (default), fixed-duty, always-on (scenario power.policy)."
         ),
         epilog=SAFETY,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     add_scenario_options(p)
     p.add_argument("--policy", default="adaptive", metavar="NAME", help="fragment policy: adaptive, fixed-N (8-256) or stop-and-wait")
+    p.add_argument("--power", metavar="NAME", choices=POWER_POLICIES, help="power policy: " + ", ".join(POWER_POLICIES) + " (default: the scenario's)")
+    p.add_argument("--no-backoff", action="store_true", help="keep transmitting when frames go unacknowledged while probes arrive (no uplink gate)")
     p.add_argument("--json", metavar="FILE", help="write the report as JSON to FILE")
-    p.add_argument("--plot", metavar="FILE.png", help="draw the timeline (bursts, deliveries, queue) to a PNG file")
+    p.add_argument("--plot", metavar="FILE.png", help="draw the timeline (bursts, deliveries, queue, battery and listening) to a PNG file")
     p.add_argument("--deliveries", metavar="FILE.jsonl", help="write every delivered message to FILE, one JSON object a line")
     p.add_argument("--trace", metavar="FILE.jsonl", help="write every frame either station sent or heard to FILE (ionotrail decode --trace reads it)")
     p.set_defaults(handler=run)
@@ -113,6 +119,8 @@ def run(args: argparse.Namespace) -> int:
                 progress=(lambda done, total, delivered: show(done, f"{delivered:,} delivered")) if show else None,
                 bound_progress=bound_progress if show else None,
                 trace=trace_file,
+                power_policy=args.power,
+                uplink_backoff=False if args.no_backoff else None,
             )
     except PathError as exc:
         raise UserError(str(exc)) from None
@@ -169,5 +177,51 @@ def simulation_table(r: dict[str, Any]) -> str:
             f"  air        {fr['sent']:,} frames sent, {fr['received']:,} received intact, {fr['crc_failed']:,} failed their CRC;"
             f" {r['probes']['heard']:,} probes heard in {r['bursts']:,} bursts"
         ),
+        *energy_lines(r),
     ]
     return "\n".join(lines)
+
+
+def _pct(value: float) -> str:
+    return f"{100 * value:.1f} %"
+
+
+def energy_lines(r: dict[str, Any]) -> list[str]:
+    """The energy part of the summary: where the energy went, and what to do about it."""
+    e, lat, missed = r["energy"], r["latency_s"], r["messages"]["deadlines_missed"]
+    used = e["consumed_wh"]
+    total = sum(used.values())
+    parts = ", ".join(f"{name} {wh:,.2f}" for name, wh in sorted(used.items(), key=lambda kv: -kv[1]) if wh > 0)
+    wasted = e["wasted_tx_seconds"]
+    share = wasted / e["tx_seconds"] if e["tx_seconds"] > 0 else 0.0
+    lines = [
+        (
+            f"  energy     policy {e['policy']}: battery {_pct(e['soc_initial'])} -> {_pct(e['soc_final'])},"
+            f" lowest {_pct(e['soc_min'])} (reserve {_pct(e['reserve_soc'])}); harvested {e['harvested_wh']:,.1f} Wh, used {total:,.1f} Wh ({parts})"
+        ),
+        (
+            f"  radio      listened {e['listen_hours']:,.2f} h, transmitted {e['tx_seconds']:,.1f} s"
+            f" of which {wasted:,.1f} s ({_pct(share)}) did not arrive; uplink back-offs {e['uplink_backoffs']:,}"
+        ),
+        (
+            f"  deadlines  alarms: median {_fmt_s(lat['alarm']['p50'])}, worst {_fmt_s(lat['alarm']['max'])}, {missed['alarm']:,} missed;"
+            f" routine: median {_fmt_s(lat['routine']['p50'])}, 95 % {_fmt_s(lat['routine']['p95'])}, {missed['routine']:,} missed"
+        ),
+    ]
+    advice = []
+    if e["hours_below_reserve"] > 0:
+        advice.append(f"{e['hours_below_reserve']:,.1f} h below the reserve: a larger panel or battery, or a leaner policy, would keep routine traffic running")
+    if e["charge_refused_hours"] > 0:
+        advice.append(f"charging refused for {e['charge_refused_hours']:,.1f} h (cells below their charging temperature): insulate or heat the battery")
+    if e["unserved_wh"] > 0:
+        advice.append(f"the load disconnect opened ({e['unserved_wh']:,.2f} Wh unserved): the terminal browned out")
+    if share > 0.5 and e["tx_seconds"] > 1:
+        advice.append("most transmissions did not arrive: the uplink is the weaker direction (raise terminal power or gain, or keep the back-off on)")
+    changes = e["degradation"]
+    if changes:
+        shown = "; ".join(f"{c['at']} {c['level']} ({_pct(c['soc'])})" for c in changes[:4])
+        more = f" and {e['level_changes'] - 4:,} more" if e["level_changes"] > 4 else ""
+        hours = ", ".join(f"{level} {h:,.1f} h" for level, h in e["level_hours"].items() if h > 0)
+        lines.append(f"  service    {shown}{more}; time at each level: {hours}")
+    lines.extend(f"  note       {text}" for text in advice)
+    return lines

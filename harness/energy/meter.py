@@ -7,13 +7,23 @@ the battery up to each one with the site's harvest and temperature
 (:class:`~ionotrail.terminal.power.loads.LoadSpec`), exactly, piece by piece.
 It is the simulated terminal's fuel gauge (:meth:`EnergyMeter.gauge`) and
 the source of the report's ``energy`` section.
+
+Like a fuel gauge with threshold alerts (common practice, no source), the
+meter calls ``alert`` the moment the state of charge falls through the
+reserve or the conserve threshold, so the power scheduler decides again at
+once rather than at its next slot: after every change of load it works out,
+on the same pieces it will integrate, whether and when the current loads
+take the battery through the nearest threshold below it within
+:data:`ALERT_HORIZON_S`, and sets a timer for that instant.
 """
 
 from __future__ import annotations
 
+import asyncio
 import dataclasses
 import datetime as dt
 import math
+from collections.abc import Callable
 from typing import Any
 
 from ionotrail.harness.channel.scenario import Scenario
@@ -30,6 +40,11 @@ from ionotrail.terminal.service import MessageAbandoned, MessageQueued, PlanMade
 DEGRADATION_KEPT = 200
 """Level changes the report lists (the count goes on past it)."""
 TIMELINE_SOC_EVERY_S = 900.0
+ALERT_HORIZON_S = 900.0
+"""How far ahead a threshold crossing is looked for: a plan's longest span
+(every plan, and every change of load, looks again)."""
+ALERT_PAST_S = 1e-6
+"""The alert comes this long after the exact crossing, so the gauge reads the new side."""
 
 
 @dataclasses.dataclass
@@ -87,6 +102,14 @@ class EnergyMeter:
         self.level_changes = 0
         self._next_soc_sample = 0.0
         self._by_state = {state: self.loads.loads(state) for state in PowerState}
+        self._watts = {state: math.fsum(loads.values()) for state, loads in self._by_state.items()}
+        spec = self.battery.spec
+        self._thresholds = sorted({spec.reserve_soc * self.battery.capacity_j, spec.conserve_soc * self.battery.capacity_j})
+        self.alert: Callable[[], None] | None = None
+        """Called when the state of charge falls through a threshold (the service's replan)."""
+        self.loop: asyncio.AbstractEventLoop | None = None
+        self._alert_handle: asyncio.TimerHandle | None = None
+        self.alerts = 0
 
     def advance(self, now: float) -> None:
         """Integrate the battery up to loop time ``now``."""
@@ -112,7 +135,46 @@ class EnergyMeter:
         self.advance(now)
         return self.battery.soc
 
+    def _arm_alert(self) -> None:
+        """Set the timer for the next threshold crossing under the current loads, if within the horizon."""
+        if self._alert_handle is not None:
+            self._alert_handle.cancel()
+            self._alert_handle = None
+        if self.alert is None or self.loop is None:
+            return
+        stored = self.battery.stored_j
+        below = [level for level in self._thresholds if self.battery.floor_j < level < stored]
+        if not below:
+            return
+        level = below[-1]
+        idle = self._watts[PowerState.LISTENING if self.receiver_on else PowerState.ASLEEP]
+        tx_left = max(0.0, self.tx_until - self.t)
+        if stored - level > idle * ALERT_HORIZON_S + self._watts[PowerState.SENDING] * tx_left:
+            return  # the loads cannot take it there within the horizon
+        t, energy, efficiency, full = self.t, stored, self.battery.spec.chemistry.charge_efficiency, self.battery.capacity_j
+        for end, watts in ((self.t + tx_left, self._watts[PowerState.SENDING]), (self.t + ALERT_HORIZON_S, idle)):
+            for seconds, harvest_w, _ in self.site.pieces(t, end):
+                net = harvest_w - watts
+                if net < 0 and energy + net * seconds <= level:
+                    crossing = t + (energy - level) / -net
+                    self._alert_handle = self.loop.call_at(self.origin + crossing + ALERT_PAST_S, self._fire_alert)
+                    return
+                energy = energy + net * seconds if net < 0 else min(full, energy + net * seconds * efficiency)
+                t += seconds
+
+    def _fire_alert(self) -> None:
+        self._alert_handle = None
+        self.alerts += 1
+        assert self.alert is not None
+        self.alert()  # the service replans (reading the gauge), which re-arms through its events
+        self._arm_alert()
+
     def observe(self, now: float, event: ServiceEvent) -> None:
+        self._observe(now, event)
+        if isinstance(event, (Transmit, ReceiverSwitched, MessageQueued, MessageAbandoned, PlanMade)):
+            self._arm_alert()
+
+    def _observe(self, now: float, event: ServiceEvent) -> None:
         if isinstance(event, Transmit):
             self.advance(now)
             self.tx_until = max(self.tx_until, event.air_end - self.origin)
@@ -152,6 +214,10 @@ class EnergyMeter:
 
     def finish(self, now: float) -> None:
         """The run ends at loop time ``now``: integrate to it and close what is open."""
+        if self._alert_handle is not None:
+            self._alert_handle.cancel()
+            self._alert_handle = None
+        self.alert = None
         self.advance(now)
         if self.receiver_on:
             self._listened(self.t)
@@ -178,9 +244,11 @@ class EnergyMeter:
             "initial_wh": wh(ledger.initial_j),
             "final_wh": wh(b.stored_j),
             "ledger_error_wh": ledger.balance(b.stored_j) / JOULES_PER_WH,
+            "soc_initial": round(ledger.initial_j / b.capacity_j, 4),
             "soc_min": round(b.soc_min, 4),
             "soc_final": round(b.soc, 4),
             "reserve_soc": round(b.spec.reserve_soc, 4),
+            "conserve_soc": round(b.spec.conserve_soc, 4),
             "hours_below_reserve": round(b.below_reserve_s / 3600.0, 3),
             "listen_hours": round(self.listen_s / 3600.0, 3),
             "tx_seconds": round(self.tx_s, 3),

@@ -1,4 +1,4 @@
-"""A simulated period as a picture: bursts, deliveries and the queue, on one time axis."""
+"""A simulated period as a picture: bursts, deliveries, the queue and the battery, on one time axis."""
 
 from __future__ import annotations
 
@@ -17,7 +17,10 @@ def plot_timeline(timeline: Timeline, deliveries: list[DeliveryRecord], report: 
        terminal worked, by the Eb/N0 of the probe that opened each (red);
     2. every delivered message at its delivery time, by its latency, with the
        running count on a second axis;
-    3. messages waiting in the terminal's queue.
+    3. messages waiting in the terminal's queue;
+    4. the battery's state of charge, with its reserve and conserve thresholds,
+       the receiver's listening windows as a band under it, and each change of
+       service level (conserve, alarms only, normal) marked and named.
     """
     import matplotlib
 
@@ -27,8 +30,8 @@ def plot_timeline(timeline: Timeline, deliveries: list[DeliveryRecord], report: 
 
     hours = report["sim_seconds"] / 3600
     scale = 3600.0
-    fig, axes = plt.subplots(3, 1, figsize=(12, 8), sharex=True, gridspec_kw={"height_ratios": [3, 3, 2]})
-    top, middle, bottom = axes
+    fig, axes = plt.subplots(4, 1, figsize=(12, 10.5), sharex=True, gridspec_kw={"height_ratios": [3, 3, 2, 2.5]})
+    top, middle, bottom, power = axes
 
     if timeline.openings:
         top.scatter(
@@ -64,9 +67,30 @@ def plot_timeline(timeline: Timeline, deliveries: list[DeliveryRecord], report: 
         bottom.step([t / scale for t, _ in timeline.queue], [n for _, n in timeline.queue], where="post", color="C3")
     bottom.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
     bottom.set_ylabel("queued messages")
-    bottom.set_xlabel("hours from start")
-    bottom.set_xlim(0, hours)
     bottom.grid(alpha=0.3)
+
+    energy = timeline.energy
+    e = report["energy"]
+    if energy.soc:
+        power.plot([t / scale for t, _ in energy.soc], [100 * v for _, v in energy.soc], color="C0", label="state of charge")
+    power.axhline(100 * e["conserve_soc"], color="C1", linestyle="--", linewidth=1, label="conserve (routine batched below)")
+    power.axhline(100 * e["reserve_soc"], color="C3", linestyle="--", linewidth=1, label="reserve (alarms only below)")
+    if energy.listening:
+        power.broken_barh([(a / scale, (b - a) / scale) for a, b in energy.listening], (0, 4), color="C2", label="receiver listening")
+    for t, level in energy.levels:
+        power.axvline(t / scale, color="0.4", linewidth=0.8, linestyle=":")
+        power.annotate(level, (t / scale, 96), fontsize=7, rotation=90, va="top", ha="right", color="0.3")
+    power.set_ylim(0, 100)
+    power.set_ylabel("battery, %")
+    power.set_xlabel("hours from start")
+    power.set_xlim(0, hours)
+    power.legend(loc="lower right", fontsize=8)
+    power.set_title(
+        f"energy ({e['policy']}): harvested {e['harvested_wh']:,.1f} Wh, used {sum(e['consumed_wh'].values()):,.1f} Wh,"
+        f" listened {e['listen_hours']:,.1f} h, {e['hours_below_reserve']:,.1f} h below the reserve",
+        fontsize=9,
+    )
+    power.grid(alpha=0.3)
 
     fig.tight_layout()
     fig.savefig(path, dpi=110)

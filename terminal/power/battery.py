@@ -154,7 +154,7 @@ class Battery:
                 ledger.spilled_j += surplus_j - accepted
             ledger.harvested_j += accepted
             ledger.charge_losses_j += accepted * (1.0 - self._efficiency)
-            e1 = e0 + accepted * self._efficiency
+            e1 = min(self.capacity_j, e0 + accepted * self._efficiency)  # (capacity - e0) / eff * eff may round one ulp up
             if accepted == surplus_j:  # a straight line for the whole piece
                 self._below(e0, e1, seconds)
             else:  # rises to full, then flat
@@ -175,7 +175,8 @@ class Battery:
                 short_s = seconds - to_floor
                 ledger.unserved_j += deficit_w * short_s
                 ledger.unserved_s += short_s
-                served_fraction = 1.0 - deficit_w * short_s / (load_w * seconds)
+                demand_j = load_w * seconds
+                served_fraction = max(0.0, 1.0 - deficit_w * short_s / demand_j) if demand_j > 0 else 0.0
         consumed = ledger.consumed_j
         for name, watts in loads.items():
             consumed[name] = consumed.get(name, 0.0) + watts * seconds * served_fraction

@@ -40,8 +40,9 @@ class DutyCycle:
         return sum(max(0.0, min(e, end) - max(s, start)) for s, e in self._keyed)
 
     def allows(self, now: float, airtime: float) -> bool:
-        """May a transmission of ``airtime`` seconds start at ``now``?  (A refusal is counted.)"""
-        self._forget(now + airtime - self.window_s)
+        """May a transmission of ``airtime`` seconds start at ``now``?  (A refusal is
+        counted.)  Asking forgets nothing: a shorter frame asked for next, at the same
+        moment, still sees every keyed interval its window holds."""
         ok = airtime + self.used(now + airtime - self.window_s, now + airtime) <= self.budget_s + 1e-12
         if not ok:
             self.refusals += 1
@@ -58,7 +59,7 @@ class DutyCycle:
             keyed[-1][1] = max(keyed[-1][1], end)
         else:
             keyed.append([start, end])
-        self._forget(end - self.window_s)
+        self._forget(start - self.window_s)  # no later question can reach back before the window of ``start``
         while len(keyed) > self.max_intervals:
             first = keyed.popleft()
             keyed[0][0] = first[0]  # one interval spanning both: overstates, never understates

@@ -18,7 +18,10 @@ Layers, from the battery up:
 1. The degradation level (:mod:`.levels`, one table).  ALARMS_ONLY keeps the
    receiver off for routine traffic; CONSERVE defers routine traffic and sends
    it in batches of ``conserve_batch`` (or when a deadline or a full queue
-   presses); NORMAL leaves it to the policy.
+   presses); NORMAL leaves it to the policy, but listens whenever CONSERVE
+   would.  So every decision is monotone in the state of charge: from the
+   same state, more charge never listens less or allows less
+   (tests/test_power_model.py checks it for any state).
 2. Alarms override everything while the battery is above the absolute floor:
    the receiver goes on at once and stays on until the alarm is acknowledged.
 3. The listening policy, by name:
@@ -158,6 +161,8 @@ class PowerScheduler:
             plan = Plan(False, False, slot_end, level, _WHY_LEVEL[level])
         elif level is Level.CONSERVE:
             plan = self._batched(now, queue, s.conserve_batch, slot_end, level)
+        elif (batched := self._batched(now, queue, s.conserve_batch, slot_end, level)).listen and s.policy != "always-on":
+            plan = batched  # whatever conserving would send goes now too: more energy never listens less
         elif s.policy == "always-on":
             plan = Plan(True, True, slot_end, level, "always listening")
         elif s.policy == "fixed-duty":
@@ -211,4 +216,5 @@ class PowerScheduler:
 
     def _next_boundary(self, now: float, step: float) -> float:
         unix = self.epoch_unix + now
-        return now + (step - unix % step)
+        boundary = now + (step - unix % step)
+        return boundary if boundary > now else boundary + step  # a boundary a rounding error away is this one
