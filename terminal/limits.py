@@ -173,8 +173,9 @@ DUTY_INTERVALS_MAX = 32
 oldest two merge, which overstates airtime and so keeps the limit safe."""
 
 RATE_BINS = 24
-"""Usable-burst rate bins: one per hour of local solar time (meteor rates
-follow the Earth's rotation into the meteoroid stream)."""
+"""Usable-burst rate bins: one per hour of the day (UTC; at a fixed site local
+solar time is a shift of it, and meteor rates follow solar time: the Earth's
+rotation into the meteoroid stream)."""
 
 RATE_MEMORY_S = 10 * 3600.0
 """Listening seconds a rate bin remembers: past this its counts are scaled

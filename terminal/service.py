@@ -75,6 +75,14 @@ class MessageAbandoned:
 
 
 @dataclasses.dataclass(frozen=True, slots=True)
+class MessageEvicted:
+    """A queued routine message, never sent, dropped to make room for an alarm."""
+
+    message_id: int
+    created: float
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
 class ReceiverSwitched:
     """The receiver went on (True) or off."""
 
@@ -91,7 +99,7 @@ class PlanMade:
     soc: float
 
 
-ServiceEvent = Effect | MessageQueued | MessageAbandoned | ReceiverSwitched | PlanMade
+ServiceEvent = Effect | MessageQueued | MessageAbandoned | MessageEvicted | ReceiverSwitched | PlanMade
 Gauge = Callable[[float], float]
 """The state of charge (0 to 1) at a time on the loop's clock."""
 Observer = Callable[[float, ServiceEvent], None]
@@ -170,6 +178,10 @@ class TerminalService:
         room = sender.limits.max_queued_messages - sender.pending
         taken = self.source.take(now, room)
         for payload, priority in taken:
+            if not sender.can_queue() and priority is Priority.ALARM:
+                evicted = sender.evict_for(priority)  # an alarm is not lost to routine reports waiting their turn
+                if evicted is not None:
+                    self._tell(now, MessageEvicted(evicted[0], evicted[1]))
             if sender.can_queue():
                 message_id = sender.queue(payload, now, priority)
                 self._tell(now, MessageQueued(message_id, now, payload, priority))

@@ -111,7 +111,11 @@ def test_simulate_writes_report_deliveries_and_plot(tmp_path: object) -> None:
     assert m["offered"] == m["delivered"] + m["pending"] + m["abandoned"] and m["duplicates_delivered"] == 0
     lines = [json.loads(line) for line in (out / "d.jsonl").read_text().splitlines()]
     assert len(lines) == m["delivered"]
-    assert set(lines[0]) == {"terminal", "message_id", "created_s", "delivered_s", "latency_s", "size", "crc32c"}
+    assert set(lines[0]) == {"terminal", "message_id", "created_s", "delivered_s", "latency_s", "size", "crc32c", "priority"}
+    assert {r["priority"] for r in lines} <= {"alarm", "routine"}
+    assert "energy" in result.stdout and "deadlines" in result.stdout
+    energy = report["energy"]
+    assert abs(energy["ledger_error_wh"]) < 1e-9 and energy["policy"] == "adaptive"
     assert all(r["delivered_s"] >= r["created_s"] for r in lines)
     assert (out / "t.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 

@@ -742,7 +742,7 @@ def test_scheduler_plans_are_bounded_and_keep_routine_off_below_the_reserve(
 
 
 def test_a_closed_path_burst_raises_the_floor_and_counts_a_backoff() -> None:
-    gate = UplinkGate()  # step 1 dB, relax 0.5 dB, 6 dB an hour, max 40 dB
+    gate = UplinkGate()  # step 1 dB, relax 0.5 dB, 2 dB an hour, max 40 dB
     assert gate.allows(-100.0, 0.0)  # starts open
     gate.burst_ended(100.0, sent=3, confirmed=0, heard_after=2, first_snr_db=8.0)
     assert gate.backoffs == 1 and gate.floor_db(100.0) == 9.0
@@ -756,11 +756,11 @@ def test_a_confirmed_burst_lowers_the_floor_and_time_sinks_it() -> None:
     gate.burst_ended(0.0, sent=3, confirmed=0, heard_after=2, first_snr_db=8.0)  # 9 dB
     gate.burst_ended(0.0, sent=3, confirmed=1, heard_after=2, first_snr_db=12.0)
     assert gate.floor_db(0.0) == 8.5 and gate.backoffs == 1
-    assert gate.floor_db(1800.0) == pytest.approx(5.5)  # 6 dB an hour, half an hour
-    assert gate.floor_db(3600.0) == pytest.approx(2.5)
+    assert gate.floor_db(1800.0) == pytest.approx(7.5)  # 2 dB an hour, half an hour
+    assert gate.floor_db(3600.0) == pytest.approx(6.5)
     assert gate.floor_db(-10.0) == 8.5  # never rises going back in time
     gate.burst_ended(3600.0, sent=1, confirmed=1, heard_after=0, first_snr_db=3.0)
-    assert gate.floor_db(3600.0) == pytest.approx(2.0)
+    assert gate.floor_db(3600.0) == pytest.approx(6.0)
 
 
 def test_an_open_gate_stays_open_after_a_confirmed_burst() -> None:
@@ -774,7 +774,7 @@ def test_unknown_snr_is_allowed_and_does_not_raise_the_floor() -> None:
     gate.burst_ended(0.0, sent=3, confirmed=0, heard_after=2, first_snr_db=8.0)
     assert gate.allows(math.nan, 0.0)
     gate.burst_ended(1.0, sent=3, confirmed=0, heard_after=2, first_snr_db=math.nan)
-    assert gate.backoffs == 1 and gate.floor_db(1.0) == pytest.approx(9.0 - 6.0 / 3600.0)
+    assert gate.backoffs == 1 and gate.floor_db(1.0) == pytest.approx(9.0 - 2.0 / 3600.0)
 
 
 @pytest.mark.parametrize(("sent", "heard_after"), [(3, 0), (0, 2)])

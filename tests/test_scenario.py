@@ -170,3 +170,16 @@ def test_commands_refuse_an_unrepresentable_start_in_one_line(command: str, star
     assert result.stdout == "" and "Traceback" not in result.stderr
     lines = result.stderr.strip().splitlines()
     assert len(lines) == 1 and f"scenario.start={start}" in lines[0] and "1970-01-01T00:00:00Z to 2106-02-07T06:28:15Z" in lines[0]
+
+
+def test_the_demo_file_states_every_default() -> None:
+    # harness/demo/link.toml says its values are the defaults: every key of the
+    # schema is in it, with the schema's default.
+    import tomllib
+    from importlib import resources
+
+    text = resources.files("ionotrail.harness.demo").joinpath("link.toml").read_text(encoding="utf-8")
+    values = tomllib.loads(text)
+    for section, fields in scenario.SCHEMA.items():
+        for key, field in fields.items():
+            assert values[section][key] == field.default, f"{section}.{key}"

@@ -79,7 +79,7 @@ def _hourly_rates(value: Any) -> str | None:
     ok = isinstance(value, list) and (
         not value or (len(value) == 24 and all(isinstance(v, (int, float)) and not isinstance(v, bool) and 0 < v < 1e6 for v in value))
     )
-    return None if ok else "an empty list, or 24 positive openings per hour (hour 0 of local solar time first)"
+    return None if ok else "an empty list, or 24 positive openings per hour (UTC hour 0 first)"
 
 
 def _flag(value: Any) -> str | None:
@@ -168,7 +168,7 @@ SCHEMA: dict[str, dict[str, Field]] = {
         "tx_duty_limit": Field(0.25, "most of any sliding window the transmitter may be keyed (a thermal or regulatory limit; 1: none)", _number(0.001, 1)),
         "tx_duty_window_s": Field(60.0, "the sliding window of tx_duty_limit, s", _number(1, 86400, "s")),
         "uplink_backoff": Field(True, "stop transmitting on probes weaker than those whose frames went unacknowledged", _flag),
-        "burst_rate_prior": Field([], "openings per hour by hour of local solar time, from a channel forecast (empty: a flat 30 per hour, then learned)", _hourly_rates),
+        "burst_rate_prior": Field([], "openings per hour by UTC hour, e.g. bursts_per_hour of `ionotrail channel --json` (empty: a flat 30 per hour); then learned", _hourly_rates),
     },
     "battery": {
         "chemistry": Field("lead-acid", "cell chemistry: its floor, charge efficiency and cold-charging rule", _choice(CHEMISTRIES)),

@@ -8,7 +8,7 @@ from typing import Any
 
 from ionotrail.harness.cli.common import UserError
 
-DOCUMENTS = ("docs/wire.md", "docs/delivery.md", "docs/scenario.md", "docs/link.md", "docs/modem.md")
+DOCUMENTS = ("docs/wire.md", "docs/delivery.md", "docs/scenario.md", "docs/link.md", "docs/modem.md", "docs/power.md")
 
 
 def add_parser(commands: Any) -> None:
@@ -20,7 +20,8 @@ def add_parser(commands: Any) -> None:
             "declarations), docs/delivery.md (link limits, from terminal/limits.py),\n"
             "docs/scenario.md (scenario keys, from harness/channel/scenario.py),\n"
             "docs/link.md (the link's transition table, from terminal/link/table.py) and\n"
-            "docs/modem.md (host-modem records, from terminal/modem/records.py)."
+            "docs/modem.md (host-modem records, from terminal/modem/records.py) and\n"
+            "docs/power.md (degradation levels and battery chemistries, from terminal/power/)."
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )

@@ -76,7 +76,7 @@ def scheduler_for(scenario: Scenario, origin_unix: float, policy: str | None = N
         routine_deadline_s=e.routine_deadline_s, batch=e.batch, conserve_batch=e.conserve_batch,
     )  # fmt: skip
     prior = list(e.burst_rate_prior) if e.burst_rate_prior else 30.0
-    rates = BurstRates(prior, utc_offset_s=scenario.terminal.lon_deg / 15.0 * 3600.0)
+    rates = BurstRates(prior)  # by UTC hour, as `ionotrail channel --json` gives bursts_per_hour (a fixed site's solar hour is a shift of it)
     return PowerScheduler(settings, battery_spec(scenario), rates, epoch_unix=origin_unix)
 
 

@@ -209,6 +209,39 @@ def link_diagram() -> str:
     return "\n".join(lines) + "\n"
 
 
+def power_levels_table() -> str:
+    """The degradation table as a grid: a row per level, a column per band of the state of charge."""
+    from ionotrail.terminal.power.levels import TRANSITIONS, Band, Level
+
+    lines = ["| level \\ band | " + " | ".join(b.name for b in Band) + " |", "| --- |" + " --- |" * len(Band)]
+    for level in Level:
+        cells = [TRANSITIONS[(level, band)].name if TRANSITIONS[(level, band)] is not level else "stay" for band in Band]
+        lines.append(f"| **{level.name}** | " + " | ".join(cells) + " |")
+    lines += ["", "| band | state of charge |", "| --- | --- |"]
+    lines += [f"| `{b.name}` | {b.value} |" for b in Band]
+    lines += ["", "| level | service |", "| --- | --- |"]
+    lines += [f"| `{lv.name}` | {lv.value}: {_level_meaning(lv)} |" for lv in Level]
+    return "\n".join(lines) + "\n"
+
+
+def _level_meaning(level: object) -> str:
+    from ionotrail.terminal.power.levels import Level
+
+    doc = {Level.NORMAL: "routine traffic as the listening policy decides", Level.CONSERVE: "routine traffic deferred and sent in batches",
+           Level.ALARMS_ONLY: "the receiver is off except to send an alarm"}  # fmt: skip
+    return doc[level]  # type: ignore[index]
+
+
+def power_chemistries_table() -> str:
+    from ionotrail.terminal.power.battery import CHEMISTRIES
+
+    lines = ["| chemistry | floor (state of charge) | charge efficiency | no charging below |", "| --- | --- | --- | --- |"]
+    for c in CHEMISTRIES.values():
+        cold = "-" if c.min_charge_c is None else f"{c.min_charge_c:g} deg C"
+        lines.append(f"| `{c.name}` | {c.soc_floor:g} | {c.charge_efficiency:g} | {cold} |")
+    return "\n".join(lines) + "\n"
+
+
 def _report_table() -> str:
     from ionotrail.harness.demo.gauge import REPORT
 
@@ -231,6 +264,8 @@ GENERATORS = {name: (lambda con=con: table(con)) for name, con in SECTIONS.items
     "link-table": link_table,
     "link-diagram": link_diagram,
     "report": _report_table,
+    "power-levels": power_levels_table,
+    "power-chemistries": power_chemistries_table,
 }
 
 

@@ -38,7 +38,7 @@ from ionotrail.terminal.link.terminal import BurstEnded, BurstStarted, Duplex, L
 from ionotrail.terminal.ports import Port
 from ionotrail.terminal.power.duty import DutyCycle
 from ionotrail.terminal.power.loads import LOAD_NAMES
-from ionotrail.terminal.service import MessageAbandoned, MessageQueued, MessageSource, ServiceEvent, TerminalService
+from ionotrail.terminal.service import MessageAbandoned, MessageEvicted, MessageQueued, MessageSource, ServiceEvent, TerminalService
 from ionotrail.terminal.wire.crc import crc32c
 
 FRAME_REFUSALS = (
@@ -113,6 +113,11 @@ class _Ledger:
             self.offered += 1
             self.abandoned[event.reason] = self.abandoned.get(event.reason, 0) + 1
             self.abandoned_by_priority[event.priority] += 1
+        elif isinstance(event, MessageEvicted):
+            self.in_sender.pop(event.message_id, None)
+            priority, _ = self.queued.pop(event.message_id, (Priority.ROUTINE, 0.0))
+            self.abandoned["evicted_for_alarm"] = self.abandoned.get("evicted_for_alarm", 0) + 1
+            self.abandoned_by_priority[priority] += 1
         elif isinstance(event, MessageAcknowledged):
             self.in_sender.pop(event.message_id, None)
             self.queued.pop(event.message_id, None)

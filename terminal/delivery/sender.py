@@ -86,6 +86,7 @@ class _Outgoing:
     # acknowledgement forgot it may overlap an older one; that costs airtime only).
     in_flight: list[tuple[float, int, int]] = dataclasses.field(default_factory=list)
     last_ack: AckBlock | None = None  # the block last applied (probes repeat it)
+    on_air: bool = False  # a fragment of it was ever sent (the receiver may hold some of it)
     # Fixed at creation, as seq, priority and created are.
     wire_id: int = dataclasses.field(init=False)  # the low 16 bits of seq
     order: tuple[Priority, float, int] = dataclasses.field(init=False)  # most important first
@@ -195,6 +196,19 @@ class Sender:
             return len(self._queue)
         return sum(1 for m in self._queue.values() if m.priority is _ALARM)
 
+    def evict_for(self, priority: Priority) -> tuple[int, float] | None:
+        """Make room for a message of ``priority`` in a full queue: drop the
+        newest less important message none of which ever went on the air (so the
+        receiver holds nothing of it and cannot deliver it).  Returns its
+        (message id, creation time), or None when there is none to drop."""
+        for message in reversed(self._queue.values()):
+            if message.priority > priority and not message.on_air:
+                del self._queue[message.seq], self._by_wire_id[message.wire_id]
+                self._eligible_now = None
+                self._changed()
+                return message.wire_id, message.created
+        return None
+
     def queue_view(self) -> tuple[int, int, float | None, float | None]:
         """(alarms, routine, creation time of the oldest alarm, of the oldest routine message)."""
         alarms = routine = 0
@@ -276,6 +290,7 @@ class Sender:
         self._selection_known = False
 
     def _fragment(self, message: _Outgoing, start: int, take: int) -> Fragment:
+        message.on_air = True
         message.sent.add(start, start + take)
         self._changed()
         self.counters.payload_bytes += take

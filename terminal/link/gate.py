@@ -31,7 +31,7 @@ from ionotrail.terminal.errors import UsageError
 class UplinkGate:
     step_db: float = 1.0
     relax_db: float = 0.5
-    relax_db_per_hour: float = 6.0
+    relax_db_per_hour: float = 2.0
     max_db: float = 40.0
     level_db: float = -math.inf
     """The floor as last set, at ``since``; it sinks from there."""

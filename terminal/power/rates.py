@@ -43,8 +43,9 @@ class BurstRates:
     def per_second(self, hour: int) -> float:
         return self._heard[hour] / self._listened[hour]
 
-    def observe(self, hour: int, listened_s: float, openings: int) -> None:
-        """``openings`` heard over ``listened_s`` seconds of listening in ``hour``."""
+    def observe(self, hour: int, listened_s: float, openings: float) -> None:
+        """``openings`` heard over ``listened_s`` seconds of listening in ``hour`` (a
+        share of a count when a listening interval spans two hours)."""
         if listened_s < 0 or openings < 0:
             raise UsageError(f"cannot observe {openings!r} openings over {listened_s!r} s")
         heard, listened = self._heard[hour] + openings, self._listened[hour] + listened_s
