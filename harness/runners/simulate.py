@@ -38,7 +38,14 @@ from ionotrail.terminal.link.terminal import BurstEnded, BurstStarted, Duplex, L
 from ionotrail.terminal.ports import Port
 from ionotrail.terminal.power.duty import DutyCycle
 from ionotrail.terminal.power.loads import LOAD_NAMES
-from ionotrail.terminal.service import MessageAbandoned, MessageEvicted, MessageQueued, MessageSource, ServiceEvent, TerminalService
+from ionotrail.terminal.service import (
+    MessageAbandoned,
+    MessageEvicted,
+    MessageQueued,
+    MessageSource,
+    ServiceEvent,
+    TerminalService,
+)
 from ionotrail.terminal.wire.crc import crc32c
 
 FRAME_REFUSALS = (
