@@ -117,7 +117,10 @@ class TerminalService:
         observer: Observer | None = None,
         power: PowerScheduler | None = None,
         gauge: Gauge | None = None,
+        forecast: Gauge | None = None,
     ) -> None:
+        """``gauge(now)`` reads the state of charge; ``forecast(now)`` the harvest
+        expected over the power scheduler's next slot, mean watts (optional)."""
         if (power is None) != (gauge is None):
             raise UsageError("a power scheduler needs a gauge of the state of charge, and a gauge a scheduler")
         self.link = link
@@ -126,6 +129,7 @@ class TerminalService:
         self.observer = observer
         self.power = power
         self.gauge = gauge
+        self.forecast = forecast
         self.receiver_on = False
         self._power_timer: asyncio.TimerHandle | None = None
         self._loop: asyncio.AbstractEventLoop | None = None
@@ -207,7 +211,8 @@ class TerminalService:
         alarms, routine, oldest_alarm, oldest_routine = sender.queue_view()
         soc = gauge(now)
         queue = QueueView(alarms, routine, oldest_alarm, oldest_routine, sender.limits.max_queued_messages)
-        plan = power.decide(now, soc, queue, heard=self.link.counters.openings_heard, listening=self.receiver_on)
+        forecast_w = self.forecast(now) if self.forecast is not None else 0.0
+        plan = power.decide(now, soc, queue, heard=self.link.counters.openings_heard, listening=self.receiver_on, forecast_w=forecast_w)
         sender.hold_routine = not plan.routine
         self._tell(now, PlanMade(now, plan, soc))
         if plan.listen != self.receiver_on and (plan.listen or self.link.state is State.LISTENING):

@@ -124,10 +124,11 @@ def test_an_alarm_queued_while_energy_allows_goes_in_the_next_opening(world: mod
     queue=st.tuples(st.integers(0, 3), st.integers(0, 32), st.floats(0.0, 30000.0)),
     socs=st.tuples(st.floats(0.0, 1.0), st.floats(0.0, 1.0)),
     policy=st.sampled_from(POLICIES),
+    forecast_w=st.one_of(st.just(0.0), st.floats(0.0, 50.0)),
 )
 def test_more_charge_never_makes_a_decision_listen_or_allow_less(
     world: model.World, history: list[tuple[float, int, int, float, bool]], now_gap: float,
-    queue: tuple[int, int, float], socs: tuple[float, float], policy: str,
+    queue: tuple[int, int, float], socs: tuple[float, float], policy: str, forecast_w: float,
 ) -> None:  # fmt: skip
     # From any state the scheduler can be in (its level and learned rates, reached
     # through any history), the same moment and queue with more charge gives a
@@ -145,8 +146,8 @@ def test_more_charge_never_makes_a_decision_listen_or_allow_less(
     view = QueueView(alarms, routine, t - age if alarms else None, t - age if routine else None, 32)
     at = t + now_gap
     a, b = copy.deepcopy(power), copy.deepcopy(power)
-    poor = a.decide(at, low, view, heard=heard, listening=False)
-    rich = b.decide(at, high, view, heard=heard, listening=False)
+    poor = a.decide(at, low, view, heard=heard, listening=False, forecast_w=forecast_w)
+    rich = b.decide(at, high, view, heard=heard, listening=False, forecast_w=forecast_w)
     assert rich.listen >= poor.listen, (poor, rich)
     assert rich.routine >= poor.routine, (poor, rich)
 
@@ -184,3 +185,18 @@ def test_more_harvest_never_gives_the_adaptive_policy_less_service(world: model.
     rich = model.run(scheduler(world, "adaptive"), world, richer)
     deadlines = {"alarm_s": 900.0, "routine_s": 4 * 3600.0}
     assert model.deadlines_missed(rich, end=end, **deadlines) <= model.deadlines_missed(base, end=end, **deadlines)
+
+
+def test_a_full_battery_in_the_sun_listens_for_whatever_is_queued() -> None:
+    # Listening at 0.855 W (the default loads) from a full battery while the panel is
+    # forecast to give more than that costs the battery nothing: the surplus would be
+    # spilled.  With less sun, or less charge, the adaptive policy gathers a batch.
+    spec = BatterySpec(100.0, CHEMISTRIES["lead-acid"])
+    view = QueueView(0, 1, None, 0.0, 32)
+    settings_ = SchedulerSettings(policy="adaptive", listen_w=0.855)
+
+    def plan(soc: float, forecast_w: float) -> bool:
+        return PowerScheduler(settings_, spec, BurstRates(20.0)).decide(60.0, soc, view, heard=0, listening=False, forecast_w=forecast_w).listen
+
+    assert plan(0.99, 5.0) and plan(0.97, 0.855)
+    assert not plan(0.99, 0.5) and not plan(0.96, 5.0) and not plan(0.99, 0.0)

@@ -40,6 +40,8 @@ from ionotrail.terminal.service import MessageAbandoned, MessageQueued, PlanMade
 DEGRADATION_KEPT = 200
 """Level changes the report lists (the count goes on past it)."""
 TIMELINE_SOC_EVERY_S = 900.0
+FORECAST_S = 900.0
+"""The span of the harvest forecast the scheduler is given: its slot."""
 ALERT_HORIZON_S = 900.0
 """How far ahead a threshold crossing is looked for: a plan's longest span
 (every plan, and every change of load, looks again)."""
@@ -71,9 +73,10 @@ def scheduler_for(scenario: Scenario, origin_unix: float, policy: str | None = N
     """The terminal's power scheduler for ``scenario`` (its policy, or ``policy``);
     ``origin_unix`` is the Unix time of the loop's clock zero."""
     e = scenario.energy
+    listen_w = sum(load_spec(scenario).loads(PowerState.LISTENING).values())
     settings = SchedulerSettings(
         policy=policy or e.policy, duty=e.listen_duty, duty_period_s=e.duty_period_s, alarm_deadline_s=e.alarm_deadline_s,
-        routine_deadline_s=e.routine_deadline_s, batch=e.batch, conserve_batch=e.conserve_batch,
+        routine_deadline_s=e.routine_deadline_s, batch=e.batch, conserve_batch=e.conserve_batch, listen_w=listen_w,
     )  # fmt: skip
     prior = list(e.burst_rate_prior) if e.burst_rate_prior else 30.0
     rates = BurstRates(prior)  # by UTC hour, as `ionotrail channel --json` gives bursts_per_hour (a fixed site's solar hour is a shift of it)
@@ -130,6 +133,11 @@ class EnergyMeter:
         if timeline is not None and self.t >= self._next_soc_sample:
             timeline.soc.append((self.t, battery.soc))
             self._next_soc_sample = self.t + TIMELINE_SOC_EVERY_S
+
+    def forecast(self, now: float) -> float:
+        """The harvest the terminal expects over the next slot (mean W; see Site.forecast_w)."""
+        t = now - self.origin
+        return self.site.forecast_w(t, t + FORECAST_S)
 
     def gauge(self, now: float) -> float:
         self.advance(now)

@@ -97,6 +97,18 @@ class Site:
             yield end - t, float(harvest[k]), float(temperature[k])
             t = end
 
+    def forecast_w(self, t0: float, t1: float) -> float:
+        """The terminal's own forecast of the mean harvest over [t0, t1), W: the
+        clear-sky harvest times the climate's mean cloudiness factor (it cannot know
+        the day's clouds)."""
+        mean = self.energy.clearness_mean
+        start_unix, energy, t = self.start_unix, 0.0, t0
+        for seconds, harvest_w, _ in self.pieces(t0, t1):
+            clearness = self.clearness(int((start_unix + t) // DAY_S))
+            energy += seconds * (harvest_w / clearness * mean if clearness > 0 else 0.0)
+            t += seconds
+        return energy / (t1 - t0) if t1 > t0 else 0.0
+
     def harvest_wh(self, t0: float, t1: float) -> float:
         """The panel's energy offered over [t0, t1), Wh (used or not)."""
         return math.fsum(s * w for s, w, _ in self.pieces(t0, t1)) / 3600.0

@@ -256,7 +256,7 @@ def simulate(
             ledger.observe(now, event)
             meter.observe(now, event)
 
-        service = TerminalService(link, terminal_port, app, observer=observe, power=scheduler, gauge=meter.gauge)
+        service = TerminalService(link, terminal_port, app, observer=observe, power=scheduler, gauge=meter.gauge, forecast=meter.forecast)
         meter.loop, meter.alert = loop, service.gauge_alert
         master.start()
         for terminal, opcode, arguments in master_commands:

@@ -39,6 +39,9 @@ Layers, from the battery up:
        slot, before the deadline).  Listening energy per message is the
        receiver's power times the wait for an opening, over the messages one
        opening carries; batching raises the second, good hours shorten the first.
+       When the battery is full (:data:`FULL_SOC`) and the harvest forecast for
+       the slot exceeds the listening load, the energy would be spilled
+       anyway: it listens whenever anything is queued.
 """
 
 from __future__ import annotations
@@ -52,6 +55,9 @@ from ionotrail.terminal.power.levels import Level, classify, decide
 from ionotrail.terminal.power.rates import BurstRates
 
 POLICIES = ("always-on", "fixed-duty", "adaptive")
+FULL_SOC = 0.97
+"""At or above this state of charge, with a forecast harvest above the
+listening load, listening costs the battery nothing (the surplus would be spilled)."""
 ALARM_MARGIN_SOC = 0.001
 """An alarm runs while the state of charge is this far above the absolute floor
 (0.1 % of capacity: minutes of listening and a burst on a 100 Wh battery)."""
@@ -76,6 +82,9 @@ class SchedulerSettings:
     hysteresis: float = 0.03
     good_hour: float = 0.8
     pressure_waits: float = 4.0
+    listen_w: float = 0.855
+    """The terminal's draw while listening (controller, receiver, modem): what a
+    forecast harvest must exceed for listening to be free at a full battery."""
 
     def __post_init__(self) -> None:
         if self.policy not in POLICIES:
@@ -144,10 +153,11 @@ class PowerScheduler:
 
     # --- deciding ------------------------------------------------------------------
 
-    def decide(self, now: float, soc: float, queue: QueueView, *, heard: int, listening: bool) -> Plan:
+    def decide(self, now: float, soc: float, queue: QueueView, *, heard: int, listening: bool, forecast_w: float = 0.0) -> Plan:
         """The plan from ``now``: ``soc`` the state of charge, ``heard`` the link's
         count of openings heard so far, ``listening`` whether the receiver was on
-        since the last decision."""
+        since the last decision, ``forecast_w`` the harvest expected over the next
+        slot (mean watts; 0 when there is no forecast)."""
         self._learn(now, heard, listening)
         s, b = self.settings, self.battery
         band = classify(soc, reserve=b.reserve_soc, conserve=b.conserve_soc, hysteresis=s.hysteresis)
@@ -171,6 +181,8 @@ class PowerScheduler:
             on = phase < s.duty * period
             edge = now - phase + (s.duty * period if on else period)
             plan = Plan(on, True, min(slot_end, edge), level, "duty window" if on else "outside the duty window")
+        elif queue.routine and soc >= FULL_SOC and forecast_w >= s.listen_w:
+            plan = Plan(True, True, slot_end, level, "the battery is full and the sun gives more than listening takes")
         else:
             plan = self._adaptive(now, queue, slot_end, level)
         if changed:
