@@ -76,7 +76,9 @@ class MessageAbandoned:
 
 @dataclasses.dataclass(frozen=True, slots=True)
 class MessageEvicted:
-    """A queued routine message, never sent, dropped to make room for an alarm."""
+    """A queued routine message, never sent, dropped for an alarm: to make room
+    in a full queue, or because, held, it kept a waiting message out of the
+    duplicate window."""
 
     message_id: int
     created: float
@@ -189,6 +191,8 @@ class TerminalService:
             if sender.can_queue():
                 message_id = sender.queue(payload, now, priority)
                 self._tell(now, MessageQueued(message_id, now, payload, priority))
+                for dropped_id, created in sender.clear_the_window():
+                    self._tell(now, MessageEvicted(dropped_id, created))
             else:
                 self._tell(now, MessageAbandoned(now, len(payload), "queue_full", priority))
         if taken and self.power is not None:
@@ -214,6 +218,8 @@ class TerminalService:
         forecast_w = self.forecast(now) if self.forecast is not None else 0.0
         plan = power.decide(now, soc, queue, heard=self.link.counters.openings_heard, listening=self.receiver_on, forecast_w=forecast_w)
         sender.hold_routine = not plan.routine
+        for dropped_id, created in sender.clear_the_window():
+            self._tell(now, MessageEvicted(dropped_id, created))
         self._tell(now, PlanMade(now, plan, soc))
         if plan.listen != self.receiver_on and (plan.listen or self.link.state is State.LISTENING):
             self._switch(plan.listen, now)  # off waits for the burst's end
@@ -240,7 +246,7 @@ class TerminalService:
                     status, result = self.source.command(effect.opcode, effect.arguments)
                     self.link.reply(effect.command_id, status, result)
                 self._tell(now, effect)
-                if isinstance(effect, BurstEnded) and self.power is not None:
+                if isinstance(effect, BurstEnded) and self.power is not None and self._stopped is not None and not self._stopped.is_set():
                     self._replan()
         self._arm_link()
 

@@ -825,3 +825,50 @@ def test_holding_routine_traffic_sends_only_alarms_until_released() -> None:
     assert released is not None and released.message_id == first_routine and not released.urgent
     following = sender.next_fragment(256, 4.0)
     assert following is not None and following.message_id == second_routine
+
+
+def test_held_routine_messages_never_hold_alarms_out_of_the_id_window() -> None:
+    # Routine traffic held for weeks while alarms keep coming: each alarm takes a new
+    # id, and only ids within duplicate_window (64) of the oldest pending message may
+    # be sent.  The service calls clear_the_window after queuing (terminal/service.py):
+    # held messages at the head, never on the air, are dropped so every alarm goes.
+    from ionotrail.terminal.wire.frames import AckBlock
+
+    sender = Sender(2609, 7)
+    for k in range(10):
+        sender.queue(b"routine %d" % k, float(k))
+    sender.hold_routine = True
+    dropped = []
+    for k in range(200):
+        alarm = sender.queue(b"ALARM", 100.0 + k, Priority.ALARM)
+        dropped += sender.clear_the_window()
+        fragment = sender.next_fragment(200, 100.0 + k)
+        assert fragment is not None and fragment.message_id == alarm, f"alarm {k} could not be sent"
+        sender.on_ack(AckBlock(2609, alarm, complete=True), 100.5 + k)
+    assert len(dropped) == 10 and sender.pending == 0
+    # Without the hold nothing is dropped: the routine messages are simply sent first.
+    free = Sender(2609, 7)
+    free.queue(b"routine", 0.0)
+    assert free.clear_the_window() == []
+
+
+def test_a_routine_message_already_on_the_air_is_finished_while_held() -> None:
+    sender = Sender(2609, 7)
+    sender.queue(b"r" * 300, 0.0)
+    first = sender.next_fragment(100, 0.0)
+    assert first is not None
+    sender.hold_routine = True
+    assert sender.sendable == 1 and sender.next_fragment(100, 1.0) is not None  # begun: finished
+    sender.queue(b"later", 2.0)
+    assert sender.sendable == 1  # not begun: held
+    assert sender.evict_for(Priority.ALARM) is not None and sender.pending == 1  # the unsent one makes room
+
+
+def test_a_link_refuses_a_duty_budget_that_holds_no_frame() -> None:
+    from ionotrail.terminal.link.policy import Fixed
+    from ionotrail.terminal.link.terminal import Link
+    from ionotrail.terminal.power.duty import DutyCycle
+
+    with pytest.raises(UsageError, match="could never transmit"):
+        Link(Sender(2609, 7), Fixed(64), bit_rate=4800.0, duty=DutyCycle(0.005, 60.0))
+    Link(Sender(2609, 7), Fixed(64), bit_rate=4800.0, duty=DutyCycle(0.01, 60.0))  # 0.6 s holds a 0.443 s frame

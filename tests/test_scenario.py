@@ -183,3 +183,19 @@ def test_the_demo_file_states_every_default() -> None:
     for section, fields in scenario.SCHEMA.items():
         for key, field in fields.items():
             assert values[section][key] == field.default, f"{section}.{key}"
+
+
+@pytest.mark.parametrize(
+    ("overrides", "expected"),
+    [
+        (["power.tx_duty_limit=0.005"], "less than one 266-byte frame"),
+        (["battery.conserve=0.3"], "must be at least 0.03 apart"),
+        (["battery.reserve=0.6", "battery.conserve=0.5"], "must be below battery.conserve"),
+        (["battery.chemistry=lead-acid", "battery.initial_soc=0.3"], "below the lead-acid floor"),
+        (["power.batch=20"], "must be at most power.conserve_batch"),
+    ],
+)
+def test_power_settings_that_cannot_work_are_refused_naming_the_override(overrides: list[str], expected: str) -> None:
+    with pytest.raises(ScenarioError, match=expected) as caught:
+        scenario.load(None, overrides)
+    assert "\n" not in str(caught.value)

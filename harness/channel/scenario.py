@@ -20,8 +20,12 @@ from pathlib import Path
 from typing import Any
 
 from ionotrail.harness.demo.gauge import REPORT_HEADER
+from ionotrail.terminal.limits import MAX_FRAME_BYTES
 from ionotrail.terminal.power.battery import CHEMISTRIES
-from ionotrail.terminal.power.scheduler import POLICIES
+from ionotrail.terminal.power.scheduler import POLICIES, SchedulerSettings
+
+HYSTERESIS_SOC = SchedulerSettings().hysteresis
+"""The scheduler's hysteresis (state of charge) between its reserve and conserve thresholds."""
 
 
 class ScenarioError(ValueError):
@@ -406,6 +410,22 @@ def _build(m: dict[str, dict[str, Any]], origin: str, given: dict[str, str] | No
     if not b["initial_soc"] >= floor:
         where = " and ".join(dict.fromkeys(given.get(k, origin) for k in ("battery.initial_soc", "battery.chemistry")))
         raise ScenarioError(f"{where}: battery.initial_soc = {b['initial_soc']!r} is below the {b['chemistry']} floor {floor}")
+    pw = m["power"]
+    longest_s = 8 * MAX_FRAME_BYTES / float(m["link"]["bit_rate"])
+    if pw["tx_duty_limit"] < 1 and pw["tx_duty_limit"] * pw["tx_duty_window_s"] < longest_s:
+        where = " and ".join(dict.fromkeys(given.get(k, origin) for k in ("power.tx_duty_limit", "power.tx_duty_window_s", "link.bit_rate")))
+        raise ScenarioError(
+            f"{where}: power.tx_duty_limit = {pw['tx_duty_limit']!r} of power.tx_duty_window_s = {pw['tx_duty_window_s']!r} s"
+            f" is {pw['tx_duty_limit'] * pw['tx_duty_window_s']:.3f} s of airtime, less than one {MAX_FRAME_BYTES}-byte frame"
+            f" ({longest_s:.3f} s at link.bit_rate = {m['link']['bit_rate']!r}): the terminal could never transmit"
+        )
+    gap = (b["conserve"] - b["reserve"]) * (1 - floor)
+    if gap < HYSTERESIS_SOC:
+        where = " and ".join(dict.fromkeys(given.get(k, origin) for k in ("battery.reserve", "battery.conserve")))
+        raise ScenarioError(
+            f"{where}: battery.reserve = {b['reserve']!r} and battery.conserve = {b['conserve']!r} are {gap:.3f} of charge apart"
+            f" on {b['chemistry']}; they must be at least {HYSTERESIS_SOC} apart (the levels' hysteresis)"
+        )
     if not m["power"]["batch"] <= m["power"]["conserve_batch"]:
         raise ScenarioError(f"{origin}: power.batch = {m['power']['batch']!r} must be at most power.conserve_batch = {m['power']['conserve_batch']!r}")
     return Scenario(

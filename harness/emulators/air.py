@@ -236,8 +236,9 @@ class Air:
         advance = getattr(loop, "advance_if_idle", None)
         quiet_until = getattr(loop, "quiet_until", None)
         while True:
-            if quiet_until is not None and self._may_reckon():
-                self._reckon(quiet_until() - self.origin)  # type: ignore[operator]
+            quiet = quiet_until() - self.origin if quiet_until is not None else -math.inf  # type: ignore[operator]
+            if quiet > end and self._may_reckon():  # something else is due first: this probe alone
+                self._reckon(quiet)
             else:
                 self._one_probe(emit, end)
                 port.probe_count += 1

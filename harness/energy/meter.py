@@ -150,6 +150,7 @@ class EnergyMeter:
             self._alert_handle = None
         if self.alert is None or self.loop is None:
             return
+        self.advance(self.loop.time())  # predict from now, not from the last event
         stored = self.battery.stored_j
         below = [level for level in self._thresholds if self.battery.floor_j < level < stored]
         if not below:
@@ -159,15 +160,19 @@ class EnergyMeter:
         tx_left = max(0.0, self.tx_until - self.t)
         if stored - level > idle * ALERT_HORIZON_S + self._watts[PowerState.SENDING] * tx_left:
             return  # the loads cannot take it there within the horizon
-        t, energy, efficiency, full = self.t, stored, self.battery.spec.chemistry.charge_efficiency, self.battery.capacity_j
+        chemistry = self.battery.spec.chemistry
+        t, energy, full = self.t, stored, self.battery.capacity_j
         for end, watts in ((self.t + tx_left, self._watts[PowerState.SENDING]), (self.t + ALERT_HORIZON_S, idle)):
-            for seconds, harvest_w, _ in self.site.pieces(t, end):
+            for seconds, harvest_w, temperature_c in self.site.pieces(t, end):
                 net = harvest_w - watts
                 if net < 0 and energy + net * seconds <= level:
                     crossing = t + (energy - level) / -net
                     self._alert_handle = self.loop.call_at(self.origin + crossing + ALERT_PAST_S, self._fire_alert)
                     return
-                energy = energy + net * seconds if net < 0 else min(full, energy + net * seconds * efficiency)
+                if net < 0:
+                    energy += net * seconds
+                elif chemistry.min_charge_c is None or temperature_c >= chemistry.min_charge_c:  # as Battery.run: cold cells refuse charge
+                    energy = min(full, energy + net * seconds * chemistry.charge_efficiency)
                 t += seconds
 
     def _fire_alert(self) -> None:

@@ -302,20 +302,34 @@ def simulate(
     return Simulation(report, deliveries, timeline, link, master, air, meter)
 
 
+def _unique(deliveries: list[DeliveryRecord]) -> list[DeliveryRecord]:
+    """Each delivered message once (the first delivery of any duplicate)."""
+    seen: dict[tuple[int, int, int, float | None], int] = {}
+    for record in deliveries:
+        key = (record.terminal, record.message_id, record.crc32c, record.created_s)
+        seen[key] = seen.get(key, 0) + 1
+    return [r for r in deliveries if seen.pop((r.terminal, r.message_id, r.crc32c, r.created_s), 0)]
+
+
 def _deadlines(report: dict[str, Any], scenario: Scenario, ledger: _Ledger, deliveries: list[DeliveryRecord], link: Link, end: float) -> None:
-    """Latency by priority, and deadlines missed: delivered late, still pending
-    past the deadline at the end, or abandoned."""
+    """Latency by priority, and deadlines missed: delivered late, still waiting
+    (not delivered) past the deadline at the end, or abandoned.  Each message
+    counts once: duplicates are left out, and a message the master delivered
+    whose final acknowledgement the terminal has not heard is delivered."""
     e = scenario.energy
     deadline = {"alarm": e.alarm_deadline_s, "routine": e.routine_deadline_s}
     latencies: dict[str, list[float]] = {"alarm": [], "routine": []}
-    for r in deliveries:
+    unique = _unique(deliveries)
+    for r in unique:
         if r.created_s is not None:
             latencies[r.priority].append(r.delivered_s - r.created_s)
     missed = {name: sum(1 for v in values if v > deadline[name]) for name, values in latencies.items()}
+    delivered = {(r.message_id, r.crc32c) for r in unique}
     pending = {wire_id for wire_id, *_ in link.sender.outstanding()}
     for wire_id, (priority, created) in ledger.queued.items():
         name = PRIORITY_NAMES[priority]
-        if wire_id in pending and end - (created - ledger.origin) > deadline[name]:
+        waiting = wire_id in pending and (wire_id, ledger.in_sender.get(wire_id)) not in delivered
+        if waiting and end - (created - ledger.origin) > deadline[name]:
             missed[name] += 1
     for priority, count in ledger.abandoned_by_priority.items():
         missed[PRIORITY_NAMES[priority]] += count
@@ -403,11 +417,7 @@ def period_figures(trail_set: TrailSet, *, until: float, limits: Limits = DEFAUL
 
 def _report(scenario: Scenario, policy: str, figures: PeriodFigures | None, air: Air, master: MasterStation, link: Link, ledger: _Ledger,
             deliveries: list[DeliveryRecord], wall: float, sim_seconds: float) -> dict[str, Any]:
-    seen: dict[tuple[int, int, int, float | None], int] = {}
-    for record in deliveries:
-        key = (record.terminal, record.message_id, record.crc32c, record.created_s)
-        seen[key] = seen.get(key, 0) + 1
-    unique = [r for r in deliveries if seen.pop((r.terminal, r.message_id, r.crc32c, r.created_s), 0)]
+    unique = _unique(deliveries)
     duplicates = len(deliveries) - len(unique)
     delivered_ids = {(r.message_id, r.crc32c) for r in unique}
     # Pending is read from the sender's own queue, not from the ledger: a message

@@ -178,8 +178,10 @@ class Sender:
 
     @property
     def hold_routine(self) -> bool:
-        """While True, routine messages stay queued but are not sent (the power
-        scheduler defers them); alarms go as before."""
+        """While True, routine messages not yet begun stay queued but are not sent
+        (the power scheduler defers them); alarms go as before, and so does a
+        routine message already on the air (finishing it keeps its id moving
+        out of the receiver's window)."""
         return self._hold_routine
 
     @hold_routine.setter
@@ -194,20 +196,44 @@ class Sender:
         """Pending messages that may be sent now (all of them unless routine traffic is held)."""
         if not self._hold_routine:
             return len(self._queue)
-        return sum(1 for m in self._queue.values() if m.priority is _ALARM)
+        return sum(1 for m in self._queue.values() if not self._held(m))
+
+    def _held(self, message: _Outgoing) -> bool:
+        return self._hold_routine and message.priority is not _ALARM and not message.on_air
+
+    def _drop(self, message: _Outgoing) -> tuple[int, float]:
+        del self._queue[message.seq], self._by_wire_id[message.wire_id]
+        self._eligible_now = None
+        self._changed()
+        return message.wire_id, message.created
 
     def evict_for(self, priority: Priority) -> tuple[int, float] | None:
         """Make room for a message of ``priority`` in a full queue: drop the
-        newest less important message none of which ever went on the air (so the
-        receiver holds nothing of it and cannot deliver it).  Returns its
-        (message id, creation time), or None when there is none to drop."""
-        for message in reversed(self._queue.values()):
+        oldest less important message none of which ever went on the air (so the
+        receiver holds nothing of it and cannot deliver it; the oldest, because it
+        is the stalest and holds the id window back).  Returns its (message id,
+        creation time), or None when there is none to drop."""
+        for message in self._queue.values():
             if message.priority > priority and not message.on_air:
-                del self._queue[message.seq], self._by_wire_id[message.wire_id]
-                self._eligible_now = None
-                self._changed()
-                return message.wire_id, message.created
+                return self._drop(message)
         return None
+
+    def clear_the_window(self) -> list[tuple[int, float]]:
+        """While routine traffic is held, drop held routine messages (never on
+        the air) at the head of the queue that keep a waiting message outside the
+        duplicate window: only ids within ``duplicate_window`` of the oldest
+        pending one may be sent, and a held message would otherwise hold every
+        alarm behind it for as long as the hold lasts.  Sent later, such a message
+        would be older than the receiver's window and refused anyway.  Returns
+        the (message id, creation time) of each dropped."""
+        dropped: list[tuple[int, float]] = []
+        span = self.limits.duplicate_window
+        while self._hold_routine and self._queue:
+            oldest = next(iter(self._queue.values()))
+            if not self._held(oldest) or not any(m.seq - oldest.seq >= span and not self._held(m) for m in self._queue.values()):
+                break
+            dropped.append(self._drop(oldest))
+        return dropped
 
     def queue_view(self) -> tuple[int, int, float | None, float | None]:
         """(alarms, routine, creation time of the oldest alarm, of the oldest routine message)."""
@@ -256,7 +282,7 @@ class Sender:
             if self._queue:
                 oldest = next(iter(self._queue))
                 span = self.limits.duplicate_window
-                ready = [m for m in self._queue.values() if m.seq - oldest < span and (m.priority is _ALARM or not self._hold_routine)]
+                ready = [m for m in self._queue.values() if m.seq - oldest < span and not self._held(m)]
                 ready.sort(key=_order)
             self._eligible_now = ready[: self.limits.max_partials_per_source]
         return self._eligible_now

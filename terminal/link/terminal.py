@@ -169,6 +169,11 @@ class Link:
         self.gate = gate
         self.duty = duty
         self._max_airtime = self._airtime(MAX_FRAME_BYTES)  # what the duty check reserves for the next frame
+        if duty is not None and duty.budget_s < self._max_airtime:
+            raise UsageError(
+                f"a duty-cycle budget of {duty.budget_s:g} s per {duty.window_s:g} s cannot hold one {MAX_FRAME_BYTES}-byte frame"
+                f" ({self._max_airtime:.3f} s at {self.bit_rate:g} bit/s): the terminal could never transmit"
+            )
         self._last_snr = float("nan")  # Eb/N0 of the last probe heard
         # The burst in progress, for the gate: its first probe's Eb/N0, pieces confirmed,
         # probes heard after its first frame left the antenna (plus the ack margin).
