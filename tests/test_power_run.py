@@ -122,3 +122,18 @@ def test_a_channel_forecast_seeds_the_burst_rates() -> None:
     for hour, rate in enumerate(hourly):
         assert power.rates.per_second(hour) * 3600.0 == pytest.approx(rate)
     assert invariant_holds(simulate(seeded, bounds=False).report)
+
+
+def test_cloudiness_is_drawn_per_day_for_any_date() -> None:
+    """Each UTC day's cloudiness factor is keyed by its day number, so it does not
+    depend on which days were asked for first, and days before 1970 (negative day
+    numbers) have factors of their own rather than an error."""
+    from ionotrail.harness.energy.site import Site
+
+    s = scenarios.load(None, [])
+    site, other = Site(s), Site(s)
+    days = [-3653, -1, 0, 1, 20000, 20001]
+    forwards = [site.clearness(d) for d in days]
+    backwards = [other.clearness(d) for d in reversed(days)][::-1]
+    assert forwards == backwards
+    assert len(set(forwards)) == len(days) and all(0.0 < c < 1.0 for c in forwards)

@@ -53,7 +53,9 @@ class Site:
         mean = self.energy.clearness_mean
         if mean >= 1.0:
             return 1.0
-        rng = np.random.default_rng(np.random.SeedSequence(self.seed, spawn_key=(ENERGY_STREAM, day)))
+        # a spawn key holds non-negative integers: days before 1970 take a key of their own shape
+        key = (ENERGY_STREAM, day) if day >= 0 else (ENERGY_STREAM, -day, 1)
+        rng = np.random.default_rng(np.random.SeedSequence(self.seed, spawn_key=key))
         return float(rng.beta(mean * CLEARNESS_CONCENTRATION, (1.0 - mean) * CLEARNESS_CONCENTRATION))
 
     def _day(self, day: int) -> tuple[np.ndarray, np.ndarray]:
