@@ -8,11 +8,11 @@ from pathlib import Path
 TERMINAL = Path(__file__).resolve().parent.parent / "terminal"
 FORBIDDEN = {
     "asyncio", "socket", "serial", "time", "random", "os", "selectors", "threading", "datetime",
-    "subprocess", "pathlib", "secrets", "uuid", "signal", "shutil", "tempfile", "glob", "logging",
+    "subprocess", "pathlib", "secrets", "uuid", "signal", "shutil", "tempfile", "glob", "logging", "sqlite3",
 }
 BUILTINS_THAT_DO_IO = {"open", "print", "input"}
-# The service and port adapters bind the core to the outside world; they alone may.
-SHELL = {"service.py", "ports"}
+# The service, port adapters and stores bind the core to the outside world; they alone may.
+SHELL = {"service.py", "ports", "stores"}
 
 
 def _core_modules() -> list[Path]:

@@ -1,0 +1,1 @@
+"""Durability: what must survive a power cut, as records the core asks a store to keep."""

@@ -1,0 +1,86 @@
+"""A store in an SQLite file: what a terminal or master on a real port keeps across power cuts.
+
+WAL journal with ``synchronous=FULL``: every commit syncs the WAL, so a
+commit that has returned survives a power cut (with ``NORMAL`` the last
+commits may roll back; sqlite.org, "PRAGMA synchronous" and "Write-Ahead
+Logging").  Each :class:`~ionotrail.terminal.outbox.store.Batch` is one
+transaction (``BEGIN IMMEDIATE`` ... ``COMMIT``): its records are all there
+after a crash or none is.  Records live in ``records(key, value)``, the log
+in ``log(position, entry)``; the file carries ``user_version`` 1 and an
+``application_id`` so that a file of anything else is refused.
+"""
+
+from __future__ import annotations
+
+import os
+import sqlite3
+
+from ionotrail.terminal.errors import UsageError
+from ionotrail.terminal.outbox.store import Batch
+
+APPLICATION_ID = 0x696F6E74  # "iont"
+SCHEMA_VERSION = 1
+
+
+class SqliteStore:
+    """Records and log in one SQLite file, opened (and created if absent) at ``path``."""
+
+    def __init__(self, path: str | os.PathLike[str]) -> None:
+        self.path = os.fspath(path)
+        self._writes = 0
+        try:
+            self._db = sqlite3.connect(self.path, isolation_level=None)  # transactions are explicit
+            self._prepare()
+        except sqlite3.DatabaseError as exc:
+            raise UsageError(f"{self.path}: not a store this program can use ({exc})") from None
+
+    def _prepare(self) -> None:
+        db = self._db
+        application_id = db.execute("PRAGMA application_id").fetchone()[0]
+        version = db.execute("PRAGMA user_version").fetchone()[0]
+        tables = {row[0] for row in db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+        if application_id == 0 and version == 0 and not tables:  # a new file
+            db.execute("PRAGMA journal_mode = WAL")
+            db.execute("BEGIN IMMEDIATE")
+            db.execute("CREATE TABLE records (key TEXT PRIMARY KEY, value BLOB NOT NULL) WITHOUT ROWID")
+            db.execute("CREATE TABLE log (position INTEGER PRIMARY KEY, entry BLOB NOT NULL)")
+            db.execute(f"PRAGMA application_id = {APPLICATION_ID}")
+            db.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
+            db.execute("COMMIT")
+        elif application_id != APPLICATION_ID:
+            raise UsageError(f"{self.path}: an SQLite file, but not an ionotrail store (application_id {application_id:#x})")
+        elif version != SCHEMA_VERSION:
+            raise UsageError(f"{self.path}: store version {version}; this program reads version {SCHEMA_VERSION}")
+        mode = db.execute("PRAGMA journal_mode = WAL").fetchone()[0]
+        if mode != "wal":
+            raise UsageError(f"{self.path}: the store needs write-ahead logging, and SQLite gave journal mode {mode!r}")
+        db.execute("PRAGMA synchronous = FULL")
+
+    @property
+    def writes(self) -> int:
+        return self._writes
+
+    def load(self) -> dict[str, bytes]:
+        return {key: bytes(value) for key, value in self._db.execute("SELECT key, value FROM records")}
+
+    def commit(self, batch: Batch) -> None:
+        if not batch:
+            return
+        db = self._db
+        db.execute("BEGIN IMMEDIATE")
+        try:
+            db.executemany("DELETE FROM records WHERE key = ?", [(key,) for key in sorted(batch.deletes)])
+            db.executemany("INSERT OR REPLACE INTO records (key, value) VALUES (?, ?)", sorted(batch.puts.items()))
+            db.executemany("INSERT INTO log (entry) VALUES (?)", [(entry,) for entry in batch.appends])
+        except BaseException:
+            db.execute("ROLLBACK")
+            raise
+        db.execute("COMMIT")
+        self._writes += 1
+
+    def log_after(self, position: int, limit: int) -> list[tuple[int, bytes]]:
+        rows = self._db.execute("SELECT position, entry FROM log WHERE position > ? ORDER BY position LIMIT ?", (position, limit))
+        return [(int(p), bytes(e)) for p, e in rows]
+
+    def close(self) -> None:
+        self._db.close()
