@@ -138,8 +138,6 @@ def cobs_encoded_max(payload_len: int) -> int:
     return payload_len + payload_len // 254 + 1
 
 
-
-
 # --- the serial port to a modem (terminal/ports/serial.py) ---------------------
 
 BACKOFF_INITIAL_S = 0.1
@@ -181,6 +179,21 @@ RATE_MEMORY_S = 10 * 3600.0
 """Listening seconds a rate bin remembers: past this its counts are scaled
 down together, so the rate follows the season (ten hours of listening per
 hour of the day, a few weeks at a modest duty cycle)."""
+
+# --- durable records (terminal/outbox) ----------------------------------------
+
+STORE_RECORD_VERSION = 1
+"""First byte of every record the core asks a store to keep."""
+
+ID_RESERVATION = 16
+"""Message ids reserved per write of the id counter (RFC 4303 s5 style: before
+using ids at or above the saved ceiling R, the outbox saves R + 16; after a
+reboot it goes on from the saved value).  A reboot wastes at most 16 ids, well
+inside the receiver's duplicate window, and the counter is rewritten once per
+16 messages instead of with every one."""
+
+MAX_DELIVERY_EXPORT = 256
+"""Log entries read from a store at a time when catching up an export."""
 
 # --- link limits (per deployment, overridable) --------------------------------
 
@@ -335,3 +348,46 @@ def _within(name: str, value: int, low: int, high: int) -> None:
 
 
 DEFAULT_LIMITS = Limits()
+
+
+# --- authentication (terminal/auth, docs/keys.md) -----------------------------
+
+AUTH_KEY_BYTES = 32
+"""Every secret: the site secret, a terminal's root key and each working key.
+HMAC-SHA-256 keys of the hash's output length (RFC 2104 s3: less than L
+bytes is discouraged, more adds nothing), and HKDF-SHA256's output length."""
+
+AUTH_TAG_BYTES = 8
+"""Truncated HMAC-SHA-256 tag on an authenticated frame (64 bits).  RFC 2104
+s5 asks for at least half the hash (128 bits) and at least 80 bits, shorter
+only with a risk analysis; docs/keys.md gives it: a forgery succeeds with
+probability 2^-64 per try, failed checks are counted, and the radio carries
+a few frames a second at most, so 2^64 tries outlast any deployment."""
+
+AUTH_MIN_TAG_BYTES = 8
+"""Shortest tag a deployment may choose: the risk analysis of docs/keys.md
+holds for 64 bits and no fewer."""
+
+AUTH_REPLAY_WINDOW = 64
+"""Authenticated frames a receiver remembers per stream, as an RFC 4303
+anti-replay window (s3.4.3: 32 must be supported, 64 is the usual default);
+8 bytes of bitmap per stream."""
+
+AUTH_MAX_REPLAY_WINDOW = 1024
+"""Largest anti-replay window a deployment may choose (128 bytes of bitmap);
+RFC 6479 uses windows this large for links that reorder thousands of packets."""
+
+AUTH_COUNTER_BITS = 32
+"""Frame counters travel in full, 32 bits, and never wrap within one key
+epoch: at one authenticated frame a second they last 136 years; a sender
+that reaches the end must rotate to a new epoch first."""
+
+AUTH_COUNTER_RESERVE = 256
+"""Counters a sender reserves with one durable write (K of RFC 4303 s5): it
+saves R + K before sending counter R, and after a reboot continues from the
+saved value, so each reboot wastes at most 256 counters and the flash sees
+one write per 256 frames sent."""
+
+AUTH_EPOCH_BITS = 16
+"""Key epochs are 16 bits: a rotation a day for 179 years.  A site that
+reaches the last epoch issues a new site secret."""

@@ -17,6 +17,13 @@ sender while the plan defers it.  The state of charge comes from a *gauge*
 the caller supplies (a fuel gauge on a real terminal, the energy model in a
 simulation).  Without a scheduler the receiver is always on.
 
+Every message passes through a durable :class:`~ionotrail.terminal.outbox.outbox.Outbox`
+on a :class:`~ionotrail.terminal.outbox.store.Store` (in memory unless the
+caller gives one): a message is queued, and reported queued, only once its
+commit has returned, and after every frame or timer the records catch up
+with what the acknowledgements changed.  At the start the service takes up
+what the store kept from an earlier run (:class:`MessagesRestored`).
+
 The timer is re-armed lazily: when the link's deadline moves later (every
 probe pushes the silence deadline), the armed timer is left alone, fires
 early, finds nothing due and is armed again.  That keeps the loop to about
@@ -34,8 +41,11 @@ from ionotrail.terminal.delivery.sender import Priority
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.link.table import State
 from ionotrail.terminal.link.terminal import Arrival, BurstEnded, CommandArrived, Effect, Link, Transmit
+from ionotrail.terminal.outbox.outbox import Outbox
+from ionotrail.terminal.outbox.store import Store
 from ionotrail.terminal.ports import Port
 from ionotrail.terminal.power.scheduler import Plan, PowerScheduler, QueueView
+from ionotrail.terminal.stores.memory import MemoryStore
 from ionotrail.terminal.wire.formats import ReplyStatus
 
 
@@ -62,6 +72,15 @@ class MessageQueued:
     created: float
     payload: bytes
     priority: Priority
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class MessagesRestored:
+    """At the start: the messages the store kept from an earlier run are queued
+    again, and new ids go on from ``next_id`` (unwrapped)."""
+
+    count: int
+    next_id: int
 
 
 @dataclasses.dataclass(frozen=True, slots=True)
@@ -101,7 +120,7 @@ class PlanMade:
     soc: float
 
 
-ServiceEvent = Effect | MessageQueued | MessageAbandoned | MessageEvicted | ReceiverSwitched | PlanMade
+ServiceEvent = Effect | MessageQueued | MessagesRestored | MessageAbandoned | MessageEvicted | ReceiverSwitched | PlanMade
 Gauge = Callable[[float], float]
 """The state of charge (0 to 1) at a time on the loop's clock."""
 Observer = Callable[[float, ServiceEvent], None]
@@ -120,9 +139,11 @@ class TerminalService:
         power: PowerScheduler | None = None,
         gauge: Gauge | None = None,
         forecast: Gauge | None = None,
+        store: Store | None = None,
     ) -> None:
         """``gauge(now)`` reads the state of charge; ``forecast(now)`` the harvest
-        expected over the power scheduler's next slot, mean watts (optional)."""
+        expected over the power scheduler's next slot, mean watts (optional);
+        ``store`` keeps the outbox (default: in memory, nothing survives)."""
         if (power is None) != (gauge is None):
             raise UsageError("a power scheduler needs a gauge of the state of charge, and a gauge a scheduler")
         self.link = link
@@ -132,6 +153,9 @@ class TerminalService:
         self.power = power
         self.gauge = gauge
         self.forecast = forecast
+        self.store: Store = store if store is not None else MemoryStore()
+        self.outbox = Outbox(link.sender)
+        self._kept_version = link.sender.durable_version
         self.receiver_on = False
         self._power_timer: asyncio.TimerHandle | None = None
         self._loop: asyncio.AbstractEventLoop | None = None
@@ -143,6 +167,9 @@ class TerminalService:
         """Serve until :meth:`stop`, or until the loop's clock reaches ``until``."""
         self._loop = loop = asyncio.get_running_loop()
         self._stopped = asyncio.Event()
+        kept = self.outbox.restore(self.store.load(), loop.time())
+        self._kept_version = self.link.sender.durable_version
+        self._tell(loop.time(), MessagesRestored(kept.messages, kept.next_seq))
         self.port.attach(self._arrived)
         if self.power is None:
             self._switch(True, loop.time())
@@ -189,10 +216,13 @@ class TerminalService:
                 if evicted is not None:
                     self._tell(now, MessageEvicted(evicted[0], evicted[1]))
             if sender.can_queue():
-                message_id = sender.queue(payload, now, priority)
+                batch = self.outbox.accept(payload, priority, now)
+                self.store.commit(batch)  # accepted only once durable
+                message_id = self.outbox.committed(batch)
                 self._tell(now, MessageQueued(message_id, now, payload, priority))
                 for dropped_id, created in sender.clear_the_window():
                     self._tell(now, MessageEvicted(dropped_id, created))
+                self._keep()
             else:
                 self._tell(now, MessageAbandoned(now, len(payload), "queue_full", priority))
         if taken and self.power is not None:
@@ -220,6 +250,7 @@ class TerminalService:
         sender.hold_routine = not plan.routine
         for dropped_id, created in sender.clear_the_window():
             self._tell(now, MessageEvicted(dropped_id, created))
+        self._keep()
         self._tell(now, PlanMade(now, plan, soc))
         if plan.listen != self.receiver_on and (plan.listen or self.link.state is State.LISTENING):
             self._switch(plan.listen, now)  # off waits for the burst's end
@@ -248,7 +279,17 @@ class TerminalService:
                 self._tell(now, effect)
                 if isinstance(effect, BurstEnded) and self.power is not None and self._stopped is not None and not self._stopped.is_set():
                     self._replan()
+        if self.link.sender.durable_version != self._kept_version:  # acknowledgements change records, with or without effects
+            self._keep()
         self._arm_link()
+
+    def _keep(self) -> None:
+        """Bring the outbox's records up to date with the sender (cheap when nothing changed)."""
+        batch = self.outbox.changes()
+        if batch:
+            self.store.commit(batch)
+            self.outbox.committed(batch)
+        self._kept_version = self.link.sender.durable_version
 
     def _tell(self, now: float, event: ServiceEvent) -> None:
         if self.observer is not None:

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import json
 import math
 import signal
 import sys
@@ -16,13 +17,23 @@ DIALECT_HELP = "host-modem dialect: ionotrail (default; docs/modem.md) or kiss"
 
 
 def _common(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--port", required=True, metavar="URL", help="the modem: a device path, a pseudo-terminal, socket://HOST:PORT")
+    p.add_argument(
+        "--port", required=True, metavar="URL", help="the modem: a device path, a pseudo-terminal, socket://HOST:PORT"
+    )
     p.add_argument("--dialect", default="ionotrail", metavar="NAME", help=DIALECT_HELP)
-    p.add_argument("--scenario", metavar="FILE", help="scenario file (TOML) for addresses, frequencies, bit rate, power; default: the demo link")
+    p.add_argument(
+        "--scenario",
+        metavar="FILE",
+        help="scenario file (TOML) for addresses, frequencies, bit rate, power; default: the demo link",
+    )
     p.add_argument("--set", action="append", metavar="KEY=VALUE", help="override a scenario value (repeatable)")
     p.add_argument("--seed", type=int, help="seed (overrides scenario.seed)")
     p.add_argument("--duration", type=float, metavar="S", help="stop after S seconds (default: run until interrupted)")
-    p.add_argument("--trace", metavar="FILE.jsonl", help="write every frame sent or heard to FILE (ionotrail decode --trace reads it)")
+    p.add_argument(
+        "--trace",
+        metavar="FILE.jsonl",
+        help="write every frame sent or heard to FILE (ionotrail decode --trace reads it)",
+    )
 
 
 def add_parser(commands: Any) -> None:
@@ -38,8 +49,20 @@ def add_parser(commands: Any) -> None:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     _common(p)
-    p.add_argument("--policy", default="adaptive", metavar="NAME", help="fragment policy: adaptive, fixed-N or stop-and-wait")
+    p.add_argument(
+        "--policy", default="adaptive", metavar="NAME", help="fragment policy: adaptive, fixed-N or stop-and-wait"
+    )
     p.add_argument("--every", type=float, metavar="S", help="report every S seconds (default: every 15 minutes)")
+    p.add_argument(
+        "--outbox",
+        metavar="FILE",
+        help="keep the outbox in this SQLite file, so that a power cut loses no accepted message (default: in memory)",
+    )
+    p.add_argument(
+        "--accepted",
+        metavar="FILE.jsonl",
+        help="append one JSON line to FILE for every message accepted into the outbox",
+    )
     p.set_defaults(handler=run_serve)
     p = commands.add_parser(
         "master",
@@ -53,7 +76,18 @@ def add_parser(commands: Any) -> None:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     _common(p)
-    p.add_argument("--deliveries", metavar="FILE.jsonl", help="write every delivered message to FILE, one JSON object a line")
+    p.add_argument(
+        "--deliveries", metavar="FILE.jsonl", help="write every delivered message to FILE, one JSON object a line"
+    )
+    p.add_argument(
+        "--state",
+        metavar="FILE",
+        help=(
+            "keep the master's duplicate windows, partial messages and deliveries in this SQLite file, so that a restart "
+            "neither delivers twice nor forgets (default: in memory); with --deliveries, the file is caught up from it "
+            "and appended to, never rewritten"
+        ),
+    )
     p.set_defaults(handler=run_master)
 
 
@@ -87,14 +121,61 @@ async def _until(duration: float | None) -> None:
             loop.remove_signal_handler(sig)
 
 
-def open_output(option: str, name: str | None) -> IO[str] | None:
+def open_output(option: str, name: str | None, *, append: bool = False) -> IO[str] | None:
     """An output file opened before the run, so that a bad path fails at once."""
     if name is None:
         return None
     try:
-        return open(name, "w", encoding="utf-8")
+        return open(name, "a" if append else "w", encoding="utf-8")
     except OSError as exc:
         raise UserError(f"{option} {name}: {exc.strerror}") from None
+
+
+def open_store(option: str, name: str | None) -> Any:
+    """The SQLite store named by ``option``, or one in memory."""
+    from ionotrail.terminal.errors import UsageError
+    from ionotrail.terminal.stores.memory import MemoryStore
+    from ionotrail.terminal.stores.sqlite import SqliteStore
+
+    if name is None:
+        return MemoryStore()
+    try:
+        return SqliteStore(name)
+    except UsageError as exc:
+        raise UserError(f"{option} {name}: {exc}".replace(f"{name}: {name}: ", f"{name}: ")) from None
+    except OSError as exc:
+        raise UserError(f"{option} {name}: {exc.strerror}") from None
+
+
+def catch_up(out: IO[str], name: str, store: Any, station: Any) -> None:
+    """Append to the deliveries file what the state's log holds beyond it.
+
+    The file is written only from the log, one line per entry in order, so its
+    complete lines are the entries exported; a line a crash cut short is
+    dropped and written again."""
+    from ionotrail.terminal.errors import DecodeError
+    from ionotrail.terminal.limits import MAX_DELIVERY_EXPORT
+    from ionotrail.terminal.outbox.journal import parse_delivery
+
+    out.flush()
+    with open(name, "rb+") as raw:
+        data = raw.read()
+        complete = data.rfind(b"\n") + 1
+        if complete < len(data):
+            raw.truncate(complete)
+        exported = data[:complete].count(b"\n")
+    out.seek(0, 2)
+    while True:
+        entries = store.log_after(exported, MAX_DELIVERY_EXPORT)
+        if not entries:
+            return
+        for position, entry in entries:
+            try:
+                station.export(parse_delivery(position, entry))
+            except DecodeError as exc:
+                raise UserError(f"--state: {exc}") from None
+            exported = position
+        out.flush()
 
 
 def traced(port: Any, trace: IO[str] | None, station: str, origin: float) -> Any:
@@ -118,15 +199,28 @@ async def _open(port: Any, url: str) -> None:
 def run_serve(args: argparse.Namespace) -> int:
     from ionotrail.harness.demo.gauge import REPORT_INTERVAL_S
     from ionotrail.harness.runners.stations import serial_port, terminal_station
-    from ionotrail.terminal.service import MessageAbandoned, MessageQueued
+    from ionotrail.terminal.service import MessageAbandoned, MessageQueued, MessagesRestored
+    from ionotrail.terminal.wire.crc import crc32c
 
     scenario = _check(args)
+    store = open_store("--outbox", args.outbox)
     trace = open_output("--trace", args.trace)
-    counts = {"queued": 0, "abandoned": 0}
+    accepted = open_output("--accepted", args.accepted, append=True)
+    counts = {"queued": 0, "abandoned": 0, "restored": 0}
 
     def observe(_now: float, event: object) -> None:
         if isinstance(event, MessageQueued):
             counts["queued"] += 1
+            if accepted is not None:
+                line = {
+                    "message_id": event.message_id,
+                    "size": len(event.payload),
+                    "crc32c": f"0x{crc32c(event.payload):08x}",
+                }
+                accepted.write(json.dumps(line | {"priority": event.priority.name.lower()}) + "\n")
+                accepted.flush()
+        elif isinstance(event, MessagesRestored):
+            counts["restored"] = event.count
         elif isinstance(event, MessageAbandoned):
             counts["abandoned"] += 1
 
@@ -134,11 +228,20 @@ def run_serve(args: argparse.Namespace) -> int:
         loop = asyncio.get_running_loop()
         port = serial_port(args.port, args.dialect, scenario, "terminal")
         await _open(port, args.port)
-        print(f"terminal {scenario.terminal_address:#06x} on {args.port} ({args.dialect}); Ctrl-C to stop", file=sys.stderr)
+        print(
+            f"terminal {scenario.terminal_address:#06x} on {args.port} ({args.dialect}); Ctrl-C to stop",
+            file=sys.stderr,
+        )
         every = args.every if args.every is not None else REPORT_INTERVAL_S
         origin = loop.time()
         service = terminal_station(
-            traced(port, trace, "terminal", origin), scenario, policy=args.policy, report_every_s=every, origin=origin, observer=observe
+            traced(port, trace, "terminal", origin),
+            scenario,
+            policy=args.policy,
+            report_every_s=every,
+            origin=origin,
+            observer=observe,
+            store=store,
         )
         run = asyncio.create_task(service.run())
         try:
@@ -147,18 +250,21 @@ def run_serve(args: argparse.Namespace) -> int:
             service.stop()
             await run
             await port.close()
-        sender, c = service.link.sender.counters, port.counters
+        sender, c, o = service.link.sender.counters, port.counters, service.outbox.counters
+        per_message = f"{service.store.writes / o.accepted:.2f}" if o.accepted else "-"
         return (
-            f"terminal: {counts['queued']} messages queued, {sender.acknowledged} acknowledged, {service.link.sender.pending} pending, "
-            f"{counts['abandoned']} abandoned; {service.link.counters.bursts} bursts, {service.link.counters.fragments_sent} fragments; "
+            f"terminal: {counts['queued']} messages queued ({counts['restored']} kept from before), {sender.acknowledged} acknowledged, "
+            f"{service.link.sender.pending} pending, {counts['abandoned']} abandoned; {service.link.counters.bursts} bursts, "
+            f"{service.link.counters.fragments_sent} fragments; outbox writes {service.store.writes} ({per_message} per message); "
             f"modem resets {c.resets}, reconnects {c.reconnects}, line errors {sum(c.line_errors.values())}"
         )
 
     try:
         print(_run(main()))
     finally:
-        if trace is not None:
-            trace.close()
+        for stream in (trace, accepted):
+            if stream is not None:
+                stream.close()
     return 0
 
 
@@ -167,7 +273,8 @@ def run_master(args: argparse.Namespace) -> int:
     from ionotrail.harness.runners.stations import master_station, serial_port
 
     scenario = _check(args)
-    out = open_output("--deliveries", args.deliveries)
+    store = open_store("--state", args.state)
+    out = open_output("--deliveries", args.deliveries, append=args.state is not None)
     trace = open_output("--trace", args.trace)
 
     async def main() -> str:
@@ -177,7 +284,9 @@ def run_master(args: argparse.Namespace) -> int:
         print(f"master {scenario.master_address} on {args.port} ({args.dialect}); Ctrl-C to stop", file=sys.stderr)
         sink = json_lines_sink(out) if out is not None else None
         origin = loop.time()
-        station = master_station(traced(port, trace, "master", origin), scenario, origin=origin, sink=sink)
+        station = master_station(traced(port, trace, "master", origin), scenario, origin=origin, sink=sink, store=store)
+        if out is not None and args.state is not None:
+            catch_up(out, args.deliveries, store, station)
         station.start()
         try:
             await _until(args.duration)
@@ -185,8 +294,13 @@ def run_master(args: argparse.Namespace) -> int:
             await station.stop()
             await port.close()
         c, m = port.counters, station.counters
+        kept = (
+            f" ({station.restored[0]} windows and {station.restored[1]} partial messages kept from before)"
+            if args.state
+            else ""
+        )
         return (
-            f"master: {m.deliveries} messages delivered, {m.fragments} fragments, {m.crc_failed} CRC failures; "
+            f"master: {m.deliveries} messages delivered{kept}, {m.fragments} fragments, {m.crc_failed} CRC failures; "
             f"modem resets {c.resets}, reconnects {c.reconnects}, line errors {sum(c.line_errors.values())}"
         )
 

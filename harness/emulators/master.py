@@ -13,6 +13,12 @@ delivered message to a sink as one JSON line:
 Times are seconds on the link clock from the run's start; ``created_s`` is
 read from the message itself (the demo report format) and null when the
 payload carries no creation time.
+
+With a store (``ionotrail master --state FILE``) the station keeps a
+:class:`~ionotrail.terminal.outbox.journal.MasterJournal`: after every frame
+or timer, what the reassembler changed and the messages delivered are
+committed together *before* any new probe (which may carry the "complete"
+acknowledgement) goes to the port, and the sink is fed only after the commit.
 """
 
 from __future__ import annotations
@@ -35,6 +41,8 @@ from ionotrail.terminal.link.master import (
     ReplyArrived,
 )
 from ionotrail.terminal.link.terminal import Arrival
+from ionotrail.terminal.outbox.journal import MasterJournal
+from ionotrail.terminal.outbox.store import Store
 from ionotrail.terminal.ports import Port
 from ionotrail.terminal.wire.crc import crc32c
 
@@ -94,6 +102,7 @@ class MasterStation:
         origin: float = 0.0,
         sink: Callable[[DeliveryRecord], None] | None = None,
         on_arrival: Callable[[Arrival], None] | None = None,
+        store: Store | None = None,
     ) -> None:
         if probe_interval is not None:
             limits = dataclasses.replace(limits, probe_interval=probe_interval)
@@ -106,6 +115,10 @@ class MasterStation:
         self.sink = sink
         self.on_arrival = on_arrival
         """Sees every frame the port delivers, before the endpoint does (a soak's frame statistics)."""
+        self.store = store
+        self.journal = MasterJournal(self.endpoint.reassembler) if store is not None else None
+        self.restored = (0, 0)
+        """(completed-id windows, partial messages) taken up from the store at the start."""
         self.deliveries: list[DeliveryRecord] = []
         self.replies: list[ReplyRecord] = []
         self._loop: asyncio.AbstractEventLoop | None = None
@@ -127,6 +140,9 @@ class MasterStation:
     def start(self) -> None:
         """Attach to the port and start probing; call from within the running loop."""
         self._loop = asyncio.get_running_loop()
+        if self.journal is not None and self.store is not None:
+            self.restored = self.journal.restore(self.store.load(), self._now())
+            self._arm()
         self.port.attach(self._arrived)
         self.port.start_listening()
         self.port.start_probing(self.endpoint.probe, self.probe_interval)
@@ -165,11 +181,17 @@ class MasterStation:
         self._carry_out(self.endpoint.on_timer(now if armed_for is None else max(now, armed_for)))
 
     def _carry_out(self, effects: list[MasterEffect]) -> None:
+        if self.journal is not None and self.store is not None:
+            # Durable first: no acknowledgement leaves, and no delivery reaches the sink, before this commit.
+            batch = self.journal.changes([e.delivery for e in effects if isinstance(e, Delivered)])
+            if batch:
+                self.store.commit(batch)
+                self.journal.committed(batch)
         for effect in effects:
             if isinstance(effect, ProbeChanged):
                 self.port.start_probing(effect.frame, self.probe_interval)
             elif isinstance(effect, Delivered):
-                self._record(effect.delivery)
+                self.export(effect.delivery)
             elif isinstance(effect, ReplyArrived):
                 self.replies.append(ReplyRecord(effect.terminal, effect.command_id, effect.status, effect.result, effect.time))
         self._arm()
@@ -187,7 +209,8 @@ class MasterStation:
         self._timer = self._loop.call_at(when, self._fire)
         self._armed_for = deadline
 
-    def _record(self, delivery: Delivery) -> None:
+    def export(self, delivery: Delivery) -> None:
+        """Record a delivery and hand it to the sink (also for deliveries a store's log kept)."""
         created = report_created(delivery.payload)
         record = DeliveryRecord(
             terminal=delivery.terminal,

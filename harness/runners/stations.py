@@ -27,6 +27,7 @@ from ionotrail.terminal.link.policy import by_name
 from ionotrail.terminal.link.terminal import Arrival, Duplex, Link
 from ionotrail.terminal.modem.dialects import dialect
 from ionotrail.terminal.modem.records import Configure
+from ionotrail.terminal.outbox.store import Store
 from ionotrail.terminal.ports import Port
 from ionotrail.terminal.ports.serial import SerialPort
 from ionotrail.terminal.service import Observer, TerminalService
@@ -57,6 +58,7 @@ def terminal_station(
     origin: float,
     observer: Observer | None = None,
     limits: Limits = DEFAULT_LIMITS,
+    store: Store | None = None,
 ) -> TerminalService:
     """The reference terminal with the demo gauge, on ``port``; ``origin`` is the loop
     time at which it starts (its reports carry Unix creation times)."""
@@ -67,7 +69,7 @@ def terminal_station(
     gauge = DemoGauge(
         random.Random(f"gauge-{scenario.seed}"), epoch_unix=time.time() - origin, start=origin, interval_s=report_every_s
     )
-    return TerminalService(link, port, gauge, observer=observer)
+    return TerminalService(link, port, gauge, observer=observer, store=store)
 
 
 def master_station(
@@ -77,9 +79,17 @@ def master_station(
     origin: float,
     sink: Callable[[DeliveryRecord], None] | None = None,
     on_arrival: Callable[[Arrival], None] | None = None,
+    store: Store | None = None,
 ) -> MasterStation:
     """The master on ``port``; ``origin`` is the loop time at which it starts."""
     epoch = time.time() - (asyncio.get_running_loop().time() - origin)  # Unix time at origin
     return MasterStation(
-        port, scenario.master_address, limits=link_limits(scenario), epoch_unix=epoch, origin=origin, sink=sink, on_arrival=on_arrival
+        port,
+        scenario.master_address,
+        limits=link_limits(scenario),
+        epoch_unix=epoch,
+        origin=origin,
+        sink=sink,
+        on_arrival=on_arrival,
+        store=store,
     )

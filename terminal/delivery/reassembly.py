@@ -29,7 +29,7 @@ from collections.abc import Iterator
 
 from ionotrail.terminal.delivery.duplicates import DuplicateFilter, Verdict
 from ionotrail.terminal.delivery.rangeset import RangeSet
-from ionotrail.terminal.errors import DecodeError
+from ionotrail.terminal.errors import DecodeError, UsageError
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.wire.codec import unseal_message
 from ionotrail.terminal.wire.frames import AckBlock, Fragment
@@ -153,6 +153,11 @@ class Reassembler:
         self._bytes_by_source: dict[Source, int] = {}
         self._count_by_source: dict[Source, int] = {}
         self._bytes = 0
+        self.touched: set[tuple[Source, int]] = set()
+        """Partial messages changed since the caller last cleared this set (a durable
+        journal rewrites their records); completed windows are tracked by
+        :attr:`window_touched`."""
+        self.window_touched: set[Source] = set()
 
     # --- state, for reports and invariants --------------------------------------
 
@@ -180,6 +185,45 @@ class Reassembler:
 
     def partials(self) -> Iterator[tuple[Source, int]]:
         return iter(list(self._partials))
+
+    def partial_state(
+        self, source: Source, message_id: int
+    ) -> tuple[bool, int | None, tuple[tuple[int, bytes], ...]] | None:
+        """(urgent, end, held chunks as (start, bytes)) of a partial message, or None."""
+        partial = self._partials.get((source, message_id))
+        if partial is None:
+            return None
+        return partial.urgent, partial.end, tuple(sorted(partial.chunks.items()))
+
+    def restore_partial(
+        self,
+        source: Source,
+        message_id: int,
+        now: float,
+        urgent: bool,
+        end: int | None,
+        chunks: tuple[tuple[int, bytes], ...],
+    ) -> None:
+        """Hold again a partial message a durable journal kept across a restart; its
+        lifetime starts again at ``now``.  Within every cap, as if its bytes had
+        arrived as fragments (a chunk that would pass one is refused)."""
+        if (source, message_id) in self._partials:
+            raise UsageError(f"partial message {message_id} of {source} is held already")
+        if end is not None and not 0 < end <= self.limits.max_sealed_message:
+            raise UsageError(f"a kept partial message ends at {end}")
+        partial = self._start(source, Fragment(source[1], source[2], message_id, 0, b"\x00", downlink=source[0]), now)
+        partial.urgent, partial.end = urgent, end
+        for start, data in chunks:
+            if not data or start + len(data) > (end if end is not None else self.limits.max_sealed_message):
+                raise UsageError(f"a kept chunk of {len(data)} bytes at {start} lies outside message {message_id}")
+            if partial.held.covered_within(start, start + len(data)) or partial.held.ranges_after_add(
+                start, start + len(data)
+            ) > (self.limits.max_ranges_per_message):
+                raise UsageError(f"kept chunks of message {message_id} overlap or pass the range limit")
+            if not self._make_room(partial, len(data)):
+                raise UsageError(f"kept message {message_id} does not fit the reassembly caps")
+            partial.write(start, data)
+            self._account(source, len(data))
 
     # --- timers -----------------------------------------------------------------
 
@@ -279,8 +323,9 @@ class Reassembler:
     def _store(self, partial: _Partial, fragment: Fragment) -> bool:
         """Copy the fragment in, within every cap; False if it was not kept."""
         if partial.held.contains(fragment.offset, fragment.end):
-            if fragment.final:
+            if fragment.final and partial.end != fragment.end:
                 partial.end = fragment.end
+                self.touched.add(partial.key)
             return True
         if partial.held.ranges_after_add(fragment.offset, fragment.end) > self.limits.max_ranges_per_message:
             self.counters.hole_cap_drops += 1
@@ -293,6 +338,7 @@ class Reassembler:
         if fragment.final:
             partial.end = fragment.end
         partial.urgent = partial.urgent or fragment.urgent
+        self.touched.add(partial.key)
         return True
 
     def _make_room(self, partial: _Partial, growth: int) -> bool:
@@ -335,6 +381,7 @@ class Reassembler:
         _, seq = self.completed.classify(partial.source, partial.message_id)
         before = self.completed.evicted
         self.completed.complete(partial.source, seq)
+        self.window_touched.add(partial.source)
         self.counters.windows_evicted += self.completed.evicted - before
         self.counters.delivered += 1
         delivery = Delivery(
@@ -360,6 +407,7 @@ class Reassembler:
     def _drop(self, partial: _Partial) -> None:
         if self._partials.pop(partial.key, None) is None:
             return
+        self.touched.add(partial.key)
         self._deadline_known = False
         if partial.size:
             self._account(partial.source, -partial.size)

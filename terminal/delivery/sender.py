@@ -145,6 +145,10 @@ class Sender:
         self._selection_known = False
         # The messages with a piece in flight, by unwrapped id: what presume_lost visits.
         self._flying: dict[int, _Outgoing] = {}
+        self.durable_version = 0
+        """Bumped whenever what a durable outbox keeps of the queue changes: a
+        message queued, restored, finished or dropped, or its acknowledged ranges
+        replaced (:class:`~ionotrail.terminal.outbox.outbox.Outbox` compares it)."""
         self.outcomes: collections.deque[tuple[int, bool]] = collections.deque(maxlen=OUTCOMES_KEPT)
         """(frame bytes, lost) of each settled piece from :meth:`next_fragment`,
         newest last, for a fragment policy that learns from them; the link drains it."""
@@ -169,7 +173,53 @@ class Sender:
         self._changed()
         self._next_seq += 1
         self.counters.queued += 1
+        self.durable_version += 1
         return message.wire_id
+
+    def resume(
+        self, next_seq: int, messages: list[tuple[int, bytes, Priority, float, tuple[tuple[int, int], ...]]]
+    ) -> None:
+        """Take up the queue a durable outbox kept across a reboot: each message as
+        (unwrapped id, sealed bytes, priority, creation time, ranges the receiver
+        acknowledged), and the unwrapped id to give the next message queued.  Only
+        an empty sender that has queued nothing may resume.  Restored messages
+        count as on the air: the receiver may hold part of them."""
+        if self._queue or self._next_seq != 0 or self.counters.queued:
+            raise UsageError("only a sender that has queued nothing can resume a kept queue")
+        if len(messages) > self.limits.max_queued_messages:
+            raise UsageError(f"{len(messages)} kept messages exceed the queue's {self.limits.max_queued_messages}")
+        for seq, sealed, priority, created, acked in sorted(messages, key=lambda m: m[0]):
+            if not 0 <= seq < next_seq:
+                raise UsageError(f"kept message {seq} is not below the next id {next_seq}")
+            if not 0 < len(sealed) <= self.limits.max_sealed_message:
+                raise UsageError(f"kept message {seq} has {len(sealed)} sealed bytes")
+            message = _Outgoing(seq, sealed, Priority(priority), created, on_air=True)
+            for start, end in acked:
+                if not 0 <= start < end <= len(sealed):
+                    raise UsageError(
+                        f"kept message {seq}: acknowledged range {start}-{end} outside its {len(sealed)} bytes"
+                    )
+                message.acked.add(start, end)
+            self._queue[seq] = message
+            self._by_wire_id[message.wire_id] = message
+        self._next_seq = next_seq
+        self._eligible_now = None
+        self._changed()
+        self.durable_version += 1
+
+    def kept(self) -> dict[int, tuple[Priority, float, tuple[tuple[int, int], ...]]]:
+        """What a durable outbox keeps of each pending message besides its bytes:
+        unwrapped id -> (priority, creation time, ranges acknowledged)."""
+        return {seq: (m.priority, m.created, m.acked.ranges()) for seq, m in self._queue.items()}
+
+    def sealed(self, seq: int) -> bytes:
+        """The sealed bytes of pending message ``seq`` (unwrapped id)."""
+        return self._queue[seq].sealed
+
+    @property
+    def next_seq(self) -> int:
+        """The unwrapped id the next queued message will get."""
+        return self._next_seq
 
     @property
     def pending(self) -> int:
@@ -203,6 +253,8 @@ class Sender:
 
     def _drop(self, message: _Outgoing) -> tuple[int, float]:
         del self._queue[message.seq], self._by_wire_id[message.wire_id]
+        self._flying.pop(message.seq, None)
+        self.durable_version += 1
         self._eligible_now = None
         self._changed()
         return message.wire_id, message.created
@@ -497,12 +549,14 @@ class Sender:
             del self._queue[message.seq], self._by_wire_id[message.wire_id]
             self._flying.pop(message.seq, None)
             self._eligible_now = None
+            self.durable_version += 1
             self.counters.acknowledged += 1
             return [MessageAcknowledged(message.wire_id, message.created, now)]
         if block.refused:
             del self._queue[message.seq], self._by_wire_id[message.wire_id]
             self._flying.pop(message.seq, None)
             self._eligible_now = None
+            self.durable_version += 1
             self.counters.refused += 1
             return [MessageRefused(message.wire_id, message.created, now)]
         if block != message.last_ack:
@@ -513,6 +567,8 @@ class Sender:
                     end = min(end, size)
                     acked.add(start, end)
                     sent.discard(start, end)  # acknowledged bytes are no longer "sent, unconfirmed"
+            if acked != message.acked:
+                self.durable_version += 1
             message.acked = acked
             message.last_ack = block
         elif not message.in_flight or (issued is not None and message.in_flight[0][0] > issued):
@@ -532,4 +588,3 @@ class Sender:
 
     def _find(self, wire_id: int) -> _Outgoing | None:
         return self._by_wire_id.get(wire_id)
-
