@@ -223,5 +223,11 @@ def energy_lines(r: dict[str, Any]) -> list[str]:
         more = f" and {e['level_changes'] - 4:,} more" if e["level_changes"] > 4 else ""
         hours = ", ".join(f"{level} {h:,.1f} h" for level, h in e["level_hours"].items() if h > 0)
         lines.append(f"  service    {shown}{more}; time at each level: {hours}")
+    o = r.get("outbox")
+    if o is not None and o["writes_per_message"] is not None:
+        lines.append(
+            f"  outbox     {o['writes']:,} synchronous writes, {o['writes_per_message']:.2f} per message accepted"
+            f" ({o['range_updates']:,} for partly acknowledged messages; the id counter rode along {o['counter_writes']:,} times)"
+        )
     lines.extend(f"  note       {text}" for text in advice)
     return lines

@@ -66,6 +66,7 @@ REPORT_KEYS = (
     "energy.harvested_wh", *(f"energy.consumed_wh.{name}" for name in LOAD_NAMES), "energy.soc_min", "energy.soc_final",
     "energy.hours_below_reserve", "energy.listen_hours", "energy.tx_seconds", "energy.wasted_tx_seconds",
     "energy.uplink_backoffs", "energy.degradation",
+    "outbox.writes", "outbox.writes_per_message", "outbox.counter_writes", "outbox.range_updates",
 )  # fmt: skip
 PROGRESS_EVERY_S = 600.0  # simulated seconds between progress reports
 BOUND_WINDOW_S = CELL_S
@@ -279,13 +280,13 @@ def simulate(
         await master.stop()
         if progress is not None:
             progress(duration, duration, len(deliveries))
-        return air, master, meter
+        return air, master, meter, service
 
     if realtime:
-        air, master, meter = asyncio.run(raise_callback_errors(main()))
+        air, master, meter, service = asyncio.run(raise_callback_errors(main()))
     else:
         with asyncio.Runner(loop_factory=VirtualTimeLoop) as runner:
-            air, master, meter = runner.run(raise_callback_errors(main()))
+            air, master, meter, service = runner.run(raise_callback_errors(main()))
     wall = time.perf_counter() - wall_start
     if timeline is not None and trails.trails is not None:
         tr = trails.trails
@@ -298,6 +299,13 @@ def simulate(
                            duty_refusals=duty.refusals if duty else 0)  # fmt: skip
     energy["policy"] = power_name
     report["energy"] = energy
+    o = service.outbox.counters
+    report["outbox"] = {
+        "writes": service.store.writes,
+        "writes_per_message": round(service.store.writes / o.accepted, 3) if o.accepted else None,
+        "counter_writes": o.counter_writes,
+        "range_updates": o.range_updates,
+    }
     _deadlines(report, scenario, ledger, deliveries, link, duration)
     return Simulation(report, deliveries, timeline, link, master, air, meter)
 
