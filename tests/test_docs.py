@@ -13,7 +13,7 @@ from ionotrail.terminal.wire import IDLE_PROBE_BYTES, AckBlock
 DOCS = Path(__file__).resolve().parent.parent / "docs"
 
 
-@pytest.mark.parametrize("name", ["wire.md", "delivery.md", "scenario.md", "link.md", "modem.md", "power.md"])
+@pytest.mark.parametrize("name", ["wire.md", "delivery.md", "scenario.md", "link.md", "modem.md", "power.md", "outbox.md"])
 def test_document_is_up_to_date(name: str) -> None:
     text = (DOCS / name).read_text(encoding="utf-8")
     assert wiredoc.render(text) == text, f"docs/{name} is stale: run `ionotrail docs`"
@@ -21,7 +21,7 @@ def test_document_is_up_to_date(name: str) -> None:
 
 def test_every_generator_has_a_table() -> None:
     names: set[str] = set()
-    for name in ("wire.md", "delivery.md", "scenario.md", "link.md", "modem.md", "power.md"):
+    for name in ("wire.md", "delivery.md", "scenario.md", "link.md", "modem.md", "power.md", "outbox.md"):
         names |= set(re.findall(r"<!-- generated: ([a-z-]+) -->", (DOCS / name).read_text(encoding="utf-8")))
     assert names == set(wiredoc.GENERATORS)
 

@@ -8,7 +8,7 @@ from typing import Any
 
 from ionotrail.harness.cli.common import UserError
 
-DOCUMENTS = ("docs/wire.md", "docs/delivery.md", "docs/scenario.md", "docs/link.md", "docs/modem.md", "docs/power.md")
+DOCUMENTS = ("docs/wire.md", "docs/delivery.md", "docs/scenario.md", "docs/link.md", "docs/modem.md", "docs/power.md", "docs/outbox.md")
 
 
 def add_parser(commands: Any) -> None:
@@ -21,7 +21,8 @@ def add_parser(commands: Any) -> None:
             "docs/scenario.md (scenario keys, from harness/channel/scenario.py),\n"
             "docs/link.md (the link's transition table, from terminal/link/table.py) and\n"
             "docs/modem.md (host-modem records, from terminal/modem/records.py) and\n"
-            "docs/power.md (degradation levels and battery chemistries, from terminal/power/)."
+            "docs/power.md (degradation levels and battery chemistries, from terminal/power/) and\n"
+            "docs/outbox.md (durable records, from terminal/outbox/records.py)."
         ),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )

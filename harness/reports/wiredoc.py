@@ -20,6 +20,7 @@ import re
 import construct as cs
 from ionotrail.terminal import limits
 from ionotrail.terminal.modem import dialects, records
+from ionotrail.terminal.outbox import records as store_records
 from ionotrail.terminal.wire import formats, layout
 from ionotrail.terminal.wire.formats import FrameType
 from ionotrail.terminal.wire.registry import FRAME_KINDS
@@ -28,7 +29,9 @@ SECTIONS: dict[str, cs.Construct] = {kind.name: kind.declaration for kind in FRA
     "ack-block": formats.ACK_BLOCK,
     "command-block": formats.COMMAND_BLOCK,
     "sealed-message": formats.SEALED_MESSAGE,
-} | {f"record-{kind.name.replace('_', '-')}": kind.declaration for kind in records.RECORD_KINDS.values()}
+} | {f"record-{kind.name.replace('_', '-')}": kind.declaration for kind in records.RECORD_KINDS.values()} | {
+    f"store-{name}": declaration for name, declaration in store_records.DECLARATIONS.items()
+}
 
 _BLOCK_NAMES = {id(formats.ACK_BLOCK): "ack block", id(formats.COMMAND_BLOCK): "command block"}
 _MARK = re.compile(r"(<!-- generated: ([a-z-]+) -->\n).*?(<!-- end generated -->)", re.DOTALL)
