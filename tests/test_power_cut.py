@@ -201,3 +201,18 @@ def test_killed_stations_lose_nothing_and_deliver_nothing_twice(kills_each: int,
         f"delivered {len(delivered)}, lost 0, duplicated 0; {terminal_out.strip().splitlines()[-1]}; {master_out.strip().splitlines()[-1]}"
     )
     assert len(delivered) >= len(accepted) >= 5 * kills_each
+
+
+@pytest.mark.parametrize("option", ["--outbox", "--state"])
+def test_a_store_that_cannot_be_used_is_refused_in_one_line(option: str, tmp_path: Path) -> None:
+    command = "serve" if option == "--outbox" else "master"
+    not_a_store = tmp_path / "notes.txt"
+    not_a_store.write_text("field notes, not a database\n" * 200)
+    for path, expected in ((tmp_path / "missing" / "x.db", "unable to open"), (not_a_store, "not a store")):
+        run = subprocess.run(
+            [sys.executable, "-m", "ionotrail", command, "--port", str(tmp_path / "nowhere"), option, str(path)],
+            capture_output=True, text=True, timeout=60, check=False,
+        )  # fmt: skip
+        assert run.returncode == 2, run.stderr
+        lines = run.stderr.strip().splitlines()
+        assert len(lines) == 1 and f"{option} {path}" in lines[0] and expected in lines[0], run.stderr

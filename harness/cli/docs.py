@@ -19,8 +19,8 @@ def add_parser(commands: Any) -> None:
             "Rewrite the generated tables of docs/wire.md (frame layouts, from the format\n"
             "declarations), docs/delivery.md (link limits, from terminal/limits.py),\n"
             "docs/scenario.md (scenario keys, from harness/channel/scenario.py),\n"
-            "docs/link.md (the link's transition table, from terminal/link/table.py) and\n"
-            "docs/modem.md (host-modem records, from terminal/modem/records.py) and\n"
+            "docs/link.md (the link's transition table, from terminal/link/table.py),\n"
+            "docs/modem.md (host-modem records, from terminal/modem/records.py),\n"
             "docs/power.md (degradation levels and battery chemistries, from terminal/power/) and\n"
             "docs/outbox.md (durable records, from terminal/outbox/records.py)."
         ),
