@@ -53,7 +53,11 @@ class Field:
 
 def _number(low: float, high: float, unit: str = "") -> Callable[[Any], str | None]:
     def check(value: Any) -> str | None:
-        ok = isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+        ok = (
+            isinstance(value, (int, float))
+            and not isinstance(value, bool)
+            and (isinstance(value, int) or math.isfinite(value))  # an int is finite, and may be too large for a float
+        )
         if ok and low <= value <= high:
             return None
         return f"a number from {low:g} to {high:g}{(' ' + unit) if unit else ''}"
@@ -337,12 +341,15 @@ def parse_override(text: str) -> tuple[str, str, Any]:
     section, key = path.strip().split(".", 1)
     try:
         value = tomllib.loads(f"v = {raw.strip()}")["v"]
-    except tomllib.TOMLDecodeError:
+    except (ValueError, RecursionError):  # not TOML, an integer past Python's 4300 digits, or nested too deeply
         value = raw.strip()
     if section in SCHEMA and key in SCHEMA[section]:
         wanted = SCHEMA[section][key].default
         if isinstance(wanted, float) and isinstance(value, int) and not isinstance(value, bool):
-            value = float(value)
+            try:
+                value = float(value)
+            except OverflowError:  # beyond any float: left whole, for the check to refuse
+                pass
     return section, key, value
 
 
@@ -363,8 +370,10 @@ def load(path: str | Path | None = None, overrides: Iterable[str] = (), options:
             raise ScenarioError(f"{origin}: cannot read: {getattr(exc, 'strerror', None) or exc}") from None
     try:
         values = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
+    except ValueError as exc:  # TOMLDecodeError, or an integer longer than Python converts (4300 digits)
         raise ScenarioError(f"{origin}: not valid TOML: {exc}") from None
+    except RecursionError:
+        raise ScenarioError(f"{origin}: not usable TOML: arrays or tables nested too deeply") from None
     merged = _merge(values, origin)
     given: dict[str, str] = {}  # dotted key -> the override that set it
     for text_override in overrides:

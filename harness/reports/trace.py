@@ -110,7 +110,10 @@ def read_trace(lines: Iterator[str], origin: str) -> Iterator[tuple[str, bytes |
                 raise ValueError(f"expected the keys {', '.join(TRACE_KEYS)}")
             frame = bytes.fromhex(item["hex"])
             t = float(item["t"])
-        except (ValueError, TypeError) as exc:
+        except (ValueError, TypeError, OverflowError) as exc:  # OverflowError: a "t" too large for a float
             yield label, f"not a trace line ({exc})"
+            continue
+        except RecursionError:
+            yield label, "not a trace line (JSON nested too deeply)"
             continue
         yield f"{label} t={t:.6f} {item['station']} {item['direction']} {item['outcome']}", frame
