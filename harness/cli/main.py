@@ -16,7 +16,7 @@ import os
 import sys
 from collections.abc import Sequence
 
-from ionotrail.harness.cli import bench, channel, decode, docs, emulate, simulate, soak, stations
+from ionotrail.harness.cli import bench, channel, decode, docs, emulate, keys, simulate, soak, stations
 from ionotrail.harness.cli.common import SAFETY, UserError
 from ionotrail.harness.runners.vtime import CallbackError
 
@@ -26,7 +26,7 @@ meteor-burst data-collection terminals (river gauges, weather and snow
 stations, pipeline monitors reporting over ionized meteor trails).
 """
 
-COMMANDS = (decode, bench, channel, simulate, emulate, stations, soak, docs)
+COMMANDS = (decode, bench, channel, simulate, emulate, stations, soak, keys, docs)
 """In the order the help lists them; each module adds its parser and handler."""
 
 
