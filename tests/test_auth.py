@@ -45,6 +45,7 @@ from ionotrail.terminal.auth.keys import derivation_info
 from ionotrail.terminal.auth.primitives import hkdf, hkdf_expand, hkdf_extract, hmac_tag, tag_matches
 from ionotrail.terminal.errors import DecodeError, Reason, UsageError
 from ionotrail.terminal.outbox.store import Batch
+from ionotrail.terminal.stores.memory import MemoryStore
 
 DOCS = Path(__file__).resolve().parent.parent / "docs"
 SITE = SiteSecret(bytes(range(32)))  # an invented site secret
@@ -440,6 +441,19 @@ def test_replies_are_authenticated_the_other_way() -> None:
     csig = master.sign_command(TERMINAL, **COMMAND)
     assert master.receive_reply(TERMINAL, **reply, epoch=0, counter=csig.counter + 10, tag=csig.tag) is Outcome.FORGED
     assert master.counters.accepted == 1 and master.counters.forged == 3 and master.counters.replayed == 1
+    # The master's rejections change no state either.
+    master.committed()
+    before = master.records()
+    rejected = [
+        master.receive_reply(TERMINAL, **reply, epoch=0, counter=sig.counter, tag=sig.tag),  # replayed
+        master.receive_reply(TERMINAL, **reply, epoch=0, counter=sig2.counter, tag=sig2.tag[:7]),  # truncated
+        master.receive_reply(TERMINAL, **reply, epoch=1, counter=sig2.counter, tag=sig2.tag),  # wrong epoch
+        master.receive_reply(TERMINAL, **reply, epoch=0, counter=2**32 - 1, tag=sig2.tag),  # forged
+        master.receive_reply(0x0BAD, **reply, epoch=0, counter=sig2.counter, tag=sig2.tag),  # forged, unknown terminal
+    ]
+    assert rejected == [Outcome.REPLAYED, Outcome.TRUNCATED, Outcome.WRONG_EPOCH, Outcome.FORGED, Outcome.FORGED]
+    assert master.records() == before and not master.dirty and not master.batch()
+    assert master.receive_reply(TERMINAL, **reply, epoch=0, counter=sig2.counter, tag=sig2.tag) is Outcome.ACCEPTED
 
 
 def test_out_of_range_fields_are_misuse() -> None:
@@ -461,23 +475,13 @@ def test_out_of_range_fields_are_misuse() -> None:
 # --- rotation through power cuts --------------------------------------------------------
 
 
-class Store:
-    """A store as the shell keeps one: committed records only (terminal/outbox/store.py semantics)."""
-
-    def __init__(self) -> None:
-        self.records: dict[str, bytes] = {}
-
-    def commit(self, batch: Batch) -> None:
-        self.records = {k: v for k, v in self.records.items() if k not in batch.deletes} | dict(batch.puts)
-
-
 class TerminalSite:
     """A terminal shell: key state and an application whose executed commands commit with the window."""
 
-    def __init__(self, store: Store) -> None:
+    def __init__(self, store: MemoryStore) -> None:
         self.store = store
-        self.auth = TerminalAuthenticator.restore(store.records)
-        self.executed = [int(k.split("/")[1]) for k in store.records if k.startswith("app/")]
+        self.auth = TerminalAuthenticator.restore(store.load())
+        self.executed = [int(k.split("/")[1]) for k in store.load() if k.startswith("app/")]
 
     def hear(self, frame: dict[str, Any]) -> dict[str, Any] | None:
         check = self.auth.receive_command(**{k: frame[k] for k in (*COMMAND, "epoch", "counter", "tag")})
@@ -505,7 +509,7 @@ class TerminalSite:
 
 
 def _command_frame(
-    master: MasterAuthenticator, store: Store, command_id: int, opcode: int, arguments: bytes
+    master: MasterAuthenticator, store: MemoryStore, command_id: int, opcode: int, arguments: bytes
 ) -> dict[str, Any]:
     fields = {"frame_version": 1, "master": MASTER, "command_id": command_id, "opcode": opcode, "arguments": arguments}
     sig = master.sign_command(TERMINAL, **fields)
@@ -520,7 +524,7 @@ def _rotation_run(cut_at: int | None, side: str = "both") -> tuple[TerminalSite,
 
     Returns the terminal, the steps taken, the master's final epoch and every command frame sent.
     """
-    terminal_store, master_store = Store(), Store()
+    terminal_store, master_store = MemoryStore(), MemoryStore()
     provisioned = TerminalAuthenticator(SITE.root(TERMINAL))
     terminal_store.commit(provisioned.batch())
     term = TerminalSite(terminal_store)
@@ -537,7 +541,7 @@ def _rotation_run(cut_at: int | None, side: str = "both") -> tuple[TerminalSite,
             if side in ("terminal", "both"):
                 term = TerminalSite(terminal_store)
             if side in ("master", "both"):
-                master = MasterAuthenticator.restore(SITE, master_store.records)
+                master = MasterAuthenticator.restore(SITE, master_store.load())
 
     # an ordinary command first, so the old epoch has history
     frame = _command_frame(master, master_store, 1, 1, b"")

@@ -14,6 +14,7 @@ the harness (a master loading its site secret, a terminal its root).
 from __future__ import annotations
 
 import argparse
+import errno
 import os
 import secrets
 import stat
@@ -111,6 +112,8 @@ def load_key_file(path: str | os.PathLike[str]) -> SiteSecret | TerminalRoot:
     except FileNotFoundError:
         raise UserError(f"key file {name} not found") from None
     except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise UserError(f"key file {name} is a symbolic link: give the path of the file itself") from None
         raise UserError(f"cannot open key file {name}: {exc.strerror}") from None
     with os.fdopen(fd, "rb") as handle:
         info = os.fstat(handle.fileno())
