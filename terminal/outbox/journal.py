@@ -17,7 +17,8 @@ of a kept partial message starts again at the restart.
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Mapping, Sequence
+from collections.abc import Hashable, Mapping, Sequence
+from typing import cast
 
 from ionotrail.terminal.delivery.reassembly import Delivery, Reassembler, Source
 from ionotrail.terminal.errors import BadField, UsageError
@@ -39,14 +40,16 @@ def partial_key(source: Source, message_id: int) -> str:
 
 
 def delivery_entry(delivery: Delivery) -> bytes:
-    return records.DELIVERY.build(
-        {
-            "terminal": delivery.terminal,
-            "message_id": delivery.message_id,
-            "urgent": delivery.urgent,
-            "completed": delivery.completed,
-            "payload": delivery.payload,
-        }
+    return bytes(
+        records.DELIVERY.build(
+            {
+                "terminal": delivery.terminal,
+                "message_id": delivery.message_id,
+                "urgent": delivery.urgent,
+                "completed": delivery.completed,
+                "payload": delivery.payload,
+            }
+        )
     )
 
 
@@ -90,7 +93,7 @@ class MasterJournal:
         r = self.reassembler
         if r.partial_count or len(r.completed):
             raise UsageError("a journal restores into a fresh reassembler only")
-        windows: list[tuple[Source, int, int]] = []
+        windows: list[tuple[Hashable, int, int]] = []
         partials = []
         for key, value in sorted(stored.items()):
             if key.startswith(WINDOW_PREFIX):
@@ -125,7 +128,7 @@ class MasterJournal:
                 raise BadField(f"record {partial_key(source, message_id)}: {exc}") from None
         r.touched.clear()
         r.window_touched.clear()
-        self._windows = {source for source, _, _ in windows}
+        self._windows = {cast(Source, source) for source, _, _ in windows}
         self._partials = set(r.partials())
         self._evicted = r.completed.evicted
         return len(windows), len(self._partials)
@@ -185,7 +188,7 @@ class MasterJournal:
                 self.counters.partial_writes += 1
         self.counters.partial_deletes += sum(1 for key in batch.deletes if key.startswith(PARTIAL_PREFIX))
         self._partials = set(r.partials())
-        self._windows = {source for source, _, _ in r.completed.snapshot()}
+        self._windows = {cast(Source, source) for source, _, _ in r.completed.snapshot()}
         r.touched.clear()
         r.window_touched.clear()
         self._evicted = r.completed.evicted

@@ -180,7 +180,7 @@ class Outbox:
         self._pending = (batch, payload, Priority(priority), now, ceiling)
         return batch
 
-    def committed(self, batch: Batch) -> int:
+    def committed(self, batch: OutboxBatch) -> int:
         """``batch`` is durable: a batch from :meth:`accept` queues its message in
         the sender (returns its 16-bit id); one from :meth:`changes` returns -1.
         Commit a batch before anything else touches the sender: the outbox checks."""
@@ -193,8 +193,8 @@ class Outbox:
             if key.startswith(MESSAGE_PREFIX):
                 del self._stored[int(key[len(MESSAGE_PREFIX) :])]
                 self.counters.finished += 1
-        for key, ranges in batch.ranges.items():
-            self._stored[key] = ranges
+        for seq, ranges in batch.ranges.items():
+            self._stored[seq] = ranges
             self.counters.range_updates += 1
         message_id = -1
         if self._pending is not None and self._pending[0] is batch:
