@@ -328,7 +328,10 @@ def _check(section: str, key: str, value: Any, origin: str) -> None:
         raise ScenarioError(f"{origin}: unknown key {section}.{key}; [{section}] takes {', '.join(fields)}")
     expected = fields[key].check(value)
     if expected is not None:
-        shown = value.isoformat() if isinstance(value, dt.datetime) else repr(value)
+        try:
+            shown = value.isoformat() if isinstance(value, dt.datetime) else repr(value)
+        except ValueError:  # an integer past Python's 4300 decimal digits (TOML reads hexadecimal ones of any length)
+            shown = "a number too long to show"
         raise ScenarioError(f"{origin}: {section}.{key} = {shown} is not usable; expected {expected}")
 
 
