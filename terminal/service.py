@@ -167,7 +167,10 @@ class TerminalService:
         """Serve until :meth:`stop`, or until the loop's clock reaches ``until``."""
         self._loop = loop = asyncio.get_running_loop()
         self._stopped = asyncio.Event()
-        kept = self.outbox.restore(self.store.load(), loop.time())
+        stored = self.store.load()
+        kept = self.outbox.restore(stored, loop.time())
+        self.link.restore_durable(stored)
+        self._save_link()  # keys provisioned from a key file become durable before anything is heard
         self._kept_version = self.link.sender.durable_version
         self._tell(loop.time(), MessagesRestored(kept.messages, kept.next_seq))
         self.port.attach(self._arrived)
@@ -274,14 +277,25 @@ class TerminalService:
                 if isinstance(effect, Transmit):
                     self.port.send(effect.frame)
                 elif isinstance(effect, CommandArrived):
+                    self._save_link()  # run at most once: recorded as run before it runs
                     status, result = self.source.command(effect.opcode, effect.arguments)
                     self.link.reply(effect.command_id, status, result)
+                    self._save_link()
                 self._tell(now, effect)
                 if isinstance(effect, BurstEnded) and self.power is not None and self._stopped is not None and not self._stopped.is_set():
                     self._replan()
         if self.link.sender.durable_version != self._kept_version:  # acknowledgements change records, with or without effects
             self._keep()
+        if self.link.unsaved:  # a command accepted, keys rotated, a reply made: no reply goes before this commit
+            self._save_link()
         self._arm_link()
+
+    def _save_link(self) -> None:
+        """Commit the link's key state and command memory, when changed."""
+        if self.link.unsaved:
+            batch = self.link.durable_batch()
+            self.store.commit(batch)
+            self.link.durable_committed()
 
     def _keep(self) -> None:
         """Bring the outbox's records up to date with the sender (cheap when nothing changed)."""

@@ -22,9 +22,9 @@ def run(*args: str) -> subprocess.CompletedProcess[str]:
 def test_decode_demo_prints_fields() -> None:
     result = run("decode", "--demo")
     assert result.returncode == 0, result.stderr
-    assert "demo:20  fragment frame, 58 bytes, CRC-16 ok" in result.stdout  # 48 payload bytes and the 10 of docs/wire.md
+    assert "demo:22  fragment frame, 58 bytes, CRC-16 ok" in result.stdout  # 48 payload bytes and the 10 of docs/wire.md
     assert "terminal    0x0a31 (2609)" in result.stdout
-    assert "command   command_id=0, opcode=1, arguments=00000384" in result.stdout
+    assert "command   command_id=0, opcode=1, arguments=00000384, epoch=0, counter=1, tag=5e7e0d0199487cb5" in result.stdout
     assert "payload     0100016b972ac2012b04b004" in result.stdout, "a binary demo report, shown in hexadecimal only"
 
 
@@ -43,7 +43,9 @@ def test_decode_json_one_object_per_frame() -> None:
         "probe", "reply", "probe", "fragment", "fragment", "probe", "fragment", "probe", "fragment", "probe", "probe",
     ]  # fmt: skip
     assert records[3]["fields"]["terminal"] == 0x0A31 and records[3]["crc"] == "ok"
-    assert records[0]["fields"]["command"] == {"command_id": 0, "opcode": 1, "arguments": "00000384"}
+    assert records[0]["fields"]["command"] == {
+        "command_id": 0, "opcode": 1, "epoch": 0, "counter": 1, "arguments": "00000384", "tag": "5e7e0d0199487cb5",
+    }  # fmt: skip
 
 
 def test_bad_input_is_one_line_and_non_zero() -> None:

@@ -66,3 +66,29 @@ def test_every_acknowledgement_in_the_capture_names_a_message_it_carries() -> No
     carried = set(messages(frames))
     acked = {f.ack.message_id for f in frames if isinstance(f, Probe) and f.ack is not None}
     assert acked == carried
+
+
+def test_the_captures_command_and_reply_verify_under_the_demo_keys() -> None:
+    """Signed as a simulated run of the demo signs them (harness/runners/keying.py)."""
+    from ionotrail.harness.runners.keying import simulated_site
+    from ionotrail.terminal.auth.authenticator import MasterAuthenticator, Outcome, TerminalAuthenticator
+    from ionotrail.terminal.limits import FORMAT_VERSION
+
+    demo = scenario.load(None)
+    site = simulated_site(demo.seed)
+    frames = capture()
+    (probe,) = [f for f in frames if isinstance(f, Probe) and f.command is not None]
+    (reply,) = [f for f in frames if isinstance(f, Reply)]
+    c = probe.command
+    assert c is not None
+    terminal = TerminalAuthenticator(site.root(demo.terminal_address))
+    check = terminal.receive_command(
+        frame_version=FORMAT_VERSION, master=probe.master, command_id=c.command_id, opcode=c.opcode, arguments=c.arguments,
+        epoch=c.epoch, counter=c.counter, tag=c.tag,
+    )  # fmt: skip
+    assert check.accepted
+    outcome = MasterAuthenticator(site).receive_reply(
+        demo.terminal_address, frame_version=FORMAT_VERSION, master=reply.master, command_id=reply.command_id,
+        status=int(reply.status), result=reply.result, epoch=reply.epoch, counter=reply.counter, tag=reply.tag,
+    )  # fmt: skip
+    assert outcome is Outcome.ACCEPTED

@@ -46,7 +46,7 @@ class SenderMutant(EndpointsMachine):
 
 class NoDuplicateWindow(EndpointsMachine):
     def make_master(self) -> MasterEndpoint:
-        master = MasterEndpoint(MASTER, limits=LIMITS)
+        master = super().make_master()
         master.reassembler = Reassembler(LIMITS, duplicate_window=False)
         return master
 

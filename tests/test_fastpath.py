@@ -216,8 +216,9 @@ def test_frames_that_break_a_rule_are_refused_as_the_declaration_refuses_them() 
         "second range empty": ack + bytes([0x02]) + bytes.fromhex("0000000500090009"),
         "ranges on a refused block": ack + bytes([0x22]) + bytes.fromhex("0000000500090010"),
         "complete and refused": ack + bytes([0xA0]),
-        "command without a poll": probe + bytes([0x20, 1, 2, 0]),
-        "command arguments too long": probe + bytes([0xA0, 0, 5, 1, 2, 65]) + bytes(65),
+        # command block: id, opcode, epoch (2), counter (4), length, arguments, tag (8)
+        "command without a poll": probe + bytes([0x20, 1, 2, 0, 0, 0, 0, 0, 1, 0]) + bytes(8),
+        "command arguments too long": probe + bytes([0xA0, 0, 5, 1, 2, 0, 0, 0, 0, 0, 1, 65]) + bytes(65) + bytes(8),
     }
     for what, body in cases.items():
         raw = body + crc16(body).to_bytes(2, "big")

@@ -79,13 +79,13 @@ def test_blocks_know_their_wire_length(block: AckBlock, command: CommandBlock) -
 
 def test_wire_lengths_by_hand() -> None:
     # From docs/wire.md's tables: fragment 8 + payload + 2; probe 5 + poll 2 +
-    # ack block (5 + 4 per range) + command block (3 + arguments) + 2;
-    # ack 2 + block + 2; command 4 + block + 2; reply 7 + result + 2.
+    # ack block (5 + 4 per range) + command block (9 + arguments + 8-byte tag) + 2;
+    # ack 2 + block + 2; command 4 + block + 2; reply 13 + result + 8-byte tag + 2.
     assert Fragment(1, 2, 3, 0, b"abc").wire_length == 13
-    assert Probe(7, 1, poll=5, ack=AckBlock(5, 9, ((0, 4), (8, 9))), command=CommandBlock(1, 2, b"xy")).wire_length == 27
+    assert Probe(7, 1, poll=5, ack=AckBlock(5, 9, ((0, 4), (8, 9))), command=CommandBlock(1, 2, b"xy")).wire_length == 41
     assert Ack(7, AckBlock(5, 9, complete=True)).wire_length == 9
-    assert Command(7, 5, CommandBlock(1, 2, b"xyz")).wire_length == 12
-    assert Reply(5, 7, 1, ReplyStatus.OK, b"ok").wire_length == 11
+    assert Command(7, 5, CommandBlock(1, 2, b"xyz")).wire_length == 26
+    assert Reply(5, 7, 1, ReplyStatus.OK, b"ok").wire_length == 25
 
 
 def test_fragment_overhead_is_ten_bytes() -> None:

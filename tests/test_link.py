@@ -15,9 +15,11 @@ import dataclasses
 from collections.abc import Callable
 
 import pytest
+from ionotrail.harness.runners.keying import simulated_site, simulated_terminal
+from ionotrail.terminal.auth.authenticator import MasterAuthenticator
 from ionotrail.terminal.delivery.sender import MessageAcknowledged, Sender
 from ionotrail.terminal.errors import ProtocolError, UsageError
-from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.limits import DEFAULT_LIMITS, FORMAT_VERSION, Limits
 from ionotrail.terminal.link import table
 from ionotrail.terminal.link.policy import Adaptive, Fixed, StopAndWait
 from ionotrail.terminal.link.terminal import (
@@ -33,7 +35,7 @@ from ionotrail.terminal.link.terminal import (
     Transmit,
 )
 from ionotrail.terminal.link.timer import Purpose, Timer
-from ionotrail.terminal.wire import AckBlock, Command, CommandBlock, Fragment, Probe, Reply, ReplyStatus, decode, encode
+from ionotrail.terminal.wire import AckBlock, Command, CommandBlock, Fragment, Probe, ReplyStatus, decode, encode
 
 TERMINAL, OTHER, MASTER = 0x0A31, 0x0B00, 7
 BIT_RATE = 4800.0
@@ -58,11 +60,36 @@ def make_link(messages: int = 1, size: int = 600, *, duplex: Duplex = Duplex.FUL
     sender = Sender(TERMINAL, MASTER, limits=limits)
     for n in range(messages):
         sender.queue(bytes([n + 1]) * size, 0.0)
-    return Link(sender, policy or Fixed(64), bit_rate=BIT_RATE, duplex=duplex, limits=limits)  # type: ignore[arg-type]
+    auth = simulated_terminal(0, TERMINAL)
+    return Link(sender, policy or Fixed(64), bit_rate=BIT_RATE, duplex=duplex, limits=limits, auth=auth)  # type: ignore[arg-type]
+
+
+SIGNER = MasterAuthenticator(simulated_site(0))
+
+
+def signed(block: CommandBlock) -> CommandBlock:
+    """``block`` as the master signs it for TERMINAL (a fresh counter each call)."""
+    sig = SIGNER.sign_command(
+        TERMINAL, frame_version=FORMAT_VERSION, master=MASTER, command_id=block.command_id, opcode=block.opcode, arguments=block.arguments
+    )
+    return CommandBlock(block.command_id, block.opcode, block.arguments, sig.epoch, sig.counter, sig.tag)
+
+
+def signed_block(command_id: int, opcode: int, arguments: bytes = b"") -> CommandBlock:
+    return signed(CommandBlock(command_id, opcode, arguments))
+
+
+def commit(link: Link) -> None:
+    """What the shell does after every input: make the link's key and command state durable."""
+    if link.unsaved:
+        link.durable_batch()
+        link.durable_committed()
 
 
 def hear(link: Link, t: float, frame: bytes | None = None, snr: float = 20.0) -> list[object]:
-    return list(link.on_frame(Arrival(frame if frame is not None else probe(), t, snr)))
+    effects = list(link.on_frame(Arrival(frame if frame is not None else probe(), t, snr)))
+    commit(link)
+    return effects
 
 
 def fire(link: Link) -> list[object]:
@@ -322,7 +349,7 @@ def test_a_flood_of_commands_executes_each_id_once_and_keeps_bounded_queues() ->
     executed: list[int] = []
     for n in range(5000):
         command_id = n % 40  # a sender cycling ids inside the 64-id window, no probe between
-        for effect in hear(link, n * 1e-3, encode(Command(MASTER, TERMINAL, CommandBlock(command_id, 1, b"\x00\x00\x03\x84")))):
+        for effect in hear(link, n * 1e-3, encode(Command(MASTER, TERMINAL, signed_block(command_id, 1, b"\x00\x00\x03\x84")))):
             if isinstance(effect, CommandArrived):
                 executed.append(effect.command_id)
                 link.reply(effect.command_id, ReplyStatus.OK)
@@ -339,7 +366,7 @@ def test_ids_cycling_through_the_whole_space_keep_the_reply_queue_bounded() -> N
     link = make_link(messages=0)
     executed = 0
     for n in range(5000):
-        for effect in hear(link, n * 1e-3, encode(Command(MASTER, TERMINAL, CommandBlock(n % 256, 1)))):
+        for effect in hear(link, n * 1e-3, encode(Command(MASTER, TERMINAL, signed_block(n % 256, 1)))):
             if isinstance(effect, CommandArrived):
                 executed += 1
                 link.reply(effect.command_id, ReplyStatus.OK)
@@ -352,9 +379,9 @@ def test_ids_cycling_through_the_whole_space_keep_the_reply_queue_bounded() -> N
 def test_a_command_older_than_the_window_is_not_executed() -> None:
     link = make_link(messages=0)
     for command_id in (0, 100):
-        hear(link, 0.0, encode(Command(MASTER, TERMINAL, CommandBlock(command_id, 1))))
+        hear(link, 0.0, encode(Command(MASTER, TERMINAL, signed_block(command_id, 1))))
         link.reply(command_id, ReplyStatus.OK)
-    assert hear(link, 0.1, encode(Command(MASTER, TERMINAL, CommandBlock(0, 1)))) == []  # 100 behind: outside 64
+    assert hear(link, 0.1, encode(Command(MASTER, TERMINAL, signed_block(0, 1)))) == []  # 100 behind: outside 64
     assert link.commands.counters.stale == 1 and link.commands.counters.executed == 2
 
 
@@ -464,18 +491,21 @@ def test_stop_and_wait_sends_the_next_fragment_only_after_an_acknowledgement() -
 
 def test_a_command_is_executed_once_and_its_reply_repeated() -> None:
     link = make_link(messages=0)
-    command = CommandBlock(3, 1, b"\x00\x00\x03\x84")
+    command = signed(CommandBlock(3, 1, b"\x00\x00\x03\x84"))
     effects = hear(link, 0.0, probe(poll=TERMINAL, command=command))
     assert effects[0] == CommandArrived(3, 1, b"\x00\x00\x03\x84")
     assert not any(isinstance(e, BurstStarted) for e in effects), "no reply yet, nothing to send"
     link.reply(3, ReplyStatus.OK, b"ok")
+    assert link.unsaved and not link._ready(), "a reply waits until the state it speaks for is durable"
+    commit(link)
     effects = hear(link, 0.1, probe(poll=TERMINAL, command=command))  # repeated: not executed again
     assert not any(isinstance(e, CommandArrived) for e in effects)
     (sent,) = [e for e in fire(link) if isinstance(e, Transmit)]
-    assert decode(sent.frame) == Reply(TERMINAL, MASTER, 3, ReplyStatus.OK, b"ok")
+    assert decode(sent.frame)[:5] == (TERMINAL, MASTER, 3, ReplyStatus.OK, b"ok")
     hear(link, link.deadline + 0.05, probe(poll=TERMINAL, command=command))  # the master did not hear it
     fire(link)
     assert link.counters.replies_sent == 2 and link.commands.counters.executed == 1
+    assert link.counters.command_repeats == 2  # the same signed block, heard again twice
     with pytest.raises(UsageError):
         link.reply(3, ReplyStatus.OK)
 

@@ -9,8 +9,10 @@ from __future__ import annotations
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+from ionotrail.harness.runners.keying import simulated_site
+from ionotrail.terminal.auth.authenticator import MasterAuthenticator, TerminalAuthenticator
 from ionotrail.terminal.errors import UsageError
-from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.limits import DEFAULT_LIMITS, FORMAT_VERSION, Limits
 from ionotrail.terminal.link.master import Delivered, MasterEndpoint, ProbeChanged, ReplyArrived
 from ionotrail.terminal.link.timer import Purpose
 from ionotrail.terminal.wire import (
@@ -28,6 +30,20 @@ from ionotrail.terminal.wire.codec import decode_with_construct, encode_with_con
 from ionotrail.terminal.wire.crc import crc16
 
 MASTER, T1, T2 = 7, 0x0A31, 0x0B00
+SITE = simulated_site(0)
+_TERMINALS: dict[int, TerminalAuthenticator] = {}
+
+
+def keyed(**options: object) -> MasterEndpoint:
+    """A master holding the site's keys (commands are signed, replies checked)."""
+    return MasterEndpoint(MASTER, auth=MasterAuthenticator(SITE), **options)  # type: ignore[arg-type]
+
+
+def signed_reply(terminal: int, command_id: int, status: ReplyStatus, result: bytes = b"") -> bytes:
+    """A reply frame as ``terminal`` signs it (a fresh counter each time)."""
+    auth = _TERMINALS.setdefault(terminal, TerminalAuthenticator(SITE.root(terminal)))
+    sig = auth.sign_reply(frame_version=FORMAT_VERSION, master=MASTER, command_id=command_id, status=int(status), result=result)
+    return encode(Reply(terminal, MASTER, command_id, status, result, sig.epoch, sig.counter, sig.tag))
 INTERVAL = DEFAULT_LIMITS.probe_interval
 
 
@@ -50,7 +66,7 @@ def fire(endpoint: MasterEndpoint) -> list[object]:
 
 
 def test_a_half_built_message_expires_at_its_deadline_with_no_further_fragment() -> None:
-    master = MasterEndpoint(MASTER)
+    master = keyed()
     sealed = seal_message(b"x" * 100)
     master.on_frame(fragment(T1, 0, sealed, 0, 50), 10.0)
     master.on_frame(fragment(T1, 0, sealed, 50, 60), 20.0)  # a later fragment does not restart the timer
@@ -64,7 +80,7 @@ def test_a_half_built_message_expires_at_its_deadline_with_no_further_fragment()
 
 
 def test_every_message_with_news_is_acknowledged_in_turn() -> None:
-    master = MasterEndpoint(MASTER)
+    master = keyed()
     a, b = seal_message(b"a" * 80), seal_message(b"b" * 80)
     effects = master.on_frame(fragment(T1, 0, a, 0, 40), 1.0)
     assert [type(e) for e in effects] == [ProbeChanged]
@@ -79,7 +95,7 @@ def test_every_message_with_news_is_acknowledged_in_turn() -> None:
 
 
 def test_a_complete_message_is_delivered_once_and_acknowledged_complete() -> None:
-    master = MasterEndpoint(MASTER)
+    master = keyed()
     sealed = seal_message(b"hello")
     effects = master.on_frame(fragment(T1, 3, sealed, 0, len(sealed)), 5.0)
     (delivered,) = [e for e in effects if isinstance(e, Delivered)]
@@ -91,7 +107,7 @@ def test_a_complete_message_is_delivered_once_and_acknowledged_complete() -> Non
 
 
 def test_terminals_have_their_own_ids_and_duplicate_windows() -> None:
-    master = MasterEndpoint(MASTER)
+    master = keyed()
     one, two = seal_message(b"from one"), seal_message(b"from two")
     got = []
     for terminal, sealed in ((T1, one), (T2, two), (T1, one), (T2, two)):
@@ -102,8 +118,8 @@ def test_terminals_have_their_own_ids_and_duplicate_windows() -> None:
 
 
 def test_crc_failures_are_counted_apart_from_other_refusals() -> None:
-    master = MasterEndpoint(MASTER)
-    good = encode(Reply(T1, MASTER, 0, ReplyStatus.OK))
+    master = keyed()
+    good = signed_reply(T1, 0, ReplyStatus.OK)
     bad_crc = good[:-1] + bytes([good[-1] ^ 0x01])
     master.on_frame(bad_crc, 1.0)
     master.on_frame(good[:2], 1.0)  # shorter than any frame
@@ -114,7 +130,7 @@ def test_crc_failures_are_counted_apart_from_other_refusals() -> None:
 
 
 def test_commands_poll_their_terminal_until_the_reply_then_the_next_goes() -> None:
-    master = MasterEndpoint(MASTER)
+    master = keyed()
     first, effects = master.command(T1, 1, b"\x00\x00\x03\x84", 0.0)
     assert [type(e) for e in effects] == [ProbeChanged]
     second, effects = master.command(T2, 2, b"", 0.0)
@@ -122,17 +138,17 @@ def test_commands_poll_their_terminal_until_the_reply_then_the_next_goes() -> No
     assert (first, second, third) == (0, 0, 1), "ids are allocated per terminal, in order"
     assert effects == [], "the second command waits: one poll at a time"
     probe = probe_of(master)
-    assert probe.poll == T1 and probe.command == CommandBlock(0, 1, b"\x00\x00\x03\x84")
-    assert master.on_frame(encode(Reply(T2, MASTER, 0, ReplyStatus.OK)), 1.0) == []  # not the one asked
-    effects = master.on_frame(encode(Reply(T1, MASTER, 0, ReplyStatus.OK, b"ok")), 2.0)
+    assert probe.poll == T1 and probe.command[:3] == (0, 1, b"\x00\x00\x03\x84")
+    assert master.on_frame(signed_reply(T2, 0, ReplyStatus.OK), 1.0) == []  # not the one asked
+    effects = master.on_frame(signed_reply(T1, 0, ReplyStatus.OK, b"ok"), 2.0)
     assert ReplyArrived(T1, 0, int(ReplyStatus.OK), b"ok", 2.0) in effects
     assert probe_of(master).poll == T2
-    master.on_frame(encode(Reply(T1, MASTER, 0, ReplyStatus.OK, b"ok")), 2.1)  # a repeat of that reply
+    master.on_frame(signed_reply(T1, 0, ReplyStatus.OK, b"ok"), 2.1)  # a repeat of that reply
     assert master.counters.replies == 1 and master.counters.stray_replies == 2
 
 
 def test_the_command_queue_is_bounded() -> None:
-    master = MasterEndpoint(MASTER, limits=Limits(max_queued_commands=2))
+    master = keyed(limits=Limits(max_queued_commands=2))
     master.command(T1, 1, b"", 0.0)
     master.command(T1, 1, b"", 0.0)
     with pytest.raises(UsageError, match="2 unanswered commands"):
@@ -140,7 +156,7 @@ def test_the_command_queue_is_bounded() -> None:
 
 
 def test_acknowledgement_news_is_bounded() -> None:
-    master = MasterEndpoint(MASTER, limits=Limits(max_ack_news=2, max_partials_per_source=8))
+    master = keyed(limits=Limits(max_ack_news=2, max_partials_per_source=8))
     for message_id in range(6):
         sealed = seal_message(bytes([message_id]) * 40)
         master.on_frame(fragment(T1, message_id, sealed, 0, 10), 1.0)
@@ -152,7 +168,7 @@ def test_a_call_at_the_reassembly_deadline_always_expires() -> None:
     # rounds to just under 600, so the old check (now - first >= lifetime) left the
     # message, and its deadline, due at the very instant on_timer was called.
     limits = Limits(reassembly_lifetime=600.0)
-    master = MasterEndpoint(MASTER, limits=limits)
+    master = keyed(limits=limits)
     sealed = seal_message(b"y" * 50)
     first = 3943.616755677566
     assert (first + 600.0) - first < 600.0
@@ -165,7 +181,7 @@ def test_a_call_at_the_reassembly_deadline_always_expires() -> None:
 def test_a_stream_of_news_for_one_message_does_not_starve_the_others() -> None:
     # Terminal 2 keeps sending one message faster than the probe interval; terminal 3's
     # finished message must still reach the probe within an interval (docs/link.md).
-    master = MasterEndpoint(MASTER)
+    master = keyed()
     stream, done = seal_message(b"s" * 2000), seal_message(b"done")
     master.on_frame(fragment(T1, 0, stream, 0, 10), 0.0)
     master.on_frame(fragment(T2, 0, done, 0, len(done)), 0.01)
@@ -185,7 +201,7 @@ def test_a_stream_of_news_for_one_message_does_not_starve_the_others() -> None:
 
 def test_a_silent_terminal_cannot_keep_the_others_quiet() -> None:
     limits = Limits(command_turn=60.0)
-    master = MasterEndpoint(MASTER, limits=limits)
+    master = keyed(limits=limits)
     master.command(T1, 1, b"", 0.0)  # T1 never answers
     assert master.poll == T1
     assert master.deadline == pytest.approx(60.0)
@@ -195,21 +211,21 @@ def test_a_silent_terminal_cannot_keep_the_others_quiet() -> None:
     fire(master)
     assert master.poll == T1, "then it gets another turn"
     master.command(T2, 2, b"", 130.0)
-    master.on_frame(encode(Reply(T2, MASTER, 0, ReplyStatus.OK)), 131.0)  # T2's command has not been on the air
+    master.on_frame(signed_reply(T2, 0, ReplyStatus.OK), 131.0)  # T2's command has not been on the air
     assert master.counters.stray_replies == 1
     fire(master)  # T1's turn ends at 180: T2's turn comes after the rest
     fire(master)
     assert master.poll == T2
-    effects = master.on_frame(encode(Reply(T1, MASTER, 0, ReplyStatus.OK, b"late")), 250.0)  # an earlier turn's reply
+    effects = master.on_frame(signed_reply(T1, 0, ReplyStatus.OK, b"late"), 250.0)  # an earlier turn's reply
     assert ReplyArrived(T1, 0, int(ReplyStatus.OK), b"late", 250.0) in effects
     assert master.poll == T2
 
 
 def test_a_restarted_master_starts_its_command_ids_where_it_is_told() -> None:
-    master = MasterEndpoint(MASTER, first_command_id=200)
+    master = keyed(first_command_id=200)
     assert master.command(T1, 1, b"", 0.0)[0] == 200
     with pytest.raises(UsageError):
-        MasterEndpoint(MASTER, first_command_id=256)
+        keyed(first_command_id=256)
 
 
 # --- the probe the master keeps encoded is the one the declaration gives -----------
@@ -243,7 +259,7 @@ def test_the_master_sends_the_declarations_bytes_at_the_same_times(steps: list[t
     # Both masters take the same inputs; every effect, probe and timer must be the
     # same, and every probe byte for byte the declaration's encoding of a Probe.
     limits = Limits(command_turn=5.0, max_ack_news=3)
-    fast, reference = MasterEndpoint(MASTER, limits=limits), _Reference(MASTER, limits=limits)
+    fast, reference = keyed(limits=limits), _Reference(MASTER, limits=limits, auth=MasterAuthenticator(SITE))
     assert fast.probe == reference.probe
     sealed = {(t, m): seal_message(bytes([t & 0xFF, m]) * 70) for t in (T1, T2) for m in range(4)}
     now = 0.0
@@ -266,7 +282,7 @@ def test_the_master_sends_the_declarations_bytes_at_the_same_times(steps: list[t
         elif step[0] == "reply":
             pending = fast.pending_commands  # a reply to one of them (a stray one if it has not been on the air)
             terminal, block = pending[step[1] % len(pending)] if pending else (T1, CommandBlock(step[1], 0))
-            raw = encode(Reply(terminal, MASTER, block.command_id, ReplyStatus.OK, b"r"))
+            raw = signed_reply(terminal, block.command_id, ReplyStatus.OK, b"r")
             outcomes = [m.on_frame(raw, now) for m in (fast, reference)]
         else:
             if step[1] and fast.timer is not None:

@@ -34,6 +34,12 @@ def _common(p: argparse.ArgumentParser) -> None:
         metavar="FILE.jsonl",
         help="write every frame sent or heard to FILE (ionotrail decode --trace reads it)",
     )
+    p.add_argument(
+        "--keys",
+        metavar="FILE",
+        help="key file (ionotrail keys; readable by its owner only): the terminal's root key for serve, the site secret "
+        "for master; without it, commands are refused (serve) or cannot be sent (master)",
+    )
 
 
 def add_parser(commands: Any) -> None:
@@ -131,6 +137,24 @@ def open_output(option: str, name: str | None, *, append: bool = False) -> IO[st
         raise UserError(f"{option} {name}: {exc.strerror}") from None
 
 
+def load_keys(name: str | None, role: str, terminal: int) -> Any:
+    """The key file for ``role``: a terminal root for ``terminal``, or the site secret."""
+    from ionotrail.harness.cli.keys import load_key_file
+    from ionotrail.terminal.auth.keys import SiteSecret, TerminalRoot
+
+    if name is None:
+        return None
+    key = load_key_file(name)
+    if role == "terminal":
+        if not isinstance(key, TerminalRoot):
+            raise UserError(f"--keys {name}: a site secret; a terminal takes its own root key (ionotrail keys provision)")
+        if key.terminal != terminal:
+            raise UserError(f"--keys {name}: the key of terminal {key.terminal:#06x}, and this terminal is {terminal:#06x}")
+    elif not isinstance(key, SiteSecret):
+        raise UserError(f"--keys {name}: a terminal's root key; the master takes the site secret (ionotrail keys new-site)")
+    return key
+
+
 def open_store(option: str, name: str | None) -> Any:
     """The SQLite store named by ``option``, or one in memory."""
     from ionotrail.terminal.errors import UsageError
@@ -203,6 +227,7 @@ def run_serve(args: argparse.Namespace) -> int:
     from ionotrail.terminal.wire.crc import crc32c
 
     scenario = _check(args)
+    root = load_keys(args.keys, "terminal", scenario.terminal_address)
     store = open_store("--outbox", args.outbox)
     trace = open_output("--trace", args.trace)
     accepted = open_output("--accepted", args.accepted, append=True)
@@ -242,6 +267,7 @@ def run_serve(args: argparse.Namespace) -> int:
             origin=origin,
             observer=observe,
             store=store,
+            root=root,
         )
         run = asyncio.create_task(service.run())
         try:
@@ -273,6 +299,7 @@ def run_master(args: argparse.Namespace) -> int:
     from ionotrail.harness.runners.stations import master_station, serial_port
 
     scenario = _check(args)
+    site = load_keys(args.keys, "master", scenario.terminal_address)
     store = open_store("--state", args.state)
     out = open_output("--deliveries", args.deliveries, append=args.state is not None)
     trace = open_output("--trace", args.trace)
@@ -284,7 +311,7 @@ def run_master(args: argparse.Namespace) -> int:
         print(f"master {scenario.master_address} on {args.port} ({args.dialect}); Ctrl-C to stop", file=sys.stderr)
         sink = json_lines_sink(out) if out is not None else None
         origin = loop.time()
-        station = master_station(traced(port, trace, "master", origin), scenario, origin=origin, sink=sink, store=store)
+        station = master_station(traced(port, trace, "master", origin), scenario, origin=origin, sink=sink, store=store, site=site)
         if out is not None and args.state is not None:
             catch_up(out, args.deliveries, store, station)
         station.start()

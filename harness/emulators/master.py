@@ -30,6 +30,8 @@ from collections.abc import Callable
 from typing import IO
 
 from ionotrail.harness.demo.gauge import report_created
+from ionotrail.terminal.auth.authenticator import MasterAuthenticator
+from ionotrail.terminal.auth.keys import SiteSecret
 from ionotrail.terminal.delivery.reassembly import Delivery, Reassembler
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link.master import (
@@ -103,12 +105,15 @@ class MasterStation:
         sink: Callable[[DeliveryRecord], None] | None = None,
         on_arrival: Callable[[Arrival], None] | None = None,
         store: Store | None = None,
+        site: SiteSecret | None = None,
     ) -> None:
+        """``site`` is the site secret that signs commands (none: no commands)."""
         if probe_interval is not None:
             limits = dataclasses.replace(limits, probe_interval=probe_interval)
         self.port = port
         self.address = address
-        self.endpoint = MasterEndpoint(address, limits=limits)
+        self.site = site
+        self.endpoint = MasterEndpoint(address, limits=limits, auth=MasterAuthenticator(site) if site is not None else None)
         self.probe_interval = limits.probe_interval
         self.epoch_unix = epoch_unix
         self.origin = origin
@@ -141,7 +146,10 @@ class MasterStation:
         """Attach to the port and start probing; call from within the running loop."""
         self._loop = asyncio.get_running_loop()
         if self.journal is not None and self.store is not None:
-            self.restored = self.journal.restore(self.store.load(), self._now())
+            stored = self.store.load()
+            self.restored = self.journal.restore(stored, self._now())
+            if self.site is not None:
+                self.endpoint.auth = MasterAuthenticator.restore(self.site, stored)
             self._arm()
         self.port.attach(self._arrived)
         self.port.start_listening()
@@ -159,6 +167,12 @@ class MasterStation:
     def command(self, terminal: int, opcode: int, arguments: bytes = b"") -> int:
         """Send a command to ``terminal`` on the probes until it replies; polls it."""
         command_id, effects = self.endpoint.command(terminal, opcode, arguments, self._now())
+        self._carry_out(effects)
+        return command_id
+
+    def rotate_keys(self, terminal: int) -> int:
+        """Move ``terminal`` to its next key epoch over the air (docs/keys.md)."""
+        command_id, effects = self.endpoint.rotate_keys(terminal, self._now())
         self._carry_out(effects)
         return command_id
 
@@ -184,9 +198,14 @@ class MasterStation:
         if self.journal is not None and self.store is not None:
             # Durable first: no acknowledgement leaves, and no delivery reaches the sink, before this commit.
             batch = self.journal.changes([e.delivery for e in effects if isinstance(e, Delivered)])
+            auth = self.endpoint.auth
+            if auth is not None and auth.dirty:  # a newly signed command's counter is reserved durably before it airs
+                batch = batch.merged(auth.batch())
             if batch:
                 self.store.commit(batch)
                 self.journal.committed(batch)
+                if auth is not None:
+                    auth.committed()
         for effect in effects:
             if isinstance(effect, ProbeChanged):
                 self.port.start_probing(effect.frame, self.probe_interval)

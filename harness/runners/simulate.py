@@ -28,6 +28,7 @@ from ionotrail.harness.emulators.air import Air
 from ionotrail.harness.emulators.master import DeliveryRecord, MasterStation
 from ionotrail.harness.energy.meter import PRIORITY_NAMES, EnergyMeter, EnergyTimeline, scheduler_for
 from ionotrail.harness.reports.trace import TraceWriter, TracingPort
+from ionotrail.harness.runners.keying import simulated_site, simulated_terminal
 from ionotrail.harness.runners.vtime import VirtualTimeLoop, raise_callback_errors
 from ionotrail.terminal.delivery.sender import MessageAcknowledged, MessageRefused, Priority, Sender
 from ionotrail.terminal.errors import Reason
@@ -217,7 +218,10 @@ def simulate(
     gate = UplinkGate() if (e.uplink_backoff if uplink_backoff is None else uplink_backoff) else None
     duty = DutyCycle(e.tx_duty_limit, e.tx_duty_window_s) if e.tx_duty_limit < 1 else None
     power_name = power_policy or e.policy
-    link = Link(sender, fragment_policy, bit_rate=scenario.bit_rate, duplex=Duplex(scenario.duplex), limits=limits, gate=gate, duty=duty)
+    link = Link(
+        sender, fragment_policy, bit_rate=scenario.bit_rate, duplex=Duplex(scenario.duplex), limits=limits, gate=gate, duty=duty,
+        auth=simulated_terminal(scenario.seed, scenario.terminal_address),
+    )  # fmt: skip
     ledger = _Ledger(sender, timeline)
     deliveries: list[DeliveryRecord] = []
 
@@ -250,6 +254,7 @@ def simulate(
             epoch_unix=scenario.start.timestamp(),
             origin=origin,
             sink=delivered,
+            site=simulated_site(scenario.seed),
         )
         app = make_source(source, scenario, backlog_size, origin) if isinstance(source, str) else source
 

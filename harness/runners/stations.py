@@ -21,6 +21,8 @@ from collections.abc import Callable
 from ionotrail.harness.channel.scenario import Scenario
 from ionotrail.harness.demo.gauge import REPORT_INTERVAL_S, DemoGauge
 from ionotrail.harness.emulators.master import DeliveryRecord, MasterStation
+from ionotrail.terminal.auth.authenticator import TerminalAuthenticator
+from ionotrail.terminal.auth.keys import SiteSecret, TerminalRoot
 from ionotrail.terminal.delivery.sender import Sender
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link.policy import by_name
@@ -59,13 +61,15 @@ def terminal_station(
     observer: Observer | None = None,
     limits: Limits = DEFAULT_LIMITS,
     store: Store | None = None,
+    root: TerminalRoot | None = None,
 ) -> TerminalService:
     """The reference terminal with the demo gauge, on ``port``; ``origin`` is the loop
     time at which it starts (its reports carry Unix creation times)."""
     limits = link_limits(scenario, limits)
     sender = Sender(scenario.terminal_address, scenario.master_address, limits=limits)
     fragment_policy = by_name(policy, scenario.bit_rate, tau_scale=(scenario.down_mhz / scenario.up_mhz) ** 2)
-    link = Link(sender, fragment_policy, bit_rate=scenario.bit_rate, duplex=Duplex(scenario.duplex), limits=limits)
+    auth = TerminalAuthenticator(root) if root is not None else None
+    link = Link(sender, fragment_policy, bit_rate=scenario.bit_rate, duplex=Duplex(scenario.duplex), limits=limits, auth=auth)
     gauge = DemoGauge(
         random.Random(f"gauge-{scenario.seed}"), epoch_unix=time.time() - origin, start=origin, interval_s=report_every_s
     )
@@ -80,6 +84,7 @@ def master_station(
     sink: Callable[[DeliveryRecord], None] | None = None,
     on_arrival: Callable[[Arrival], None] | None = None,
     store: Store | None = None,
+    site: SiteSecret | None = None,
 ) -> MasterStation:
     """The master on ``port``; ``origin`` is the loop time at which it starts."""
     epoch = time.time() - (asyncio.get_running_loop().time() - origin)  # Unix time at origin
@@ -92,4 +97,5 @@ def master_station(
         sink=sink,
         on_arrival=on_arrival,
         store=store,
+        site=site,
     )

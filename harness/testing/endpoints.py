@@ -36,10 +36,12 @@ from collections.abc import Callable
 from hypothesis import event
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, rule
+from ionotrail.harness.runners.keying import simulated_site, simulated_terminal
+from ionotrail.terminal.auth.authenticator import MasterAuthenticator
 from ionotrail.terminal.delivery.rangeset import RangeSet
 from ionotrail.terminal.delivery.sender import Sender
 from ionotrail.terminal.errors import DecodeError
-from ionotrail.terminal.limits import Limits
+from ionotrail.terminal.limits import FORMAT_VERSION, Limits
 from ionotrail.terminal.link.master import Delivered, MasterEffect, MasterEndpoint, ProbeChanged
 from ionotrail.terminal.link.policy import Adaptive, Fixed, FragmentPolicy, StopAndWait
 from ionotrail.terminal.link.terminal import Arrival, CommandArrived, Duplex, Effect, Link, Transmit
@@ -82,7 +84,10 @@ class EndpointsMachine(RuleBasedStateMachine):
     )
     def start(self, policy: str, duplex: Duplex, sizes: list[int]) -> None:
         event(f"policy {policy}, {duplex.value} duplex")
-        self.link = Link(self.make_sender(), POLICIES[policy](), bit_rate=BIT_RATE, duplex=duplex, limits=LIMITS)
+        self.link = Link(
+            self.make_sender(), POLICIES[policy](), bit_rate=BIT_RATE, duplex=duplex, limits=LIMITS, auth=simulated_terminal(0, TERMINAL)
+        )
+        self.other = simulated_terminal(0, OTHER)
         self.master = self.make_master()
         for size in sizes:
             self.queue(size)
@@ -93,7 +98,7 @@ class EndpointsMachine(RuleBasedStateMachine):
 
     def make_master(self) -> MasterEndpoint:
         """The master endpoint; a subclass may put another one under test."""
-        return MasterEndpoint(MASTER, limits=LIMITS)
+        return MasterEndpoint(MASTER, limits=LIMITS, auth=MasterAuthenticator(simulated_site(0)))
 
     # --- the application and the operator ------------------------------------------------
 
@@ -119,7 +124,9 @@ class EndpointsMachine(RuleBasedStateMachine):
         pending = self.master.pending_commands
         if pending and pending[0][0] == OTHER:
             command_id = pending[0][1].command_id
-            self._master_effects(self.master.on_frame(encode(Reply(OTHER, MASTER, command_id, ReplyStatus.OK)), self.now))
+            sig = self.other.sign_reply(frame_version=FORMAT_VERSION, master=MASTER, command_id=command_id, status=0, result=b"")
+            reply = Reply(OTHER, MASTER, command_id, ReplyStatus.OK, b"", sig.epoch, sig.counter, sig.tag)
+            self._master_effects(self.master.on_frame(encode(reply), self.now))
 
     # --- the channel -------------------------------------------------------------------
 
@@ -216,6 +223,9 @@ class EndpointsMachine(RuleBasedStateMachine):
                     self.uplink.pop(0)
             elif isinstance(effect, CommandArrived):
                 self.link.reply(effect.command_id, ReplyStatus.OK)
+        if self.link.unsaved:  # the shell's commit (in memory here): replies go only after it
+            self.link.durable_batch()
+            self.link.durable_committed()
 
     def _check_fragment(self, frame: bytes) -> None:
         fragment = decode(frame)

@@ -379,8 +379,10 @@ def make_link(variant: int) -> Any:
     for n in range(3):
         sender.queue(bytes([n + 1]) * (200 + 300 * n), 0.0)
     policy = (Fixed(64), Adaptive(4800.0), StopAndWait(48))[variant % 3]
+    from ionotrail.harness.runners.keying import simulated_terminal
+
     duplex = Duplex.HALF if variant // 3 % 2 else Duplex.FULL
-    return Link(sender, policy, bit_rate=4800.0, duplex=duplex)  # type: ignore[arg-type]
+    return Link(sender, policy, bit_rate=4800.0, duplex=duplex, auth=simulated_terminal(0, TERMINAL))  # type: ignore[arg-type]
 
 
 def _fire_link(link: Any, until: float) -> None:
@@ -423,6 +425,9 @@ def feed_link(link: Any, data: bytes, start: float = 0.0) -> float:
         for effect in link.on_frame(Arrival(frame, t, snr)):
             if isinstance(effect, CommandArrived):
                 link.reply(effect.command_id, ReplyStatus.OK, effect.arguments[:8])
+        if link.unsaved:  # the shell's commit, in memory
+            link.durable_batch()
+            link.durable_committed()
     return t
 
 
@@ -438,10 +443,12 @@ def make_master() -> Any:
     """A master endpoint with a command queued for each of two terminals.  Its
     command turn and reassembly lifetime are short, so that a stream of a few
     seconds sees turns rotate and partial messages expire."""
+    from ionotrail.harness.runners.keying import simulated_site
+    from ionotrail.terminal.auth.authenticator import MasterAuthenticator
     from ionotrail.terminal.limits import Limits
     from ionotrail.terminal.link.master import MasterEndpoint
 
-    master = MasterEndpoint(MASTER, limits=Limits(command_turn=1.0, reassembly_lifetime=5.0))
+    master = MasterEndpoint(MASTER, limits=Limits(command_turn=1.0, reassembly_lifetime=5.0), auth=MasterAuthenticator(simulated_site(0)))
     master.command(TERMINAL, 1, b"\x03\x84", 0.0)
     master.command(OTHER_TERMINAL, 2, b"", 0.0)
     return master

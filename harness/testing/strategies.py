@@ -9,6 +9,7 @@ from hypothesis import strategies as st
 from ionotrail.harness.testing.faults import FaultSchedule
 from ionotrail.terminal.delivery.sender import Priority
 from ionotrail.terminal.limits import (
+    AUTH_TAG_BYTES,
     DEFAULT_LIMITS,
     MAX_ACK_RANGES,
     MAX_COMMAND_BYTES,
@@ -19,6 +20,7 @@ from ionotrail.terminal.wire import Ack, AckBlock, Command, CommandBlock, Fragme
 
 u8 = st.integers(0, 0xFF)
 u16 = st.integers(0, 0xFFFF)
+u32 = st.integers(0, 0xFFFFFFFF)
 
 
 @st.composite
@@ -43,7 +45,8 @@ def ack_blocks(draw: st.DrawFn) -> AckBlock:
     return AckBlock(draw(u16), draw(u16), ranges, outcome == "complete", draw(st.booleans()), outcome == "refused")
 
 
-command_blocks = st.builds(CommandBlock, u8, u8, st.binary(max_size=MAX_COMMAND_BYTES))
+tags = st.binary(min_size=AUTH_TAG_BYTES, max_size=AUTH_TAG_BYTES)
+command_blocks = st.builds(CommandBlock, u8, u8, st.binary(max_size=MAX_COMMAND_BYTES), u16, u32, tags)
 
 
 @st.composite
@@ -64,7 +67,7 @@ def fragments(draw: st.DrawFn) -> Fragment:
 
 acks = st.builds(Ack, u8, ack_blocks())
 commands = st.builds(Command, u8, u16, command_blocks)
-replies = st.builds(Reply, u16, u8, u8, st.sampled_from(ReplyStatus), st.binary(max_size=MAX_COMMAND_BYTES))
+replies = st.builds(Reply, u16, u8, u8, st.sampled_from(ReplyStatus), st.binary(max_size=MAX_COMMAND_BYTES), u16, u32, tags)
 
 frames = st.one_of(probes(), fragments(), acks, commands, replies)
 """Any valid frame representation."""

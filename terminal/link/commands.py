@@ -11,6 +11,12 @@ executed twice, however often or in whatever order it arrives.  The master
 issues a terminal's next id only after the last one is answered, so it never
 runs ahead of the window.
 
+What was run survives a power cut: the window and the kept replies are a
+store record (:meth:`CommandMemory.batch`), committed before the command runs
+and again when its reply is made.  A command is therefore run at most once:
+cut between the two commits, it counts as run and a repeat is answered
+``RESULT_LOST``.
+
 Every store is bounded: the window is a bitmap of ``command_window`` bits,
 the replies kept for repeats are the newest ``max_remembered_commands``, and
 replies waiting for airtime are at most ``max_queued_replies`` (the oldest
@@ -23,7 +29,12 @@ import dataclasses
 import enum
 from collections import OrderedDict, deque
 
+from ionotrail.terminal.errors import BadField
 from ionotrail.terminal.limits import Limits
+from ionotrail.terminal.outbox import records
+from ionotrail.terminal.outbox.store import Batch
+
+RECORD_KEY = "commands/memory"
 
 ID_BITS = 8
 ID_SPACE = 1 << ID_BITS
@@ -58,6 +69,8 @@ class CommandMemory:
         self._seen = 0  # bit k set: id top - k executed
         self._replies: OrderedDict[int, bytes | None] = OrderedDict()  # id -> reply frame (None: not yet answered)
         self._queue: deque[bytes] = deque()
+        self._unsaved = False
+        self._lost: set[int] = set()  # run before the last boot, reply never made
 
     def classify(self, command_id: int) -> Verdict:
         """What to do with an arriving command id (changes nothing)."""
@@ -88,7 +101,15 @@ class CommandMemory:
             self._replies.move_to_end(command_id)
             while len(self._replies) > self.keep_replies:
                 self._replies.popitem(last=False)
+            self._unsaved = True
         return verdict
+
+    def result_lost(self, command_id: int) -> bool:
+        """Run before the last boot, and its reply was never made (asked once: then answered)."""
+        if command_id in self._lost and self.awaiting_reply(command_id):
+            self._lost.discard(command_id)
+            return True
+        return False
 
     def awaiting_reply(self, command_id: int) -> bool:
         return command_id in self._replies and self._replies[command_id] is None
@@ -97,6 +118,7 @@ class CommandMemory:
         """The application's reply frame for an executed command: keep it for
         repeats and queue it for the next transmit opportunity."""
         self._replies[command_id] = reply
+        self._unsaved = True
         self._enqueue(reply)
 
     def next_reply(self) -> bytes | None:
@@ -111,6 +133,40 @@ class CommandMemory:
     def kept(self) -> int:
         """Command ids whose replies are kept for repeats."""
         return len(self._replies)
+
+    # --- durable state -------------------------------------------------------------
+
+    @property
+    def unsaved(self) -> bool:
+        return self._unsaved
+
+    def batch(self) -> Batch:
+        """The memory as one record (the window and the kept replies)."""
+        value = records.COMMANDS.build(
+            {
+                "has_top": self._top is not None,
+                "top": self._top or 0,
+                "seen": self._seen.to_bytes((self.window + 7) // 8, "big"),
+                "replies": [{"command_id": k, "answered": v is not None, "frame": v or b""} for k, v in self._replies.items()],
+            }
+        )
+        return Batch({RECORD_KEY: bytes(value)})
+
+    def committed(self) -> None:
+        self._unsaved = False
+
+    def restore(self, stored: dict[str, bytes]) -> None:
+        """Take up the memory a store kept (at boot, before any command arrives)."""
+        if RECORD_KEY not in stored:
+            return
+        value = records.parse(records.COMMANDS, RECORD_KEY, stored[RECORD_KEY])
+        if len(value.seen) != (self.window + 7) // 8 or len(value.replies) > self.keep_replies:
+            raise BadField(f"record {RECORD_KEY}: a window or reply count this terminal does not keep")
+        self._top = value.top if value.has_top else None
+        self._seen = int.from_bytes(value.seen, "big") & ((1 << self.window) - 1)
+        self._replies = OrderedDict((r.command_id, bytes(r.frame) if r.answered else None) for r in value.replies)
+        self._lost = {k for k, v in self._replies.items() if v is None}
+        self._unsaved = False
 
     def _enqueue(self, reply: bytes) -> None:
         self._queue.append(reply)

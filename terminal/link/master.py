@@ -22,6 +22,14 @@ runner share one implementation:
   not kept across a restart of the master: a restarted master must be given
   a ``first_command_id`` past the ids it used, or a terminal's command window
   takes its first new command for a repeat of an old one.
+* **authentication.**  Every command is signed (key epoch, counter, tag;
+  docs/keys.md) by the :class:`~ionotrail.terminal.auth.authenticator.MasterAuthenticator`
+  when its turn starts, with a fresh counter each turn, and every reply is
+  checked before it counts; a reply that fails is counted and ignored.  A
+  master without keys sends no commands.  :meth:`MasterEndpoint.rotate_keys`
+  moves a terminal to its next key epoch.  The authenticator's state must be
+  durable before a probe carrying a newly signed block goes out
+  (:attr:`MasterEndpoint.auth`: the shell commits its ``batch()``).
 * **reassembly** of every terminal's messages, with a duplicate window per
   terminal (:class:`~ionotrail.terminal.delivery.reassembly.Reassembler`), and
   its deadline: a half-built message expires ``reassembly_lifetime`` after its
@@ -39,9 +47,10 @@ import dataclasses
 from collections import OrderedDict, deque
 from typing import NamedTuple
 
+from ionotrail.terminal.auth.authenticator import MasterAuthenticator, Outcome
 from ionotrail.terminal.delivery.reassembly import Delivery, Reassembler
 from ionotrail.terminal.errors import DecodeError, Reason, UsageError
-from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.limits import DEFAULT_LIMITS, FORMAT_VERSION, Limits
 from ionotrail.terminal.link.commands import ID_SPACE as COMMAND_ID_SPACE
 from ionotrail.terminal.link.timer import Purpose, Timer, due_at
 from ionotrail.terminal.wire import AckBlock, CommandBlock, Fragment, Probe, Reply, decode
@@ -79,6 +88,8 @@ class MasterCounters:
     deliveries: int = 0
     replies: int = 0
     stray_replies: int = 0
+    rejected_replies: int = 0
+    """Replies whose authentication failed (the authenticator counts why)."""
     other_frames: int = 0
     probe_updates: int = 0
     news_dropped: int = 0
@@ -98,12 +109,16 @@ class _Pending(NamedTuple):
 class MasterEndpoint:
     """The master's side of the burst link, for any number of terminals."""
 
-    def __init__(self, address: int, *, limits: Limits = DEFAULT_LIMITS, first_command_id: int = 0) -> None:
+    def __init__(
+        self, address: int, *, limits: Limits = DEFAULT_LIMITS, first_command_id: int = 0, auth: MasterAuthenticator | None = None
+    ) -> None:
         Probe(address, 0)  # validates the address
         self.address = address
         self.limits = limits
         self.reassembler = Reassembler(limits)
         self.counters = MasterCounters()
+        self.auth = auth
+        """The site's keys: signs commands, checks replies (None: no commands)."""
         self.timer: Timer | None = None
         """When :meth:`on_timer` must next be called, and what for."""
         self._sequence = 0
@@ -142,6 +157,8 @@ class MasterEndpoint:
     def command(self, terminal: int, opcode: int, arguments: bytes, now: float) -> tuple[int, list[MasterEffect]]:
         """Queue a command for ``terminal``; returns its id and the effects (a new
         probe when it goes on the air at once)."""
+        if self.auth is None:
+            raise UsageError("commands are signed: this master holds no site key (ionotrail keys new-site)")
         if len(self._commands) >= self.limits.max_queued_commands:
             raise UsageError(f"the master already holds {self.limits.max_queued_commands} unanswered commands")
         command_id = self._next_command_id.get(terminal, self._first_command_id)
@@ -154,6 +171,15 @@ class MasterEndpoint:
             self._start_turn(now, effects)
         self._arm(now)
         return command_id, effects
+
+    def rotate_keys(self, terminal: int, now: float) -> tuple[int, list[MasterEffect]]:
+        """Move ``terminal`` to its next key epoch: the rotate command, queued like
+        any command; until its reply (signed in the new epoch) arrives, the
+        terminal's other commands wait.  Commit :attr:`auth`'s batch first."""
+        if self.auth is None:
+            raise UsageError("commands are signed: this master holds no site key (ionotrail keys new-site)")
+        opcode, arguments = self.auth.begin_rotation(terminal)
+        return self.command(terminal, opcode, arguments, now)
 
     # --- inputs ------------------------------------------------------------------------
 
@@ -243,6 +269,14 @@ class MasterEndpoint:
         if position is None or key not in self._aired:
             self.counters.stray_replies += 1
             return
+        assert self.auth is not None  # commands were queued, so the master holds keys
+        outcome = self.auth.receive_reply(
+            reply.terminal, frame_version=FORMAT_VERSION, master=self.address, command_id=reply.command_id,
+            status=int(reply.status), result=reply.result, epoch=reply.epoch, counter=reply.counter, tag=reply.tag,
+        )  # fmt: skip
+        if outcome is not Outcome.ACCEPTED:
+            self.counters.rejected_replies += 1
+            return
         self.counters.replies += 1
         del self._commands[position]
         self._aired.discard(key)
@@ -256,12 +290,29 @@ class MasterEndpoint:
             self._probe_changed(effects)
 
     def _start_turn(self, now: float, effects: list[MasterEffect]) -> None:
-        """The head command goes on the probes, polling its terminal, for one turn."""
-        self._polling = True
-        self._turn_ends = now + self.limits.command_turn
-        head = self._commands[0]
-        self._aired.add((head.terminal, head.block.command_id))
-        self._probe_changed(effects)
+        """The head command goes on the probes, polling its terminal, for one
+        turn, signed afresh (a new counter each turn).  While a terminal's keys
+        rotate only its rotate command may go: others wait behind it."""
+        assert self.auth is not None
+        for _ in range(len(self._commands)):
+            head = self._commands[0]
+            block = head.block
+            try:
+                signature = self.auth.sign_command(
+                    head.terminal, frame_version=FORMAT_VERSION, master=self.address, command_id=block.command_id,
+                    opcode=block.opcode, arguments=block.arguments,
+                )  # fmt: skip
+            except UsageError:  # a command for a terminal whose keys are rotating: after the rotate
+                self._commands.rotate(-1)
+                continue
+            signed = CommandBlock(block.command_id, block.opcode, block.arguments, signature.epoch, signature.counter, signature.tag)
+            self._commands[0] = _Pending(head.terminal, signed)
+            self._polling = True
+            self._turn_ends = now + self.limits.command_turn
+            self._aired.add((head.terminal, block.command_id))
+            self._probe_changed(effects)
+            return
+        self._polling, self._turn_ends = False, now + self.limits.command_turn  # nothing may go yet: rest
 
     # --- the probe and the timer -------------------------------------------------------
 

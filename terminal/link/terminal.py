@@ -29,16 +29,19 @@ import enum
 from collections.abc import Callable, Sequence
 from typing import NamedTuple
 
+from ionotrail.terminal.auth.authenticator import Action as AuthAction
+from ionotrail.terminal.auth.authenticator import TerminalAuthenticator
 from ionotrail.terminal.delivery.sender import Sender, SenderEvent
 from ionotrail.terminal.errors import DecodeError, ProtocolError, UsageError
-from ionotrail.terminal.limits import DEFAULT_LIMITS, MAX_COMMAND_BYTES, MAX_FRAME_BYTES, Limits
+from ionotrail.terminal.limits import DEFAULT_LIMITS, FORMAT_VERSION, MAX_COMMAND_BYTES, MAX_FRAME_BYTES, Limits
 from ionotrail.terminal.link.commands import CommandMemory, Verdict
 from ionotrail.terminal.link.gate import UplinkGate
 from ionotrail.terminal.link.policy import FragmentPolicy
 from ionotrail.terminal.link.table import TRANSITIONS, Action, Input, State, classify_probe, classify_timer, decide
 from ionotrail.terminal.link.timer import Purpose, Timer, due_at
+from ionotrail.terminal.outbox.store import Batch
 from ionotrail.terminal.power.duty import DutyCycle
-from ionotrail.terminal.wire import Ack, AckBlock, Command, Frame, Probe, Reply, decode, encode
+from ionotrail.terminal.wire import Ack, AckBlock, Command, CommandBlock, Frame, Probe, Reply, decode, encode
 from ionotrail.terminal.wire.formats import ReplyStatus
 
 __all__ = [
@@ -125,6 +128,12 @@ class LinkCounters:
     openings_heard: int = 0
     """Probes heard after more than burst_silence without one: the openings the
     receiver caught (what the power scheduler learns burst rates from)."""
+    commands_without_key: int = 0
+    """Commands refused because this terminal holds no key (the authenticator
+    counts the rest: forged, replayed, stale, truncated, wrong epoch)."""
+    command_repeats: int = 0
+    """The same signed command block heard again (the master repeats it on every
+    probe of its turn): answered from the kept reply, never run again."""
 
 
 class Link:
@@ -140,12 +149,14 @@ class Link:
         limits: Limits = DEFAULT_LIMITS,
         gate: UplinkGate | None = None,
         duty: DutyCycle | None = None,
+        auth: TerminalAuthenticator | None = None,
     ) -> None:
         """``gate`` stops transmissions into a path open only downward
         (:mod:`~ionotrail.terminal.link.gate`); ``duty`` holds a transmit
         duty-cycle limit (:mod:`~ionotrail.terminal.power.duty`).  A frame is
         *ready* only when both allow it, so neither needs a cell of its own in
-        the table: a refused frame is one not ready."""
+        the table: a refused frame is one not ready.  ``auth`` holds the
+        terminal's keys: without it every command is refused."""
         if not bit_rate > 0:
             raise UsageError(f"bit_rate must be positive, not {bit_rate!r}")
         self.sender = sender
@@ -166,6 +177,9 @@ class Link:
         self._last_frame: Frame | None = None
         self.commands = CommandMemory(limits)
         """Executed command ids, kept replies and replies waiting (its counters count commands)."""
+        self.auth = auth
+        """The terminal's keys and anti-replay state (docs/keys.md)."""
+        self._last_command: CommandBlock | None = None  # the last signed block accepted
         self.gate = gate
         self.duty = duty
         self._max_airtime = self._airtime(MAX_FRAME_BYTES)  # what the duty check reserves for the next frame
@@ -210,7 +224,7 @@ class Link:
             self._take_ack(frame.ack, arrival, effects)
             return effects
         if isinstance(frame, Command) and frame.master == self.master and frame.terminal == self.terminal:
-            self._take_command(frame.command.command_id, frame.command.opcode, frame.command.arguments, effects)
+            self._take_command(frame.command, effects)
             return effects
         if not isinstance(frame, Probe) or frame.master != self.master:
             self.counters.ignored_frames += 1
@@ -226,8 +240,7 @@ class Link:
             self._take_ack(frame.ack, arrival, effects)
         ours = frame.poll is None or frame.poll == self.terminal
         if frame.command is not None and frame.poll == self.terminal:
-            block = frame.command
-            self._take_command(block.command_id, block.opcode, block.arguments, effects)
+            self._take_command(frame.command, effects)
         self._last_probe = arrival.time
         self._last_probe_ours = ours
         if self.state is not _LISTENING:  # in a burst (a new one starts in START_BURST)
@@ -269,7 +282,47 @@ class Link:
             raise UsageError(f"command {command_id} is not awaiting a reply")
         if len(result) > MAX_COMMAND_BYTES:
             raise UsageError(f"reply result of {len(result)} bytes exceeds {MAX_COMMAND_BYTES}")
-        self.commands.answered(command_id, encode(Reply(self.terminal, self.master, command_id, status, result)))
+        assert self.auth is not None  # a command awaiting a reply was authenticated
+        signature = self.auth.sign_reply(
+            frame_version=FORMAT_VERSION, master=self.master, command_id=command_id, status=int(status), result=result
+        )
+        reply = Reply(self.terminal, self.master, command_id, status, result, signature.epoch, signature.counter, signature.tag)
+        self.commands.answered(command_id, encode(reply))
+
+    # --- durable state: keys, anti-replay windows, commands run --------------------------
+
+    @property
+    def unsaved(self) -> bool:
+        """The keys' or the commands' state changed and is not yet durable.  While
+        it is, no reply is sent (a reply must never speak for state a power cut
+        could still take back); the shell commits :meth:`durable_batch`."""
+        return self.commands.unsaved or (self.auth is not None and self.auth.dirty)
+
+    def durable_batch(self) -> Batch:
+        """What to commit: the key state's records and the command memory's."""
+        batch = self.auth.batch() if self.auth is not None and self.auth.dirty else Batch()
+        return batch.merged(self.commands.batch()) if self.commands.unsaved else batch
+
+    def durable_committed(self) -> None:
+        """The last :meth:`durable_batch` is durable: replies may go."""
+        if self.auth is not None:
+            self.auth.committed()
+        self.commands.committed()
+
+    def restore_durable(self, records: dict[str, bytes]) -> None:
+        """Take up, at boot, the key state and command memory a store kept
+        (records of other kinds are ignored).  Kept keys replace the ones the
+        link was built with (they may have been rotated since provisioning)."""
+        from ionotrail.terminal.auth.authenticator import ROOT_KEY
+
+        if ROOT_KEY in records and self.auth is not None:
+            kept = TerminalAuthenticator.restore(records, tag_bytes=self.auth.tag_bytes, window=self.auth.window_size)
+            if kept.terminal != self.terminal:
+                raise ProtocolError(f"the store keeps the keys of terminal 0x{kept.terminal:04x}, not 0x{self.terminal:04x}")
+            if kept.epoch < self.auth.epoch:
+                raise ProtocolError(f"the store keeps keys of epoch {kept.epoch}, older than the key file's {self.auth.epoch}")
+            self.auth = kept  # its anti-replay window and counters go on
+        self.commands.restore(records)
 
     def indifferent_to(self, raw: bytes) -> bool:
         """Would hearing ``raw`` now give no effect, and change only the probe
@@ -327,9 +380,9 @@ class Link:
     # --- facts ------------------------------------------------------------------------
 
     def _has_something(self) -> bool:
-        """Replies waiting, or messages pending (under stop-and-wait, within a
-        burst: none still awaiting its acknowledgement)."""
-        if self.commands.queued:
+        """Replies waiting (and free to go), or messages pending (under
+        stop-and-wait, within a burst: none still awaiting its acknowledgement)."""
+        if self.commands.queued and not self.unsaved:
             return True
         if self.policy.waits_for_ack and self.state is not State.LISTENING and self.sender.awaiting:
             return False  # within a burst; a new burst presumes the last one's fragment lost
@@ -345,10 +398,10 @@ class Link:
 
     def _ready(self) -> bool:
         """A frame could be built now: a reply waits, or the sender would give a fragment."""
-        return bool(self.commands.queued) or (self._has_something() and self.sender.can_send())
+        return bool(self.commands.queued and not self.unsaved) or (self._has_something() and self.sender.can_send())
 
     def _prepare(self, now: float) -> bytes | None:
-        reply = self.commands.next_reply()
+        reply = None if self.unsaved else self.commands.next_reply()
         if reply is not None:
             self.counters.replies_sent += 1
             return reply
@@ -440,6 +493,35 @@ class Link:
                 self._burst_confirmed += 1
             self.policy.fragment_settled(size, lost)
 
-    def _take_command(self, command_id: int, opcode: int, arguments: bytes, effects: list[Effect]) -> None:
-        if self.commands.arrived(command_id) is Verdict.NEW:
-            effects.append(CommandArrived(command_id, opcode, arguments))
+    def _take_command(self, block: CommandBlock, effects: list[Effect]) -> None:
+        """A command block for us: authenticated first (tag, then anti-replay
+        window; a rejection changes nothing and is counted), then run once.
+        The master repeats a signed block on every probe of its turn; the same
+        block again is a repeat of an accepted command, answered from the kept
+        reply.  A new turn comes with a fresh counter, and an id already run
+        is answered, not run again."""
+        if block == self._last_command:
+            self.counters.command_repeats += 1
+            self.commands.arrived(block.command_id)
+            return
+        auth = self.auth
+        if auth is None:
+            self.counters.commands_without_key += 1
+            return
+        check = auth.receive_command(
+            frame_version=FORMAT_VERSION, master=self.master, command_id=block.command_id, opcode=block.opcode,
+            arguments=block.arguments, epoch=block.epoch, counter=block.counter, tag=block.tag,
+        )  # fmt: skip
+        if not check.accepted:
+            return
+        self._last_command = block
+        verdict = self.commands.arrived(block.command_id)
+        if verdict is Verdict.REPEAT and self.commands.result_lost(block.command_id):
+            self.reply(block.command_id, ReplyStatus.RESULT_LOST)  # run before a power cut took its reply
+        if verdict is not Verdict.NEW:
+            return
+        if check.action is AuthAction.EXECUTE:
+            effects.append(CommandArrived(block.command_id, block.opcode, block.arguments))
+        else:  # the stack's own: a key rotation, answered here
+            status = ReplyStatus.REFUSED if check.action is AuthAction.ROTATE_REFUSED else ReplyStatus.OK
+            self.reply(block.command_id, status)

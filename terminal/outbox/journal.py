@@ -184,7 +184,7 @@ class MasterJournal:
         for key in batch.puts:
             if key.startswith(WINDOW_PREFIX):
                 self.counters.window_writes += 1
-            else:
+            elif key.startswith(PARTIAL_PREFIX):
                 self.counters.partial_writes += 1
         self.counters.partial_deletes += sum(1 for key in batch.deletes if key.startswith(PARTIAL_PREFIX))
         self._partials = set(r.partials())

@@ -87,12 +87,31 @@ DELIVERY = Struct(
 """A delivered message, appended to the master's log in the commit that
 records its id as completed."""
 
+COMMANDS = Struct(
+    VERSION,
+    "has_top" / Flag * "a command has run",
+    "top" / Int8ub * "the highest command id run (the window's right edge)",
+    "seen" / Prefixed(Int8ub, GreedyBytes) * "ids run behind it, bit k = top - k, big-endian",
+    "replies"
+    / PrefixedArray(
+        Int8ub,
+        Struct(
+            "command_id" / Int8ub,
+            "answered" / Flag,
+            "frame" / Prefixed(Int16ub, GreedyBytes),
+        ),
+    )
+    * "the newest commands run, with their signed reply frames when made",
+)
+"""The terminal's memory of commands run (key ``commands/memory``)."""
+
 DECLARATIONS: dict[str, Construct] = {
     "counter": COUNTER,
     "message": MESSAGE,
     "window": WINDOW,
     "partial": PARTIAL,
     "delivery": DELIVERY,
+    "commands": COMMANDS,
 }
 
 

@@ -45,6 +45,7 @@ from ionotrail.terminal.wire.layout import (
     optional,
     packer,
     single,
+    size,
     trailer_bytes,
 )
 
@@ -167,7 +168,8 @@ _ACK_FRAME_FIXED = packer(_ACK, ("head", "master"), "ack")
 _ACK_FIXED = packer(formats.ACK_BLOCK, ("terminal", "message_id", "status"), "ack block")
 _STATUS_AT = packer(formats.ACK_BLOCK, ("terminal", "message_id"), "ack block").size
 _RANGE = packer(element(formats.ACK_BLOCK, "ranges"), ("start", "end"), "ack range")
-_COMMAND_FIXED = packer(formats.COMMAND_BLOCK, ("command_id", "opcode", "length"), "command block")
+_COMMAND_FIXED = packer(formats.COMMAND_BLOCK, ("command_id", "opcode", "epoch", "counter", "length"), "command block")
+_TAG_BYTES = size(member(formats.COMMAND_BLOCK, "tag"), "command tag")
 _STATUS = bits(formats.ACK_BLOCK, "status", ("complete", "downlink", "refused", "reserved", "count"))
 _STATUS_COMPLETE = _STATUS["complete"].mask
 _STATUS_DOWNLINK = _STATUS["downlink"].mask
@@ -189,7 +191,7 @@ _ACK_BLOCKS = tuple(struct.Struct(_ACK_FIXED.format + _RANGE.format.lstrip(">") 
 """A whole acknowledgement block with n ranges: terminal, message id, status, then the ranges' ends in order."""
 
 expect_names(formats.ACK_BLOCK, ("terminal", "message_id", "status", "ranges"), "ack block")
-expect_names(formats.COMMAND_BLOCK, ("command_id", "opcode", "length", "arguments"), "command block")
+expect_names(formats.COMMAND_BLOCK, ("command_id", "opcode", "epoch", "counter", "length", "arguments", "tag"), "command block")
 if _STATUS["count"].shift != 0:
     raise StaleLayout("ack status: the fast path reads the range count in the low bits")
 if _STATUS_COUNT != MAX_ACK_RANGES:
@@ -295,8 +297,8 @@ def pack_ack_block(block: AckBlock) -> bytes:
 
 def pack_command_block(block: CommandBlock) -> bytes:
     """The wire bytes of a command block (as it rides in a probe)."""
-    command_id, opcode, arguments = block
-    return _COMMAND_FIXED.pack(command_id, opcode, len(arguments)) + arguments
+    command_id, opcode, arguments, epoch, counter, tag = block
+    return _COMMAND_FIXED.pack(command_id, opcode, epoch, counter, len(arguments)) + arguments + tag
 
 
 def encode_ack(frame: Ack) -> bytes:
@@ -375,12 +377,12 @@ def decode_probe(data: bytes) -> Probe:
     if flags & _FLAG_COMMAND:
         if pos + _COMMAND_FIXED_BYTES > end:
             raise _cut_short("probe", size)
-        command_id, opcode, length = _COMMAND_FIXED.unpack_from(data, pos)
+        command_id, opcode, epoch, counter, length = _COMMAND_FIXED.unpack_from(data, pos)
         pos += _COMMAND_FIXED_BYTES
-        if pos + length > end:
+        if pos + length + _TAG_BYTES > end:
             raise _cut_short("probe", size)
-        command = (command_id, opcode, data[pos : pos + length])
-        pos += length
+        command = (command_id, opcode, data[pos : pos + length], epoch, counter, data[pos + length : pos + length + _TAG_BYTES])
+        pos += length + _TAG_BYTES
     if pos != end:
         raise _leftover("probe", end - pos)
     if valid and (command is None or (poll is not None and len(command[2]) <= MAX_COMMAND_BYTES)):

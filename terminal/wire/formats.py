@@ -44,7 +44,7 @@ from construct import (
     this,
 )
 from construct.core import StreamError
-from ionotrail.terminal.limits import FRAME_CRC_BYTES, MESSAGE_CRC_BYTES, OFFSET_BITS
+from ionotrail.terminal.limits import AUTH_TAG_BYTES, FRAME_CRC_BYTES, MESSAGE_CRC_BYTES, OFFSET_BITS
 from ionotrail.terminal.wire.crc import crc16, crc32c
 
 
@@ -65,6 +65,8 @@ class ReplyStatus(enum.IntEnum):
     UNKNOWN_OPCODE = 1
     BAD_ARGUMENTS = 2
     REFUSED = 3
+    RESULT_LOST = 4
+    """Executed before a power cut that lost its result (commands run at most once)."""
 
 
 class LeftoverBytes(ConstructError):  # type: ignore[misc]
@@ -145,11 +147,14 @@ holds, so that the sender resends only the holes."""
 
 COMMAND_BLOCK = Struct(
     "command_id" / Int8ub * "echoed by the reply; repeats are not re-executed",
-    "opcode" / Int8ub * "what to do (application defined)",
+    "opcode" / Int8ub * "what to do (0x00-0xEF application defined, 0xF0-0xFF the stack's)",
+    "epoch" / Int16ub * "key epoch the tag was made with (docs/keys.md)",
+    "counter" / Int32ub * "the master's command counter for this terminal; each value accepted once",
     "length" / Rebuild(Int8ub, len_(this.arguments)) * "argument bytes that follow",
     "arguments" / Bytes(this.length) * "opcode arguments",
+    "tag" / Bytes(AUTH_TAG_BYTES) * "truncated HMAC-SHA-256 over every field that affects processing",
 )
-"""A downlink command for one terminal."""
+"""A downlink command for one terminal, authenticated (docs/keys.md)."""
 
 PROBE = _framed(
     HEAD,
@@ -208,11 +213,14 @@ REPLY = _framed(
     "terminal" / TERMINAL,
     "master" / MASTER,
     "command_id" / Int8ub * "the command answered",
-    "status" / Int8ub * "0 ok, 1 unknown opcode, 2 bad arguments, 3 refused",
+    "status" / Int8ub * "0 ok, 1 unknown opcode, 2 bad arguments, 3 refused, 4 result lost",
+    "epoch" / Int16ub * "key epoch the tag was made with",
+    "counter" / Int32ub * "the terminal's reply counter; each value accepted once",
     "length" / Rebuild(Int8ub, len_(this.result)) * "result bytes that follow",
     "result" / Bytes(this.length) * "opcode result",
+    "tag" / Bytes(AUTH_TAG_BYTES) * "truncated HMAC-SHA-256 over every field that affects processing",
 )
-"""A terminal's answer to a command."""
+"""A terminal's answer to a command, authenticated."""
 
 SEALED_MESSAGE = Struct(
     "body" / Body(GreedyBytes, MESSAGE_CRC_BYTES) * "application payload",

@@ -16,6 +16,7 @@ from typing import NamedTuple, Self
 
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.limits import (
+    AUTH_TAG_BYTES,
     FRAGMENT_OVERHEAD_BYTES,
     MAX_ACK_RANGES,
     MAX_COMMAND_BYTES,
@@ -30,7 +31,7 @@ from ionotrail.terminal.wire.layout import IDLE_PROBE_BYTES
 # block (with its CRC, for a frame) and the size of each repeated or optional part.
 _ACK_BLOCK_FIXED = layout.fixed_bytes(formats.ACK_BLOCK, ("ranges",))
 _RANGE_BYTES = layout.size(layout.element(formats.ACK_BLOCK, "ranges"))
-_COMMAND_BLOCK_FIXED = layout.fixed_bytes(formats.COMMAND_BLOCK, ("arguments",))
+_COMMAND_BLOCK_FIXED = layout.fixed_bytes(formats.COMMAND_BLOCK, ("arguments",))  # the tag included
 _POLL_BYTES = layout.size(layout.optional(layout.frame_fields(formats.PROBE), "poll"))
 _ACK_FIXED = layout.frame_bytes(formats.ACK, ("ack",))
 _COMMAND_FIXED = layout.frame_bytes(formats.COMMAND, ("command",))
@@ -55,6 +56,13 @@ def _bytes(name: str, value: object, most: int) -> bytes:
     data = bytes(value)
     if len(data) > most:
         raise UsageError(f"{name} is {len(data)} bytes; at most {most} fit")
+    return data
+
+
+def _tag(value: object) -> bytes:
+    data = _bytes("tag", value, AUTH_TAG_BYTES)
+    if len(data) != AUTH_TAG_BYTES:
+        raise UsageError(f"tag is {len(data)} bytes; the format carries exactly {AUTH_TAG_BYTES}")
     return data
 
 
@@ -147,19 +155,32 @@ class _CommandBlockFields(NamedTuple):
     command_id: int
     opcode: int
     arguments: bytes
+    epoch: int
+    counter: int
+    tag: bytes
+
+
+NO_TAG = bytes(AUTH_TAG_BYTES)
+"""The tag of a block not yet signed (no key accepts it)."""
 
 
 class CommandBlock(_CommandBlockFields):
-    """One downlink command: an id the reply echoes, an opcode, its arguments."""
+    """One downlink command: an id the reply echoes, an opcode, its arguments,
+    and its authentication (key epoch, counter, tag; docs/keys.md)."""
 
     __slots__ = ()
 
-    def __new__(cls, command_id: int, opcode: int, arguments: bytes = b"") -> Self:
+    def __new__(
+        cls, command_id: int, opcode: int, arguments: bytes = b"", epoch: int = 0, counter: int = 0, tag: bytes = NO_TAG
+    ) -> Self:
         return super().__new__(
             cls,
             _uint("command_id", command_id, 8),
             _uint("opcode", opcode, 8),
             _bytes("arguments", arguments, MAX_COMMAND_BYTES),
+            _uint("epoch", epoch, 16),
+            _uint("counter", counter, 32),
+            _tag(tag),
         )
 
     @property
@@ -328,6 +349,9 @@ class _ReplyFields(NamedTuple):
     command_id: int
     status: ReplyStatus
     result: bytes
+    epoch: int
+    counter: int
+    tag: bytes
 
 
 class Reply(_ReplyFields):
@@ -336,7 +360,17 @@ class Reply(_ReplyFields):
     __slots__ = ()
     frame_type = FrameType.REPLY
 
-    def __new__(cls, terminal: int, master: int, command_id: int, status: ReplyStatus, result: bytes = b"") -> Self:
+    def __new__(
+        cls,
+        terminal: int,
+        master: int,
+        command_id: int,
+        status: ReplyStatus,
+        result: bytes = b"",
+        epoch: int = 0,
+        counter: int = 0,
+        tag: bytes = NO_TAG,
+    ) -> Self:
         try:
             checked_status = ReplyStatus(status)
         except ValueError:
@@ -348,6 +382,9 @@ class Reply(_ReplyFields):
             _uint("command_id", command_id, 8),
             checked_status,
             _bytes("result", result, MAX_COMMAND_BYTES),
+            _uint("epoch", epoch, 16),
+            _uint("counter", counter, 32),
+            _tag(tag),
         )
 
     @property

@@ -27,7 +27,14 @@ def _ack_block_fields(block: AckBlock) -> FieldValues:
 
 
 def _command_block_fields(block: CommandBlock) -> FieldValues:
-    return {"command_id": block.command_id, "opcode": block.opcode, "arguments": block.arguments}
+    return {
+        "command_id": block.command_id,
+        "opcode": block.opcode,
+        "epoch": block.epoch,
+        "counter": block.counter,
+        "arguments": block.arguments,
+        "tag": block.tag,
+    }
 
 
 def _ack_block(c: Container) -> AckBlock:
@@ -42,7 +49,7 @@ def _ack_block(c: Container) -> AckBlock:
 
 
 def _command_block(c: Container) -> CommandBlock:
-    return CommandBlock(c.command_id, c.opcode, c.arguments)
+    return CommandBlock(c.command_id, c.opcode, c.arguments, c.epoch, c.counter, c.tag)
 
 
 def probe_fields(p: Probe) -> FieldValues:
@@ -99,9 +106,12 @@ def reply_fields(r: Reply) -> FieldValues:
         "master": r.master,
         "command_id": r.command_id,
         "status": int(r.status),
+        "epoch": r.epoch,
+        "counter": r.counter,
         "result": r.result,
+        "tag": r.tag,
     }
 
 
 def reply_from_fields(c: Container) -> Reply:
-    return Reply(c.terminal, c.master, c.command_id, c.status, c.result)
+    return Reply(c.terminal, c.master, c.command_id, c.status, c.result, c.epoch, c.counter, c.tag)
