@@ -242,6 +242,7 @@ def test_sqlite_store_refuses_a_file_that_is_not_one(tmp_path: Path) -> None:
         (message_key(40), records.MESSAGE.build({"seq": 40, "urgent": False, "created": 0.0, "acked": [], "sealed": b"abcdefgh"}), "not below the saved id ceiling"),
         (message_key(3), records.MESSAGE.build({"seq": 3, "urgent": False, "created": 0.0, "acked": [{"start": 2, "end": 99}], "sealed": b"abcdefgh"}), "acknowledged ranges"),
         (message_key(3), b"\x01\x00", "record message/3"),
+        (message_key(3), records.MESSAGE.build({"seq": 3, "urgent": False, "created": 0.0, "acked": [], "sealed": b"abcdefgh"}), "CRC-32C"),
     ],
 )  # fmt: skip
 def test_records_that_do_not_decode_raise_the_decode_family(key: str, value: bytes, match: str) -> None:
@@ -266,3 +267,15 @@ def test_the_journal_keeps_windows_and_partials_and_drops_what_expired() -> None
     rebooted.reassembler.expire(2.0 + limits.reassembly_lifetime)
     batch = rebooted.journal.changes()
     assert batch.deletes == frozenset({"partial/0/2609/7/0"})
+
+
+def test_a_reassembler_without_a_journal_remembers_no_changes() -> None:
+    """Tracking what changed costs memory only while a journal clears it at each commit."""
+    receiver, sender = Reassembler(), Sender(TERMINAL, MASTER)
+    for k in range(30):
+        sender.queue(bytes([k]) * 300, 0.0)
+    for fragment in sender.fill(20_000, 0.0):
+        receiver.receive(fragment, 1.0)
+    assert receiver.touched is None and receiver.window_touched is None
+    MasterJournal(receiver)
+    assert receiver.touched == set() and receiver.window_touched == set()

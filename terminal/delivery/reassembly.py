@@ -153,11 +153,12 @@ class Reassembler:
         self._bytes_by_source: dict[Source, int] = {}
         self._count_by_source: dict[Source, int] = {}
         self._bytes = 0
-        self.touched: set[tuple[Source, int]] = set()
-        """Partial messages changed since the caller last cleared this set (a durable
-        journal rewrites their records); completed windows are tracked by
-        :attr:`window_touched`."""
-        self.window_touched: set[Source] = set()
+        self.touched: set[tuple[Source, int]] | None = None
+        """While tracked (a set; :meth:`track_changes`): partial messages changed
+        since the caller last cleared it (a durable journal rewrites their
+        records).  It holds at most what changed between two commits."""
+        self.window_touched: set[Source] | None = None
+        """The same for completed-id windows."""
 
     # --- state, for reports and invariants --------------------------------------
 
@@ -185,6 +186,11 @@ class Reassembler:
 
     def partials(self) -> Iterator[tuple[Source, int]]:
         return iter(list(self._partials))
+
+    def track_changes(self) -> None:
+        """Record from now on which partial messages and windows change (for a durable journal)."""
+        if self.touched is None:
+            self.touched, self.window_touched = set(), set()
 
     def partial_state(
         self, source: Source, message_id: int
@@ -325,7 +331,8 @@ class Reassembler:
         if partial.held.contains(fragment.offset, fragment.end):
             if fragment.final and partial.end != fragment.end:
                 partial.end = fragment.end
-                self.touched.add(partial.key)
+                if self.touched is not None:
+                    self.touched.add(partial.key)
             return True
         if partial.held.ranges_after_add(fragment.offset, fragment.end) > self.limits.max_ranges_per_message:
             self.counters.hole_cap_drops += 1
@@ -338,7 +345,8 @@ class Reassembler:
         if fragment.final:
             partial.end = fragment.end
         partial.urgent = partial.urgent or fragment.urgent
-        self.touched.add(partial.key)
+        if self.touched is not None:
+            self.touched.add(partial.key)
         return True
 
     def _make_room(self, partial: _Partial, growth: int) -> bool:
@@ -381,7 +389,8 @@ class Reassembler:
         _, seq = self.completed.classify(partial.source, partial.message_id)
         before = self.completed.evicted
         self.completed.complete(partial.source, seq)
-        self.window_touched.add(partial.source)
+        if self.window_touched is not None:
+            self.window_touched.add(partial.source)
         self.counters.windows_evicted += self.completed.evicted - before
         self.counters.delivered += 1
         delivery = Delivery(
@@ -407,7 +416,8 @@ class Reassembler:
     def _drop(self, partial: _Partial) -> None:
         if self._partials.pop(partial.key, None) is None:
             return
-        self.touched.add(partial.key)
+        if self.touched is not None:
+            self.touched.add(partial.key)
         self._deadline_known = False
         if partial.size:
             self._account(partial.source, -partial.size)

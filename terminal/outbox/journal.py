@@ -82,6 +82,7 @@ class MasterJournal:
 
     def __init__(self, reassembler: Reassembler) -> None:
         self.reassembler = reassembler
+        reassembler.track_changes()
         self.counters = JournalCounters()
         self._windows: set[Source] = set()  # sources with a stored window
         self._partials: set[tuple[Source, int]] = set()  # partial messages with a stored record
@@ -126,8 +127,7 @@ class MasterJournal:
                 r.restore_partial(source, message_id, now, urgent, end, chunks)
             except UsageError as exc:
                 raise BadField(f"record {partial_key(source, message_id)}: {exc}") from None
-        r.touched.clear()
-        r.window_touched.clear()
+        self._clear_tracks()
         self._windows = {cast(Source, source) for source, _, _ in windows}
         self._partials = set(r.partials())
         self._evicted = r.completed.evicted
@@ -136,11 +136,12 @@ class MasterJournal:
     def changes(self, deliveries: Sequence[Delivery] = ()) -> Batch:
         """The batch that makes the reassembler's changes and ``deliveries`` durable together."""
         r = self.reassembler
-        if not (r.touched or r.window_touched or deliveries or r.completed.evicted != self._evicted):
+        touched, window_touched = r.touched or set(), r.window_touched or set()
+        if not (touched or window_touched or deliveries or r.completed.evicted != self._evicted):
             return Batch()
         puts: dict[str, bytes] = {}
         deletes: set[str] = set()
-        for source, message_id in r.touched:
+        for source, message_id in touched:
             state = r.partial_state(source, message_id)
             key = partial_key(source, message_id)
             if state is None:
@@ -161,7 +162,7 @@ class MasterJournal:
                 }
             )
         windows = {source: (top, bitmap) for source, top, bitmap in r.completed.snapshot()}
-        for source in r.window_touched:
+        for source in window_touched:
             if source in windows:
                 top, bitmap = windows[source]
                 puts[window_key(source)] = records.WINDOW.build(
@@ -189,6 +190,11 @@ class MasterJournal:
         self.counters.partial_deletes += sum(1 for key in batch.deletes if key.startswith(PARTIAL_PREFIX))
         self._partials = set(r.partials())
         self._windows = {cast(Source, source) for source, _, _ in r.completed.snapshot()}
-        r.touched.clear()
-        r.window_touched.clear()
+        self._clear_tracks()
         self._evicted = r.completed.evicted
+
+    def _clear_tracks(self) -> None:
+        r = self.reassembler
+        if r.touched is not None and r.window_touched is not None:
+            r.touched.clear()
+            r.window_touched.clear()

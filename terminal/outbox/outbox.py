@@ -40,7 +40,7 @@ from ionotrail.terminal.errors import BadField, UsageError
 from ionotrail.terminal.limits import ID_RESERVATION
 from ionotrail.terminal.outbox import records
 from ionotrail.terminal.outbox.store import Batch
-from ionotrail.terminal.wire.codec import seal_message
+from ionotrail.terminal.wire.codec import seal_message, unseal_message
 
 COUNTER_KEY = "counter/message-id"
 MESSAGE_PREFIX = "message/"
@@ -129,6 +129,7 @@ class Outbox:
                 raise BadField(
                     f"record {key}: acknowledged ranges {list(acked)} are not ascending, disjoint ranges inside the message"
                 )
+            unseal_message(bytes(record.sealed))  # a record the medium corrupted is refused, not sent
             priority = Priority.ALARM if record.urgent else Priority.ROUTINE
             kept.append((record.seq, bytes(record.sealed), priority, now, acked))
         if len(kept) > self.sender.limits.max_queued_messages:
