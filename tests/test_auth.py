@@ -92,15 +92,21 @@ def test_hkdf_length_bounds() -> None:
         hkdf_expand(bytes(31), b"", 32)  # RFC 5869 s2.3: PRK of at least HashLen octets
 
 
-def test_hkdf_matches_the_cryptography_package() -> None:
-    # A second, independent implementation (test-only; not a dependency of the project).
-    crypto = pytest.importorskip("cryptography.hazmat.primitives.kdf.hkdf", reason="cryptography not installed")
+def test_hkdf_and_tags_match_the_cryptography_package() -> None:
+    # A second, independent implementation from the package registry (the test extra
+    # only; not a dependency of the project): pyca/cryptography's HKDF and HMAC.
     from cryptography.hazmat.primitives import hashes
+    from cryptography.hazmat.primitives import hmac as crypto_hmac
+    from cryptography.hazmat.primitives.kdf.hkdf import HKDF
 
     tc = RFC5869_TC1
     for ikm, salt, info, length in ((tc["ikm"], tc["salt"], tc["info"], 42), (SITE.material, b"x", b"y" * 40, 100)):
-        theirs = crypto.HKDF(algorithm=hashes.SHA256(), length=length, salt=salt, info=info).derive(ikm)
+        theirs = HKDF(algorithm=hashes.SHA256(), length=length, salt=salt, info=info).derive(ikm)
         assert hkdf(ikm, salt, info, length) == theirs
+    for key, data in ((SITE.material, b""), (b"k" * 100, b"m" * 1000)):
+        mac = crypto_hmac.HMAC(key, hashes.SHA256())
+        mac.update(data)
+        assert hmac_tag(key, data, limits.AUTH_TAG_BYTES) == mac.finalize()[: limits.AUTH_TAG_BYTES]
 
 
 # --- HMAC-SHA-256 tags (RFC 4231) -------------------------------------------------
