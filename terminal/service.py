@@ -42,7 +42,7 @@ from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.link.table import State
 from ionotrail.terminal.link.terminal import Arrival, BurstEnded, CommandArrived, Effect, Link, Transmit
 from ionotrail.terminal.outbox.outbox import Outbox
-from ionotrail.terminal.outbox.store import Store
+from ionotrail.terminal.outbox.store import Store, StoreError
 from ionotrail.terminal.ports import Port
 from ionotrail.terminal.power.scheduler import Plan, PowerScheduler, QueueView
 from ionotrail.terminal.stores.memory import MemoryStore
@@ -155,6 +155,8 @@ class TerminalService:
         self.forecast = forecast
         self.store: Store = store if store is not None else MemoryStore()
         self.outbox = Outbox(link.sender)
+        self.store_failures = 0
+        """Commits the store refused (a message abandoned, or records that lag until a later commit)."""
         self._kept_version = link.sender.durable_version
         self.receiver_on = False
         self._power_timer: asyncio.TimerHandle | None = None
@@ -220,7 +222,13 @@ class TerminalService:
                     self._tell(now, MessageEvicted(evicted[0], evicted[1]))
             if sender.can_queue():
                 batch = self.outbox.accept(payload, priority, now)
-                self.store.commit(batch)  # accepted only once durable
+                try:
+                    self.store.commit(batch)  # accepted only once durable
+                except StoreError:
+                    self.outbox.abandon()
+                    self.store_failures += 1
+                    self._tell(now, MessageAbandoned(now, len(payload), "store_failed", priority))
+                    continue
                 message_id = self.outbox.committed(batch)
                 self._tell(now, MessageQueued(message_id, now, payload, priority))
                 for dropped_id, created in sender.clear_the_window():
@@ -230,7 +238,7 @@ class TerminalService:
                 self._tell(now, MessageAbandoned(now, len(payload), "queue_full", priority))
         if taken and self.power is not None:
             self._replan()
-        self._arm_source()
+        self._arm_source()  # (reached whatever the store did: a failed commit abandons one message, not the source)
 
     def gauge_alert(self) -> None:
         """The fuel gauge says the state of charge crossed a threshold: decide again now."""
@@ -277,8 +285,10 @@ class TerminalService:
                 if isinstance(effect, Transmit):
                     self.port.send(effect.frame)
                 elif isinstance(effect, CommandArrived):
-                    self._save_link()  # run at most once: recorded as run before it runs
-                    status, result = self.source.command(effect.opcode, effect.arguments)
+                    if self._save_link():  # run at most once: recorded as run before it runs
+                        status, result = self.source.command(effect.opcode, effect.arguments)
+                    else:  # not recorded, so not run
+                        status, result = ReplyStatus.REFUSED, b""
                     self.link.reply(effect.command_id, status, result)
                     self._save_link()
                 self._tell(now, effect)
@@ -290,18 +300,28 @@ class TerminalService:
             self._save_link()
         self._arm_link()
 
-    def _save_link(self) -> None:
-        """Commit the link's key state and command memory, when changed."""
+    def _save_link(self) -> bool:
+        """Commit the link's key state and command memory, when changed; False
+        if the store failed (the link then holds its replies, and the next
+        input tries again)."""
         if self.link.unsaved:
-            batch = self.link.durable_batch()
-            self.store.commit(batch)
+            try:
+                self.store.commit(self.link.durable_batch())
+            except StoreError:
+                self.store_failures += 1
+                return False
             self.link.durable_committed()
+        return True
 
     def _keep(self) -> None:
         """Bring the outbox's records up to date with the sender (cheap when nothing changed)."""
         batch = self.outbox.changes()
         if batch:
-            self.store.commit(batch)
+            try:
+                self.store.commit(batch)
+            except StoreError:  # the records lag; the next input tries again
+                self.store_failures += 1
+                return
             self.outbox.committed(batch)
         self._kept_version = self.link.sender.durable_version
 

@@ -8,6 +8,7 @@ at arbitrary moments, and checks a torn transaction on disk."""
 
 from __future__ import annotations
 
+import asyncio
 import random
 import sqlite3
 from pathlib import Path
@@ -15,18 +16,24 @@ from pathlib import Path
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+from ionotrail.harness.runners.vtime import VirtualTimeLoop
 from ionotrail.harness.testing.faults import FAIR, FaultSchedule, FaultyChannel
 from ionotrail.terminal.delivery.reassembly import Delivery, Reassembler
 from ionotrail.terminal.delivery.sender import Priority, Sender
 from ionotrail.terminal.errors import DecodeError, UsageError
 from ionotrail.terminal.limits import FRAGMENT_OVERHEAD_BYTES, ID_RESERVATION, Limits
+from ionotrail.terminal.link.policy import Fixed
+from ionotrail.terminal.link.terminal import Link
 from ionotrail.terminal.outbox import records
 from ionotrail.terminal.outbox.journal import MasterJournal, parse_delivery
 from ionotrail.terminal.outbox.outbox import COUNTER_KEY, Outbox, message_key
-from ionotrail.terminal.outbox.store import Batch, Store
+from ionotrail.terminal.outbox.store import Batch, Store, StoreError
+from ionotrail.terminal.ports import Port
+from ionotrail.terminal.service import MessageAbandoned, MessageQueued, TerminalService
 from ionotrail.terminal.stores.memory import MemoryStore
 from ionotrail.terminal.stores.sqlite import SqliteStore
 from ionotrail.terminal.wire import Ack, AckBlock, Fragment, decode, encode
+from ionotrail.terminal.wire.formats import ReplyStatus
 
 TERMINAL, MASTER = 0x0A31, 7
 SECONDS_PER_BYTE = 8 / 4800.0
@@ -279,3 +286,84 @@ def test_a_reassembler_without_a_journal_remembers_no_changes() -> None:
     assert receiver.touched is None and receiver.window_touched is None
     MasterJournal(receiver)
     assert receiver.touched == set() and receiver.window_touched == set()
+
+
+class _QuietPort(Port):
+    """A modem that hears nothing (the terminal only accepts messages here)."""
+
+    def attach(self, listener: object) -> None: ...
+    def send(self, frame: bytes) -> None: ...
+    def start_listening(self) -> None: ...
+    def stop_listening(self) -> None: ...
+    def start_probing(self, frame: bytes, interval: float) -> None: ...
+    def stop_probing(self) -> None: ...
+    async def close(self) -> None: ...
+
+
+class _FlakyStore(MemoryStore):
+    """Refuses its 3rd and 4th commits, as a full disk would, then recovers."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.calls = 0
+
+    def commit(self, batch: Batch) -> None:
+        if batch:
+            self.calls += 1
+            if self.calls in (3, 4):
+                raise StoreError("disk full")
+        super().commit(batch)
+
+
+class _EverySecond:
+    def __init__(self) -> None:
+        self.due = 1.0
+
+    def next_due(self) -> float | None:
+        return self.due if self.due <= 10.0 else None
+
+    def take(self, now: float, room: int) -> list[tuple[bytes, Priority]]:
+        self.due += 1.0
+        return [(f"reading {now:.0f}".encode(), Priority.ROUTINE)]
+
+    def command(self, opcode: int, arguments: bytes) -> tuple[ReplyStatus, bytes]:
+        return ReplyStatus.UNKNOWN_OPCODE, b""
+
+
+def test_a_failed_commit_abandons_that_message_and_the_service_goes_on() -> None:
+    store = _FlakyStore()
+    events: list[object] = []
+    link = Link(Sender(TERMINAL, MASTER), Fixed(64), bit_rate=4800.0)
+    service = TerminalService(link, _QuietPort(), _EverySecond(), store=store, observer=lambda _t, e: events.append(e))
+    with asyncio.Runner(loop_factory=VirtualTimeLoop) as runner:
+        runner.run(service.run(until=20.0))
+    queued = [e for e in events if isinstance(e, MessageQueued)]
+    abandoned = [e for e in events if isinstance(e, MessageAbandoned)]
+    assert len(queued) == 8 and [a.reason for a in abandoned] == ["store_failed", "store_failed"]
+    assert service.store_failures == 2 and not service.outbox._pending
+    assert len([k for k in store.load() if k.startswith("message/")]) == 8  # exactly the accepted ones
+
+
+def test_stored_values_past_any_real_use_are_refused_at_boot(tmp_path: Path) -> None:
+    from ionotrail.terminal.link.commands import RECORD_KEY, CommandMemory
+    from ionotrail.terminal.outbox.journal import window_key
+
+    with pytest.raises(DecodeError, match="id ceiling"):
+        Outbox(Sender(TERMINAL, MASTER)).restore({COUNTER_KEY: records.COUNTER.build({"ceiling": 1 << 63})}, 0.0)
+    source = (False, TERMINAL, MASTER)
+    window = records.WINDOW.build({"downlink": False, "terminal": TERMINAL, "master": MASTER, "top": 1 << 63, "bitmap": bytes(8)})
+    with pytest.raises(DecodeError, match="window edge"):
+        MasterJournal(Reassembler()).restore({window_key(source): window}, 0.0)
+    memory = records.COMMANDS.build(
+        {"has_top": True, "top": 1, "seen": b"\x00" * 7 + b"\x01", "replies": [{"command_id": 1, "answered": True, "frame": b"not a frame"}]}
+    )
+    with pytest.raises(DecodeError):
+        CommandMemory(Limits()).restore({RECORD_KEY: memory})
+    path = tmp_path / "typed.db"
+    SqliteStore(path).close()
+    db = sqlite3.connect(path)
+    db.execute("INSERT INTO records (key, value) VALUES ('message/1', 'text, not a blob')")
+    db.commit()
+    db.close()
+    with pytest.raises(DecodeError, match="not text and blob"):
+        SqliteStore(path).load()

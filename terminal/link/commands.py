@@ -33,6 +33,7 @@ from ionotrail.terminal.errors import BadField
 from ionotrail.terminal.limits import Limits
 from ionotrail.terminal.outbox import records
 from ionotrail.terminal.outbox.store import Batch
+from ionotrail.terminal.wire import Reply, decode
 
 RECORD_KEY = "commands/memory"
 
@@ -164,7 +165,15 @@ class CommandMemory:
             raise BadField(f"record {RECORD_KEY}: a window or reply count this terminal does not keep")
         self._top = value.top if value.has_top else None
         self._seen = int.from_bytes(value.seen, "big") & ((1 << self.window) - 1)
-        self._replies = OrderedDict((r.command_id, bytes(r.frame) if r.answered else None) for r in value.replies)
+        replies: OrderedDict[int, bytes | None] = OrderedDict()
+        for r in value.replies:
+            frame = bytes(r.frame) if r.answered else None
+            if frame is not None:
+                reply = decode(frame)  # a stored frame is sent again as it is: it must be the reply it claims to be
+                if not isinstance(reply, Reply) or reply.command_id != r.command_id:
+                    raise BadField(f"record {RECORD_KEY}: the reply kept for command {r.command_id} is not its reply frame")
+            replies[r.command_id] = frame
+        self._replies = replies
         self._lost = {k for k, v in self._replies.items() if v is None}
         self._unsaved = False
 

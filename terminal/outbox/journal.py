@@ -23,6 +23,7 @@ from typing import cast
 from ionotrail.terminal.delivery.reassembly import Delivery, Reassembler, Source
 from ionotrail.terminal.errors import BadField, UsageError
 from ionotrail.terminal.outbox import records
+from ionotrail.terminal.outbox.outbox import MAX_STORED_ID
 from ionotrail.terminal.outbox.store import Batch
 
 WINDOW_PREFIX = "window/"
@@ -102,6 +103,8 @@ class MasterJournal:
                 source: Source = (w.downlink, w.terminal, w.master)
                 if key != window_key(source):
                     raise BadField(f"record {key}: holds the window of {source}")
+                if w.top > MAX_STORED_ID:
+                    raise BadField(f"record {key}: a window edge of {w.top}, past any id a terminal could have used")
                 windows.append((source, w.top, int.from_bytes(w.bitmap, "big")))
             elif key.startswith(PARTIAL_PREFIX):
                 p = records.parse(records.PARTIAL, key, value)

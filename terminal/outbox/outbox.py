@@ -43,6 +43,9 @@ from ionotrail.terminal.outbox.store import Batch
 from ionotrail.terminal.wire.codec import seal_message, unseal_message
 
 COUNTER_KEY = "counter/message-id"
+MAX_STORED_ID = 1 << 62
+"""No terminal reaches this many messages (a thousand a second for a hundred
+million years); a stored id or ceiling past it is damage, refused at boot."""
 MESSAGE_PREFIX = "message/"
 
 
@@ -111,6 +114,8 @@ class Outbox:
         ceiling = 0
         if COUNTER_KEY in stored:
             ceiling = records.parse(records.COUNTER, COUNTER_KEY, stored[COUNTER_KEY]).ceiling
+            if ceiling > MAX_STORED_ID:
+                raise BadField(f"record {COUNTER_KEY}: an id ceiling of {ceiling}, past any this terminal could have used")
         kept: list[tuple[int, bytes, Priority, float, tuple[tuple[int, int], ...]]] = []
         for key, value in stored.items():
             if not key.startswith(MESSAGE_PREFIX):

@@ -94,7 +94,7 @@ COMMANDS = Struct(
     "seen" / Prefixed(Int8ub, GreedyBytes) * "ids run behind it, bit k = top - k, big-endian",
     "replies"
     / PrefixedArray(
-        Int8ub,
+        Int16ub,
         Struct(
             "command_id" / Int8ub,
             "answered" / Flag,

@@ -58,6 +58,11 @@ class Batch:
         return Batch(puts, frozenset(deletes), self.appends + later.appends)
 
 
+class StoreError(Exception):
+    """The store could not make a batch durable (a full disk, a locked or damaged
+    file).  Nothing of the batch was applied; the core's state is as before it."""
+
+
 class Store(Protocol):
     """Durable records (a key-value map) and an append-only log."""
 
@@ -69,7 +74,8 @@ class Store(Protocol):
         """Every record, as the last completed commit left them."""
 
     def commit(self, batch: Batch) -> None:
-        """Apply ``batch`` atomically; return only when it is durable."""
+        """Apply ``batch`` atomically; return only when it is durable.  Raises
+        :class:`StoreError` when it cannot (and then applies none of it)."""
 
     def log_after(self, position: int, limit: int) -> list[tuple[int, bytes]]:
         """Up to ``limit`` log entries numbered after ``position`` (entries are numbered from 1), oldest first."""

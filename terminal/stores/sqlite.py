@@ -15,8 +15,8 @@ from __future__ import annotations
 import os
 import sqlite3
 
-from ionotrail.terminal.errors import UsageError
-from ionotrail.terminal.outbox.store import Batch
+from ionotrail.terminal.errors import BadField, UsageError
+from ionotrail.terminal.outbox.store import Batch, StoreError
 
 APPLICATION_ID = 0x696F6E74  # "iont"
 SCHEMA_VERSION = 1
@@ -61,26 +61,42 @@ class SqliteStore:
         return self._writes
 
     def load(self) -> dict[str, bytes]:
-        return {key: bytes(value) for key, value in self._db.execute("SELECT key, value FROM records")}
+        """Every record; a row that is not a text key with a blob value (the file
+        was written by something else) is a :class:`~ionotrail.terminal.errors.BadField`."""
+        out: dict[str, bytes] = {}
+        for key, value in self._db.execute("SELECT key, value FROM records"):
+            if not isinstance(key, str) or not isinstance(value, bytes):
+                raise BadField(f"{self.path}: a record row of types {type(key).__name__} and {type(value).__name__}, not text and blob")
+            out[key] = value
+        return out
 
     def commit(self, batch: Batch) -> None:
         if not batch:
             return
         db = self._db
-        db.execute("BEGIN IMMEDIATE")
         try:
-            db.executemany("DELETE FROM records WHERE key = ?", [(key,) for key in sorted(batch.deletes)])
-            db.executemany("INSERT OR REPLACE INTO records (key, value) VALUES (?, ?)", sorted(batch.puts.items()))
-            db.executemany("INSERT INTO log (entry) VALUES (?)", [(entry,) for entry in batch.appends])
-        except BaseException:
-            db.execute("ROLLBACK")
-            raise
-        db.execute("COMMIT")
+            db.execute("BEGIN IMMEDIATE")
+            try:
+                db.executemany("DELETE FROM records WHERE key = ?", [(key,) for key in sorted(batch.deletes)])
+                db.executemany("INSERT OR REPLACE INTO records (key, value) VALUES (?, ?)", sorted(batch.puts.items()))
+                db.executemany("INSERT INTO log (entry) VALUES (?)", [(entry,) for entry in batch.appends])
+                db.execute("COMMIT")
+            except BaseException:
+                if db.in_transaction:
+                    db.execute("ROLLBACK")
+                raise
+        except (sqlite3.Error, OSError) as exc:
+            raise StoreError(f"{self.path}: the commit failed: {exc}") from exc
         self._writes += 1
 
     def log_after(self, position: int, limit: int) -> list[tuple[int, bytes]]:
         rows = self._db.execute("SELECT position, entry FROM log WHERE position > ? ORDER BY position LIMIT ?", (position, limit))
-        return [(int(p), bytes(e)) for p, e in rows]
+        out: list[tuple[int, bytes]] = []
+        for p, e in rows:
+            if not isinstance(p, int) or not isinstance(e, bytes):
+                raise BadField(f"{self.path}: a log row of types {type(p).__name__} and {type(e).__name__}, not integer and blob")
+            out.append((p, e))
+        return out
 
     def close(self) -> None:
         self._db.close()
