@@ -15,6 +15,7 @@ from ionotrail.terminal.wire import (
     IDLE_PROBE_BYTES,
     Ack,
     AckBlock,
+    AuthFragment,
     Command,
     CommandBlock,
     Fragment,
@@ -37,6 +38,7 @@ BY_HAND = [
     (Ack(7, AckBlock(1, 3, complete=True)), "ack", 0x13),
     (Command(7, 1, CommandBlock(1, 2)), "command", 0x14),
     (Reply(1, 7, 1, ReplyStatus.OK), "reply", 0x15),
+    (AuthFragment(Fragment(1, 7, 3, 0, b"x"), 0, 1, bytes(8)), "tagged", 0x16),
 ]
 
 
@@ -52,7 +54,7 @@ def test_each_frame_type_has_one_entry_that_agrees_with_the_wire(frame: object, 
 
 
 def test_every_frame_type_is_registered_once() -> None:
-    assert sorted(int(t) for t in FRAME_KINDS) == [1, 2, 3, 4, 5]  # docs/wire.md: types 1 to 5 are assigned
+    assert sorted(int(t) for t in FRAME_KINDS) == [1, 2, 3, 4, 5, 6]  # docs/wire.md: types 1 to 6 are assigned
     assert len({kind.representation for kind in FRAME_KINDS.values()}) == len(FrameType)
     assert len(registry.BY_HEAD) == len(FrameType)
 
@@ -72,7 +74,7 @@ def test_kind_of_refuses_what_is_not_a_frame(thing: object) -> None:
 
 
 def test_the_old_table_name_is_a_view_of_the_registry() -> None:
-    declarations = [formats.PROBE, formats.FRAGMENT, formats.ACK, formats.COMMAND, formats.REPLY]
+    declarations = [formats.PROBE, formats.FRAGMENT, formats.ACK, formats.COMMAND, formats.REPLY, formats.TAGGED]
     assert registry.FRAME_FORMATS == dict(zip(FrameType, declarations, strict=True))
 
 

@@ -150,6 +150,7 @@ SCHEMA: dict[str, dict[str, Field]] = {
         "bit_rate": Field(4800.0, "bit rate on the air, bit/s", _number(100, 1e6, "bit/s")),
         "threshold_ber": Field(1e-5, "bit-error rate at which the path counts as open", _number(1e-9, 0.1)),
         "oscillator_ppm": Field(2.0, "oscillator offset between the stations, parts per million", _number(0, 100, "ppm")),
+        "authenticate_data": Field(False, "send every uplink fragment tagged (key epoch, counter, tag: 14 bytes more each; docs/keys.md); the master then refuses plain ones", _flag),
     },
     "channel": {
         "reflection_height_km": Field(95.0, "mean height of the reflecting trails, km", _number(80, 115, "km")),
@@ -294,6 +295,7 @@ class Scenario:
     mass_index: float
     sporadic_scale: float
     showers: bool
+    authenticate_data: bool = False
     terminal_address: int = 2609
     master_address: int = 7
     probe_interval_s: float = 0.1

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import dataclasses
 import json
 import math
 import signal
@@ -39,6 +40,12 @@ def _common(p: argparse.ArgumentParser) -> None:
         metavar="FILE",
         help="key file (ionotrail keys; readable by its owner only): the terminal's root key for serve, the site secret "
         "for master; without it, commands are refused (serve) or cannot be sent (master)",
+    )
+    p.add_argument(
+        "--authenticate-data",
+        action="store_true",
+        help="authenticate uplink data (docs/keys.md; 14 bytes more per fragment): serve tags every fragment, master "
+        "refuses untagged ones; needs --keys (the same as --set link.authenticate_data=true)",
     )
 
 
@@ -109,7 +116,13 @@ def _check(args: argparse.Namespace) -> Any:
         dialect(args.dialect)
     except UsageError as exc:
         raise UserError(f"--dialect {args.dialect}: {exc}") from None
-    return load_scenario(args)
+    scenario = load_scenario(args)
+    if getattr(args, "authenticate_data", False):
+        scenario = dataclasses.replace(scenario, authenticate_data=True)
+    if scenario.authenticate_data and not args.keys:
+        where = "--authenticate-data" if getattr(args, "authenticate_data", False) else "link.authenticate_data"
+        raise UserError(f"{where}: authenticated data needs keys; give --keys FILE (ionotrail keys)")
+    return scenario
 
 
 async def _until(duration: float | None) -> None:

@@ -106,14 +106,22 @@ class MasterStation:
         on_arrival: Callable[[Arrival], None] | None = None,
         store: Store | None = None,
         site: SiteSecret | None = None,
+        require_data_auth: bool | frozenset[int] = False,
     ) -> None:
-        """``site`` is the site secret that signs commands (none: no commands)."""
+        """``site`` is the site secret that signs commands (none: no commands);
+        ``require_data_auth`` (True, or terminal addresses) refuses plain fragments
+        from those terminals: their data must come authenticated (docs/keys.md)."""
         if probe_interval is not None:
             limits = dataclasses.replace(limits, probe_interval=probe_interval)
         self.port = port
         self.address = address
         self.site = site
-        self.endpoint = MasterEndpoint(address, limits=limits, auth=MasterAuthenticator(site) if site is not None else None)
+        self.endpoint = MasterEndpoint(
+            address,
+            limits=limits,
+            auth=MasterAuthenticator(site) if site is not None else None,
+            require_data_auth=require_data_auth,
+        )
         self.probe_interval = limits.probe_interval
         self.epoch_unix = epoch_unix
         self.origin = origin
@@ -199,7 +207,9 @@ class MasterStation:
             # Durable first: no acknowledgement leaves, and no delivery reaches the sink, before this commit.
             batch = self.journal.changes([e.delivery for e in effects if isinstance(e, Delivered)])
             auth = self.endpoint.auth
-            if auth is not None and auth.dirty:  # a newly signed command's counter is reserved durably before it airs
+            # A newly signed command's counter is reserved, and a data window moved by an
+            # authenticated fragment kept, durably before the probe carrying either airs.
+            if auth is not None and auth.dirty:
                 batch = batch.merged(auth.batch())
             if batch:
                 self.store.commit(batch)

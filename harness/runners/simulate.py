@@ -34,7 +34,7 @@ from ionotrail.terminal.delivery.sender import MessageAcknowledged, MessageRefus
 from ionotrail.terminal.errors import Reason
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link.gate import UplinkGate
-from ionotrail.terminal.link.policy import by_name
+from ionotrail.terminal.link.policy import Adaptive, by_name
 from ionotrail.terminal.link.terminal import BurstEnded, BurstStarted, Duplex, Link
 from ionotrail.terminal.ports import Port
 from ionotrail.terminal.power.duty import DutyCycle
@@ -48,6 +48,7 @@ from ionotrail.terminal.service import (
     TerminalService,
 )
 from ionotrail.terminal.wire.crc import crc32c
+from ionotrail.terminal.wire.frames import TAGGED_OVERHEAD_BYTES
 
 FRAME_REFUSALS = (
     Reason.TRUNCATED, Reason.TOO_LONG, Reason.UNSUPPORTED_VERSION, Reason.UNKNOWN_TYPE, Reason.BAD_LENGTH, Reason.BAD_FIELD,
@@ -213,6 +214,8 @@ def simulate(
     limits = dataclasses.replace(limits, turnaround=scenario.turnaround_s, burst_silence=scenario.burst_silence_s)
     timeline = Timeline() if record_timeline else None
     fragment_policy = by_name(policy, scenario.bit_rate, tau_scale=(scenario.down_mhz / scenario.up_mhz) ** 2)
+    if scenario.authenticate_data and isinstance(fragment_policy, Adaptive):  # sized for a tagged fragment's overhead
+        fragment_policy.overhead_bits = 8 * TAGGED_OVERHEAD_BYTES
     sender = Sender(scenario.terminal_address, scenario.master_address, limits=limits)
     e = scenario.energy
     gate = UplinkGate() if (e.uplink_backoff if uplink_backoff is None else uplink_backoff) else None
@@ -220,7 +223,7 @@ def simulate(
     power_name = power_policy or e.policy
     link = Link(
         sender, fragment_policy, bit_rate=scenario.bit_rate, duplex=Duplex(scenario.duplex), limits=limits, gate=gate, duty=duty,
-        auth=simulated_terminal(scenario.seed, scenario.terminal_address),
+        auth=simulated_terminal(scenario.seed, scenario.terminal_address), authenticate_data=scenario.authenticate_data,
     )  # fmt: skip
     ledger = _Ledger(sender, timeline)
     deliveries: list[DeliveryRecord] = []
@@ -255,6 +258,7 @@ def simulate(
             origin=origin,
             sink=delivered,
             site=simulated_site(scenario.seed),
+            require_data_auth=scenario.authenticate_data,
         )
         app = make_source(source, scenario, backlog_size, origin) if isinstance(source, str) else source
 

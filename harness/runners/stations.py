@@ -24,8 +24,9 @@ from ionotrail.harness.emulators.master import DeliveryRecord, MasterStation
 from ionotrail.terminal.auth.authenticator import TerminalAuthenticator
 from ionotrail.terminal.auth.keys import SiteSecret, TerminalRoot
 from ionotrail.terminal.delivery.sender import Sender
+from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
-from ionotrail.terminal.link.policy import by_name
+from ionotrail.terminal.link.policy import Adaptive, by_name
 from ionotrail.terminal.link.terminal import Arrival, Duplex, Link
 from ionotrail.terminal.modem.dialects import dialect
 from ionotrail.terminal.modem.records import Configure
@@ -33,6 +34,7 @@ from ionotrail.terminal.outbox.store import Store
 from ionotrail.terminal.ports import Port
 from ionotrail.terminal.ports.serial import SerialPort
 from ionotrail.terminal.service import Observer, TerminalService
+from ionotrail.terminal.wire.frames import TAGGED_OVERHEAD_BYTES
 
 
 def link_limits(scenario: Scenario, limits: Limits = DEFAULT_LIMITS) -> Limits:
@@ -68,8 +70,15 @@ def terminal_station(
     limits = link_limits(scenario, limits)
     sender = Sender(scenario.terminal_address, scenario.master_address, limits=limits)
     fragment_policy = by_name(policy, scenario.bit_rate, tau_scale=(scenario.down_mhz / scenario.up_mhz) ** 2)
+    if scenario.authenticate_data and isinstance(fragment_policy, Adaptive):  # sized for a tagged fragment's overhead
+        fragment_policy.overhead_bits = 8 * TAGGED_OVERHEAD_BYTES
     auth = TerminalAuthenticator(root) if root is not None else None
-    link = Link(sender, fragment_policy, bit_rate=scenario.bit_rate, duplex=Duplex(scenario.duplex), limits=limits, auth=auth)
+    if scenario.authenticate_data and auth is None:
+        raise UsageError("link.authenticate_data needs the terminal's root key (--keys)")
+    link = Link(
+        sender, fragment_policy, bit_rate=scenario.bit_rate, duplex=Duplex(scenario.duplex), limits=limits, auth=auth,
+        authenticate_data=scenario.authenticate_data,
+    )  # fmt: skip
     gauge = DemoGauge(
         random.Random(f"gauge-{scenario.seed}"), epoch_unix=time.time() - origin, start=origin, interval_s=report_every_s
     )
@@ -98,4 +107,5 @@ def master_station(
         on_arrival=on_arrival,
         store=store,
         site=site,
+        require_data_auth=scenario.authenticate_data,
     )

@@ -57,6 +57,7 @@ from ionotrail.terminal.auth.formats import (
     Direction,
     Purpose,
 )
+from ionotrail.terminal.auth.fragments import mac_input_of
 from ionotrail.terminal.auth.keys import MAX_EPOCH, Key, SiteSecret, TerminalRoot
 from ionotrail.terminal.auth.primitives import HASH_BYTES, hmac_tag, tag_matches
 from ionotrail.terminal.auth.window import ReplayWindow, SendCounter, Verdict
@@ -69,6 +70,7 @@ from ionotrail.terminal.limits import (
     MAX_COMMAND_BYTES,
 )
 from ionotrail.terminal.outbox.store import Batch
+from ionotrail.terminal.wire.frames import Fragment
 
 ROTATE_OPCODE = 0xF0
 """The rotate command's opcode.  Opcodes 0xF0-0xFF belong to the stack; applications use 0x00-0xEF."""
@@ -78,8 +80,14 @@ COMMAND_WINDOW_KEY = "auth/command-window"
 REPLY_COUNTER_KEY = "auth/reply-counter"
 PREVIOUS_KEY = "auth/previous"
 PREVIOUS_WINDOW_KEY = "auth/previous-window"
+DATA_COUNTER_KEY = "auth/data-counter"
 MASTER_KEY_PREFIX = "auth/master/"
-"""Records of the terminal's key state, and the prefix of the master's (one per terminal, address in 4 hex digits)."""
+DATA_WINDOW_PREFIX = "auth/data-window/"
+DATA_TARGET_PREFIX = "auth/data-target/"
+"""Records of the terminal's key state, and the prefixes of the master's (one
+each per terminal, address in 4 hex digits): its key state, and the windows of
+authenticated data fragments accepted in its epoch and, while a rotation is
+under way, in the epoch it leads to."""
 
 
 class Outcome(enum.Enum):
@@ -304,6 +312,9 @@ class TerminalAuthenticator:
         self._current = _Epoch(root, ReplayWindow(window))
         self._previous: _Epoch | None = None
         self._replies = SendCounter()
+        self._data = SendCounter()  # data fragments' counters (RFC 4303 s5, as the replies')
+        self._data_saved = 0  # the data reservation last committed: counters up to it may be sent
+        self._data_batched = 0  # the data reservation in the last batch()
         self._dirty = True
 
     @property
@@ -322,6 +333,33 @@ class TerminalAuthenticator:
     def data_key(self, direction: Direction) -> Key:
         """The current epoch's data key of ``direction`` (for :mod:`~ionotrail.terminal.auth.fragments`)."""
         return self._current.root.working_key(direction, Purpose.DATA)
+
+    def data_ready(self) -> bool:
+        """Whether :meth:`sign_fragment` may sign now: the next data counter's
+        reservation is durable.  When it is not, call :meth:`reserve_data` and
+        commit ``batch()`` first."""
+        return self._data.next <= self._data_saved
+
+    def reserve_data(self) -> bool:
+        """Reserve data counters ahead when fewer than half a block is left, so
+        the save is committed while counters already saved are still in use
+        (a burst never waits for it); True when the state changed (commit ``batch()``)."""
+        moved = self._data.top_up()
+        self._dirty |= moved
+        return moved
+
+    def sign_fragment(self, fragment: Fragment, *, frame_version: int) -> Signature:
+        """Epoch, a fresh data counter and the tag for one transmission of
+        ``fragment`` (a retransmission is a new transmission: RFC 6347
+        s4.1.2.6).  Only when :meth:`data_ready`; reserves ahead as it goes."""
+        if not self.data_ready():
+            raise UsageError("the next data counter is not durably reserved: reserve_data(), commit batch(), then sign")
+        counter, moved = self._data.take()
+        assert not moved  # within the saved reservation
+        message = mac_input_of(fragment, frame_version=frame_version, epoch=self.epoch, counter=counter)
+        self.reserve_data()
+        key = self.data_key(Direction.DOWNLINK if fragment.downlink else Direction.UPLINK)
+        return Signature(self.epoch, counter, hmac_tag(key.material, message, self.tag_bytes))
 
     def receive_command(
         self, *, frame_version: int, master: int, command_id: int, opcode: int, arguments: bytes,
@@ -361,6 +399,8 @@ class TerminalAuthenticator:
         self._previous = self._current
         self._current = _Epoch(self._current.root.next(), ReplayWindow(self.window_size))
         self._replies = SendCounter()
+        self._data = SendCounter()  # the new epoch's key: its counters start again
+        self._data_saved = self._data_batched = 0
         return CommandCheck(Outcome.ACCEPTED, Action.ROTATED)
 
     def sign_reply(self, *, frame_version: int, master: int, command_id: int, status: int, result: bytes) -> Signature:
@@ -387,6 +427,8 @@ class TerminalAuthenticator:
             COMMAND_WINDOW_KEY: _record(WINDOW_RECORD, _window_fields(current.window, epoch)),
             REPLY_COUNTER_KEY: _record(COUNTER_RECORD, {"version": RECORD_VERSION, "epoch": epoch, "reserved": self._replies.reserved}),
         }  # fmt: skip
+        if self._data.reserved:  # only once data fragments are authenticated
+            out[DATA_COUNTER_KEY] = _record(COUNTER_RECORD, {"version": RECORD_VERSION, "epoch": epoch, "reserved": self._data.reserved})
         if self._previous is not None:
             old = self._previous.root
             out[PREVIOUS_KEY] = _record(
@@ -400,11 +442,13 @@ class TerminalAuthenticator:
         if not self._dirty:
             return Batch()
         gone = frozenset() if self._previous is not None else frozenset({PREVIOUS_KEY, PREVIOUS_WINDOW_KEY})
+        self._data_batched = self._data.reserved
         return Batch(puts=self.records(), deletes=gone)
 
     def committed(self) -> None:
         """The last ``batch()`` is durable."""
         self._dirty = False
+        self._data_saved = self._data_batched
 
     @classmethod
     def restore(
@@ -426,6 +470,14 @@ class TerminalAuthenticator:
                 raise RecordError(f"record {key} is of epoch {value.epoch}, the root of epoch {root.epoch}")
         self._current.window = _window_from(commands, COMMAND_WINDOW_KEY)
         self._replies = SendCounter(replies.reserved)
+        if DATA_COUNTER_KEY in records:  # absent: no data fragment was ever signed in this epoch
+            data = _parse(COUNTER_RECORD, records[DATA_COUNTER_KEY], DATA_COUNTER_KEY)
+            if data.epoch > root.epoch:
+                raise RecordError(f"record {DATA_COUNTER_KEY} is of epoch {data.epoch}, after the root's {root.epoch}")
+            if data.epoch == root.epoch:  # one of an earlier epoch counted under another key: the counters start again
+                # Continue past the reservation; nothing past it is saved yet.
+                self._data = SendCounter(data.reserved)
+                self._data_saved = self._data_batched = data.reserved
         if (PREVIOUS_KEY in records) != (PREVIOUS_WINDOW_KEY in records):
             raise RecordError(f"records {PREVIOUS_KEY} and {PREVIOUS_WINDOW_KEY} must come together", Reason.TRUNCATED)
         if PREVIOUS_KEY in records:
@@ -449,18 +501,32 @@ class TerminalAuthenticator:
 class _Link:
     """The master's state for one terminal."""
 
-    __slots__ = ("commands", "reply_key", "root", "target", "target_reply_key", "target_window", "window")
+    __slots__ = (
+        "commands", "data_key", "data_window", "reply_key", "root", "target", "target_data_key", "target_data_window",
+        "target_reply_key", "target_window", "window",
+    )  # fmt: skip
 
     def __init__(
-        self, root: TerminalRoot, window: ReplayWindow, commands: SendCounter, target: TerminalRoot | None
+        self,
+        root: TerminalRoot,
+        window: ReplayWindow,
+        commands: SendCounter,
+        target: TerminalRoot | None,
+        data_window: ReplayWindow | None = None,
     ) -> None:
         self.root = root
         self.window = window
         self.commands = commands
         self.reply_key = root.working_key(Direction.UPLINK, Purpose.REPLY)
+        self.data_key = root.working_key(Direction.UPLINK, Purpose.DATA)
+        self.data_window = data_window if data_window is not None else ReplayWindow(window.size)
+        """Uplink data fragments accepted in ``root``'s epoch."""
         self.target = target
         self.target_reply_key = target.working_key(Direction.UPLINK, Purpose.REPLY) if target else None
         self.target_window = ReplayWindow(window.size) if target else None
+        self.target_data_key = target.working_key(Direction.UPLINK, Purpose.DATA) if target else None
+        self.target_data_window = ReplayWindow(window.size) if target else None
+        """Data fragments signed in the epoch a rotation leads to (the terminal moves first)."""
 
 
 class MasterAuthenticator:
@@ -515,7 +581,7 @@ class MasterAuthenticator:
         """Mark a rotation of ``terminal``'s keys (commit ``batch()`` first); the command to send: opcode, arguments."""
         link = self._link(terminal)
         if link.target is None:
-            link = _Link(link.root, link.window, link.commands, link.root.next())
+            link = _Link(link.root, link.window, link.commands, link.root.next(), link.data_window)
             self._keep(terminal, link)
         assert link.target is not None
         return ROTATE_OPCODE, rotate_arguments(link.target.epoch)
@@ -568,9 +634,44 @@ class MasterAuthenticator:
             return self._count(outcome)
         window.accept(counter)
         if link.target is not None and epoch == link.target.epoch:  # the terminal holds the new key: switch
-            link = _Link(link.target, window, SendCounter(), None)
+            link = _Link(link.target, window, SendCounter(), None, link.target_data_window)
         self._keep(terminal, link)
         return self._count(Outcome.ACCEPTED)
+
+    def receive_fragment(self, fragment: Fragment, *, frame_version: int, epoch: int, counter: int, tag: bytes) -> Outcome:
+        """Check an authenticated uplink data fragment from ``fragment.terminal``: the tag's
+        length, the epoch (the current one, or while a rotation is under way the
+        one it leads to: the terminal moves first), the tag, then the terminal's
+        data window; if accepted, move the window (commit ``batch()`` before the
+        acknowledgement goes out).  A rejection changes nothing and is counted."""
+        if len(tag) != self.tag_bytes:
+            return self._count(Outcome.TRUNCATED)
+        terminal = fragment.terminal
+        link = self._link(terminal)
+        if epoch == link.root.epoch:
+            key, window = link.data_key, link.data_window
+        elif (
+            link.target is not None
+            and link.target_data_key is not None
+            and link.target_data_window is not None
+            and epoch == link.target.epoch
+        ):
+            key, window = link.target_data_key, link.target_data_window
+        else:
+            return self._count(Outcome.WRONG_EPOCH)
+        message = mac_input_of(fragment, frame_version=frame_version, epoch=epoch, counter=counter)
+        outcome = _judge(key, message, tag, window, counter)
+        if outcome is not Outcome.ACCEPTED:
+            return self._count(outcome)
+        window.accept(counter)
+        self._keep(terminal, link)
+        return self._count(Outcome.ACCEPTED)
+
+    def data_windows(self, terminal: int) -> tuple[ReplayWindow, ReplayWindow | None]:
+        """Copies of ``terminal``'s data windows: its epoch's, and the rotation target's (None: no rotation)."""
+        link = self._link(terminal)
+        target = link.target_data_window
+        return link.data_window.copy(), None if target is None else target.copy()
 
     def _count(self, outcome: Outcome) -> Outcome:
         self.counters.count(outcome)
@@ -582,6 +683,17 @@ class MasterAuthenticator:
     def record_key(terminal: int) -> str:
         return f"{MASTER_KEY_PREFIX}{terminal:04x}"
 
+    def _data_records(self, terminal: int, link: _Link) -> dict[str, bytes]:
+        """The terminal's data windows as window records, once authenticated data has come (else none)."""
+        out: dict[str, bytes] = {}
+        if link.data_window.top:
+            out[f"{DATA_WINDOW_PREFIX}{terminal:04x}"] = _record(WINDOW_RECORD, _window_fields(link.data_window, link.root.epoch))
+        if link.target is not None and link.target_data_window is not None and link.target_data_window.top:
+            out[f"{DATA_TARGET_PREFIX}{terminal:04x}"] = _record(
+                WINDOW_RECORD, _window_fields(link.target_data_window, link.target.epoch)
+            )
+        return out
+
     def _encode(self, terminal: int, link: _Link) -> bytes:
         target = link.target.epoch if link.target is not None else link.root.epoch
         return _record(MASTER_RECORD, {
@@ -591,11 +703,20 @@ class MasterAuthenticator:
 
     def records(self) -> dict[str, bytes]:
         """The whole durable state, as store records (one per terminal)."""
-        return {self.record_key(t): self._encode(t, link) for t, link in sorted(self._links.items())}
+        out: dict[str, bytes] = {}
+        for t, link in sorted(self._links.items()):
+            out[self.record_key(t)] = self._encode(t, link)
+            out |= self._data_records(t, link)
+        return out
 
     def batch(self) -> Batch:
         """The records of every terminal whose state changed since the last commit."""
-        return Batch(puts={self.record_key(t): self._encode(t, self._links[t]) for t in sorted(self._changed)})
+        puts: dict[str, bytes] = {}
+        for t in sorted(self._changed):
+            link = self._links[t]
+            puts[self.record_key(t)] = self._encode(t, link)
+            puts |= self._data_records(t, link)
+        return Batch(puts=puts)
 
     @property
     def dirty(self) -> bool:
@@ -630,7 +751,35 @@ class MasterAuthenticator:
             self._links[value.terminal] = _Link(
                 root, _window_from(value.window, key), SendCounter(value.reserved), target
             )
+        for key, data in records.items():
+            for prefix in (DATA_WINDOW_PREFIX, DATA_TARGET_PREFIX):
+                if key.startswith(prefix):
+                    self._restore_data(key, prefix, data)
         return self
+
+    def _restore_data(self, key: str, prefix: str, data: bytes) -> None:
+        """A data window record: the window of the epoch it names, if that is the
+        terminal's epoch or its rotation's target; one of an earlier epoch is
+        left over from before a rotation (other keys, counters started again)."""
+        try:
+            terminal = int(key[len(prefix):], 16)
+        except ValueError:
+            raise RecordError(f"record {key}: no terminal address after {prefix}") from None
+        if key != f"{prefix}{terminal:04x}":
+            raise RecordError(f"record {key}: the address is not four hex digits")
+        value = _parse(WINDOW_RECORD, data, key)
+        window = _window_from(value, key)
+        link = self._links.get(terminal)
+        if link is None:
+            if value.epoch != 0:
+                raise RecordError(f"record {key}: epoch {value.epoch} for a terminal without a record {self.record_key(terminal)}")
+            link = self._links[terminal] = self._link(terminal)
+        if value.epoch == link.root.epoch:
+            link.data_window = window
+        elif link.target is not None and value.epoch == link.target.epoch:
+            link.target_data_window = window
+        elif value.epoch > (link.target or link.root).epoch:
+            raise RecordError(f"record {key}: epoch {value.epoch}, after the terminal's {(link.target or link.root).epoch}")
 
     def __repr__(self) -> str:
         return f"MasterAuthenticator(site={self.site.fingerprint}, terminals={len(self._links)})"

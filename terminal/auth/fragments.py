@@ -10,7 +10,11 @@ retransmission is not a replay); the receiver checks the tag with
 :func:`fragment_tag_matches`, then the counter against a
 :class:`~ionotrail.terminal.auth.window.ReplayWindow` of the stream, and
 only then hands the fragment to reassembly.  Keys come from
-``TerminalAuthenticator.data_key`` and ``MasterAuthenticator.data_key``.
+``TerminalAuthenticator.data_key`` and ``MasterAuthenticator.data_key``;
+``TerminalAuthenticator.sign_fragment`` and
+``MasterAuthenticator.receive_fragment`` do all of the above with the
+durable counter and window.  On the air the fragment travels as the tagged
+frame (``terminal/wire/formats.py``, type 6).
 """
 
 from __future__ import annotations
@@ -21,6 +25,7 @@ from ionotrail.terminal.auth.keys import Key
 from ionotrail.terminal.auth.primitives import hmac_tag, tag_matches
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.limits import AUTH_COUNTER_BITS, AUTH_EPOCH_BITS, AUTH_TAG_BYTES, MAX_FRAGMENT_PAYLOAD
+from ionotrail.terminal.wire.frames import Fragment
 
 FRAGMENT_AUTH_BYTES = AUTH_EPOCH_BITS // 8 + AUTH_COUNTER_BITS // 8 + AUTH_TAG_BYTES
 """Bytes authentication adds to each fragment on the air (14 with the default tag)."""
@@ -41,6 +46,17 @@ def fragment_mac_input(
         }))  # fmt: skip
     except (ConstructError, TypeError, ValueError) as exc:  # a field out of range
         raise UsageError(f"fragment fields out of range: {exc}") from None
+
+
+def mac_input_of(fragment: Fragment, *, frame_version: int, epoch: int, counter: int) -> bytes:
+    """What the tag of ``fragment`` sent with ``epoch`` and ``counter`` covers:
+    every field that affects how it is processed (the downlink flag as the direction)."""
+    return fragment_mac_input(
+        frame_version=frame_version, direction=Direction.DOWNLINK if fragment.downlink else Direction.UPLINK,
+        master=fragment.master, terminal=fragment.terminal, epoch=epoch, counter=counter,
+        message_id=fragment.message_id, final=fragment.final, urgent=fragment.urgent, offset=fragment.offset,
+        payload=fragment.payload,
+    )  # fmt: skip
 
 
 def sign_fragment(key: Key, fields: bytes, tag_bytes: int = AUTH_TAG_BYTES) -> bytes:

@@ -123,3 +123,13 @@ class SendCounter:
         if moved:
             self.reserved = min(MAX_COUNTER, counter + AUTH_COUNTER_RESERVE - 1)
         return counter, moved
+
+    def top_up(self) -> bool:
+        """Reserve ahead when fewer than half a block of reserved counters is
+        left, so that the save runs while counters already saved are still
+        being used; whether the reservation moved (then save it)."""
+        left = self.reserved - self.next + 1
+        if left >= AUTH_COUNTER_RESERVE // 2 or self.reserved >= MAX_COUNTER:
+            return False
+        self.reserved = min(MAX_COUNTER, self.next - 1 + AUTH_COUNTER_RESERVE)
+        return True

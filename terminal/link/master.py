@@ -30,6 +30,15 @@ runner share one implementation:
   moves a terminal to its next key epoch.  The authenticator's state must be
   durable before a probe carrying a newly signed block goes out
   (:attr:`MasterEndpoint.auth`: the shell commits its ``batch()``).
+* **data authentication** (optional, docs/keys.md): a terminal whose data
+  must be authenticated (``require_data_auth``) has its plain fragments
+  refused; a tagged fragment from any terminal is checked (tag, then the
+  terminal's data window) and only then handed to reassembly as its inner
+  fragment.  A master without keys refuses tagged fragments: it cannot tell
+  them from forgeries.  Every refusal is counted and changes no state; an
+  accepted one moves the window, which must be durable before the
+  acknowledgement goes out (the shell commits :attr:`auth`'s ``batch()``
+  before any new probe, as it does for signed commands).
 * **reassembly** of every terminal's messages, with a duplicate window per
   terminal (:class:`~ionotrail.terminal.delivery.reassembly.Reassembler`), and
   its deadline: a half-built message expires ``reassembly_lifetime`` after its
@@ -53,7 +62,7 @@ from ionotrail.terminal.errors import DecodeError, Reason, UsageError
 from ionotrail.terminal.limits import DEFAULT_LIMITS, FORMAT_VERSION, Limits
 from ionotrail.terminal.link.commands import ID_SPACE as COMMAND_ID_SPACE
 from ionotrail.terminal.link.timer import Purpose, Timer, due_at
-from ionotrail.terminal.wire import AckBlock, CommandBlock, Fragment, Probe, Reply, decode
+from ionotrail.terminal.wire import AckBlock, AuthFragment, CommandBlock, Fragment, Probe, Reply, decode
 from ionotrail.terminal.wire.fastpath import assemble_probe, pack_ack_block, pack_command_block
 
 
@@ -90,6 +99,13 @@ class MasterCounters:
     stray_replies: int = 0
     rejected_replies: int = 0
     """Replies whose authentication failed (the authenticator counts why)."""
+    authenticated_fragments: int = 0
+    """Tagged fragments whose tag and counter checked, handed to reassembly."""
+    rejected_fragments: int = 0
+    """Tagged fragments whose authentication failed (the authenticator counts why:
+    forged, replayed, stale, truncated, wrong epoch), or that came to a master without keys."""
+    unauthenticated_fragments: int = 0
+    """Plain fragments from a terminal whose data must be authenticated."""
     other_frames: int = 0
     probe_updates: int = 0
     news_dropped: int = 0
@@ -110,9 +126,23 @@ class MasterEndpoint:
     """The master's side of the burst link, for any number of terminals."""
 
     def __init__(
-        self, address: int, *, limits: Limits = DEFAULT_LIMITS, first_command_id: int = 0, auth: MasterAuthenticator | None = None
+        self,
+        address: int,
+        *,
+        limits: Limits = DEFAULT_LIMITS,
+        first_command_id: int = 0,
+        auth: MasterAuthenticator | None = None,
+        require_data_auth: bool | frozenset[int] = False,
     ) -> None:
+        """``require_data_auth``: True, or the addresses of the terminals whose
+        fragments must come authenticated (plain ones are refused); it needs ``auth``."""
         Probe(address, 0)  # validates the address
+        if require_data_auth is not False and auth is None:
+            raise UsageError("requiring authenticated data needs the site's keys (auth)")
+        if not isinstance(require_data_auth, (bool, frozenset)):
+            raise UsageError(f"require_data_auth is a bool or a frozenset of terminal addresses, not {type(require_data_auth).__name__}")
+        self.require_data_auth = require_data_auth
+        """True (every terminal), or the terminals whose data must be authenticated."""
         self.address = address
         self.limits = limits
         self.reassembler = Reassembler(limits)
@@ -193,7 +223,13 @@ class MasterEndpoint:
             return []
         effects: list[MasterEffect] = []
         if isinstance(frame, Fragment) and frame.master == self.address and not frame.downlink:
-            self._fragment(frame, now, effects)
+            if self._must_authenticate(frame.terminal):
+                self.counters.unauthenticated_fragments += 1
+            else:
+                self._fragment(frame, now, effects)
+        elif isinstance(frame, AuthFragment) and frame.fragment.master == self.address and not frame.fragment.downlink:
+            if self._verified(frame):
+                self._fragment(frame.fragment, now, effects)
         elif isinstance(frame, Reply) and frame.master == self.address:
             self._reply(frame, now, effects)
         else:
@@ -219,6 +255,27 @@ class MasterEndpoint:
                 self._start_turn(now, effects)
         self._arm(now)
         return effects
+
+    # --- data authentication -----------------------------------------------------------
+
+    def _must_authenticate(self, terminal: int) -> bool:
+        required = self.require_data_auth
+        return required if isinstance(required, bool) else terminal in required
+
+    def _verified(self, frame: AuthFragment) -> bool:
+        """Tag, then the terminal's data window (moved only when both pass)."""
+        auth = self.auth
+        if auth is None:  # no key to tell it from a forgery
+            self.counters.rejected_fragments += 1
+            return False
+        outcome = auth.receive_fragment(
+            frame.fragment, frame_version=FORMAT_VERSION, epoch=frame.epoch, counter=frame.counter, tag=frame.tag
+        )
+        if outcome is not Outcome.ACCEPTED:
+            self.counters.rejected_fragments += 1
+            return False
+        self.counters.authenticated_fragments += 1
+        return True
 
     # --- acknowledgements --------------------------------------------------------------
 

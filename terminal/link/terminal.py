@@ -33,7 +33,14 @@ from ionotrail.terminal.auth.authenticator import Action as AuthAction
 from ionotrail.terminal.auth.authenticator import TerminalAuthenticator
 from ionotrail.terminal.delivery.sender import Sender, SenderEvent
 from ionotrail.terminal.errors import DecodeError, ProtocolError, UsageError
-from ionotrail.terminal.limits import DEFAULT_LIMITS, FORMAT_VERSION, MAX_COMMAND_BYTES, MAX_FRAME_BYTES, Limits
+from ionotrail.terminal.limits import (
+    DEFAULT_LIMITS,
+    FORMAT_VERSION,
+    FRAGMENT_OVERHEAD_BYTES,
+    MAX_COMMAND_BYTES,
+    MAX_FRAME_BYTES,
+    Limits,
+)
 from ionotrail.terminal.link.commands import CommandMemory, Verdict
 from ionotrail.terminal.link.gate import UplinkGate
 from ionotrail.terminal.link.policy import FragmentPolicy
@@ -41,8 +48,20 @@ from ionotrail.terminal.link.table import TRANSITIONS, Action, Input, State, cla
 from ionotrail.terminal.link.timer import Purpose, Timer, due_at
 from ionotrail.terminal.outbox.store import Batch
 from ionotrail.terminal.power.duty import DutyCycle
-from ionotrail.terminal.wire import Ack, AckBlock, Command, CommandBlock, Frame, Probe, Reply, decode, encode
+from ionotrail.terminal.wire import (
+    Ack,
+    AckBlock,
+    AuthFragment,
+    Command,
+    CommandBlock,
+    Frame,
+    Probe,
+    Reply,
+    decode,
+    encode,
+)
 from ionotrail.terminal.wire.formats import ReplyStatus
+from ionotrail.terminal.wire.frames import MAX_TAGGED_PAYLOAD, TAGGED_OVERHEAD_BYTES
 
 __all__ = [
     "TRANSITIONS",
@@ -150,15 +169,26 @@ class Link:
         gate: UplinkGate | None = None,
         duty: DutyCycle | None = None,
         auth: TerminalAuthenticator | None = None,
+        authenticate_data: bool = False,
     ) -> None:
         """``gate`` stops transmissions into a path open only downward
         (:mod:`~ionotrail.terminal.link.gate`); ``duty`` holds a transmit
         duty-cycle limit (:mod:`~ionotrail.terminal.power.duty`).  A frame is
         *ready* only when both allow it, so neither needs a cell of its own in
         the table: a refused frame is one not ready.  ``auth`` holds the
-        terminal's keys: without it every command is refused."""
+        terminal's keys: without it every command is refused.
+
+        ``authenticate_data`` (off by default; needs ``auth``) sends every
+        fragment as a tagged frame (docs/keys.md): key epoch, a fresh data
+        counter for each transmission, and a tag under the uplink data key,
+        14 bytes more per fragment, payloads of at most MAX_TAGGED_PAYLOAD.
+        A fragment is ready only while its counter's reservation is durable
+        (the shell commits :meth:`durable_batch`, as for replies); the link
+        reserves ahead so that a burst never waits for a commit."""
         if not bit_rate > 0:
             raise UsageError(f"bit_rate must be positive, not {bit_rate!r}")
+        if authenticate_data and auth is None:
+            raise UsageError("authenticating data fragments needs the terminal's keys (auth)")
         self.sender = sender
         self.terminal, self.master = sender.terminal, sender.master
         self.policy = policy
@@ -179,6 +209,10 @@ class Link:
         """Executed command ids, kept replies and replies waiting (its counters count commands)."""
         self.auth = auth
         """The terminal's keys and anti-replay state (docs/keys.md)."""
+        self.authenticate_data = bool(authenticate_data)
+        """Every fragment goes out as a tagged frame (docs/keys.md)."""
+        if auth is not None and self.authenticate_data:
+            auth.reserve_data()  # durable with the key state's first commit
         self._last_command: CommandBlock | None = None  # the last signed block accepted
         self.gate = gate
         self.duty = duty
@@ -322,6 +356,8 @@ class Link:
             if kept.epoch < self.auth.epoch:
                 raise ProtocolError(f"the store keeps keys of epoch {kept.epoch}, older than the key file's {self.auth.epoch}")
             self.auth = kept  # its anti-replay window and counters go on
+        if self.auth is not None and self.authenticate_data:
+            self.auth.reserve_data()  # past what was reserved before: durable with the next commit
         self.commands.restore(records)
 
     def indifferent_to(self, raw: bytes) -> bool:
@@ -386,7 +422,18 @@ class Link:
             return True
         if self.policy.waits_for_ack and self.state is not State.LISTENING and self.sender.awaiting:
             return False  # within a burst; a new burst presumes the last one's fragment lost
-        return self.sender.sendable > 0
+        return self.sender.sendable > 0 and self._may_sign()
+
+    def _may_sign(self) -> bool:
+        """A fragment may go: data is not authenticated, or its counter is durably reserved."""
+        if not self.authenticate_data:
+            return True
+        auth = self.auth
+        assert auth is not None
+        if auth.data_ready():
+            return True
+        auth.reserve_data()  # commits with this input's durable batch; the fragment waits for it
+        return False
 
     def _may_send(self, now: float, snr_db: float) -> bool:
         """The gate passes a probe heard at ``snr_db``, and the duty-cycle budget
@@ -406,11 +453,23 @@ class Link:
             self.counters.replies_sent += 1
             return reply
         size = self.policy.payload_bytes(now)
-        fragment = self.sender.next_fragment(size, now, 8 / self.bit_rate)
+        if not self.authenticate_data:
+            fragment = self.sender.next_fragment(size, now, 8 / self.bit_rate)
+            if fragment is None:
+                return None
+            self.counters.fragments_sent += 1
+            return encode(fragment)
+        # The sender reckons a fragment's airtime from a plain one's overhead:
+        # starting it the extra bytes' airtime later puts its end where it is.
+        extra = self._airtime(TAGGED_OVERHEAD_BYTES - FRAGMENT_OVERHEAD_BYTES)
+        fragment = self.sender.next_fragment(min(size, MAX_TAGGED_PAYLOAD), now + extra, 8 / self.bit_rate)
         if fragment is None:
             return None
+        auth = self.auth
+        assert auth is not None
+        signature = auth.sign_fragment(fragment, frame_version=FORMAT_VERSION)
         self.counters.fragments_sent += 1
-        return encode(fragment)
+        return encode(AuthFragment(fragment, signature.epoch, signature.counter, signature.tag))
 
     # --- the table, applied ----------------------------------------------------------
 

@@ -49,13 +49,15 @@ from ionotrail.terminal.wire.crc import crc16, crc32c
 
 
 class FrameType(enum.IntEnum):
-    """Low nibble of the head byte.  0 and 6-15 are unassigned."""
+    """Low nibble of the head byte.  0 and 7-15 are unassigned."""
 
     PROBE = 1
     FRAGMENT = 2
     ACK = 3
     COMMAND = 4
     REPLY = 5
+    TAGGED = 6
+    """A fragment with key epoch, counter and tag (optional data authentication, docs/keys.md)."""
 
 
 class ReplyStatus(enum.IntEnum):
@@ -175,23 +177,38 @@ PROBE = _framed(
 """Sent by the master continuously.  A terminal that decodes one knows the
 trail is open now, in both directions, for a short while."""
 
+POSITION = "position" / BitStruct(
+    "final" / Flag * "this fragment ends the message",
+    "urgent" / Flag * "alarm priority",
+    "downlink" / Flag * "master to terminal (else terminal to master)",
+    "offset" / BitsInteger(OFFSET_BITS) * "byte offset of the payload in the sealed message",
+) * "flags and offset"
+
 FRAGMENT = _framed(
     HEAD,
     "terminal" / TERMINAL,
     "master" / MASTER,
     "message_id" / Int16ub * "per-direction message counter of the sender",
-    "position"
-    / BitStruct(
-        "final" / Flag * "this fragment ends the message",
-        "urgent" / Flag * "alarm priority",
-        "downlink" / Flag * "master to terminal (else terminal to master)",
-        "offset" / BitsInteger(OFFSET_BITS) * "byte offset of the payload in the sealed message",
-    )
-    * "flags and offset",
+    POSITION,
     "payload" / GreedyBytes * "bytes of the sealed message; the frame length gives the count",
 )
 """A piece of a sealed message.  Offset plus final flag lets the fragment size
 change from one opening to the next: any byte range can be sent alone."""
+
+TAGGED = _framed(
+    HEAD,
+    "terminal" / TERMINAL,
+    "master" / MASTER,
+    "message_id" / Int16ub * "per-direction message counter of the sender",
+    POSITION,
+    "epoch" / Int16ub * "key epoch the tag was made with (docs/keys.md)",
+    "counter" / Int32ub * "the sender's data counter; each value accepted once, a retransmission takes a new one",
+    "payload" / Body(GreedyBytes, AUTH_TAG_BYTES) * "bytes of the sealed message, up to the tag; the frame length gives the count",
+    "tag" / Bytes(AUTH_TAG_BYTES) * "truncated HMAC-SHA-256 over every field that affects processing",
+)
+"""A fragment authenticated on its own (docs/keys.md): the fragment's fields,
+then key epoch and counter before the payload and the tag after it, so the
+payload still runs to a fixed trailer (the tag and the CRC)."""
 
 ACK = _framed(
     HEAD,

@@ -21,6 +21,7 @@ from ionotrail.terminal.limits import (
     MAX_ACK_RANGES,
     MAX_COMMAND_BYTES,
     MAX_FRAGMENT_PAYLOAD,
+    MAX_FRAME_BYTES,
     MAX_MESSAGE_STREAM,
 )
 from ionotrail.terminal.wire import formats, layout
@@ -36,6 +37,15 @@ _POLL_BYTES = layout.size(layout.optional(layout.frame_fields(formats.PROBE), "p
 _ACK_FIXED = layout.frame_bytes(formats.ACK, ("ack",))
 _COMMAND_FIXED = layout.frame_bytes(formats.COMMAND, ("command",))
 _REPLY_FIXED = layout.frame_bytes(formats.REPLY, ("result",))
+_TAGGED_FIXED = layout.frame_bytes(formats.TAGGED, ("payload",))  # header, epoch, counter, tag and CRC
+
+TAGGED_OVERHEAD_BYTES = _TAGGED_FIXED
+"""Frame bytes of an authenticated fragment beyond its payload (24): the 10 of
+a plain fragment, plus key epoch, counter and tag."""
+
+MAX_TAGGED_PAYLOAD = MAX_FRAME_BYTES - _TAGGED_FIXED
+"""Largest payload of an authenticated fragment (242): the frame stays within
+MAX_FRAME_BYTES, the one receive buffer every frame fits."""
 
 _U16 = 0xFFFF
 _new = tuple.__new__
@@ -393,5 +403,35 @@ class Reply(_ReplyFields):
         return _REPLY_FIXED + len(self.result)
 
 
-Frame = Probe | Fragment | Ack | Command | Reply
+class _AuthFragmentFields(NamedTuple):
+    fragment: Fragment
+    epoch: int
+    counter: int
+    tag: bytes
+
+
+class AuthFragment(_AuthFragmentFields):
+    """A fragment with its authentication: the key epoch and data counter its
+    tag was made with, and the tag (docs/keys.md).  Holding one says nothing of
+    whether the tag is right; only the receiver's key can tell."""
+
+    __slots__ = ()
+    frame_type = FrameType.TAGGED
+
+    def __new__(cls, fragment: Fragment, epoch: int, counter: int, tag: bytes) -> Self:
+        if not isinstance(fragment, Fragment):
+            raise UsageError(f"fragment must be a Fragment, not {type(fragment).__name__}")
+        if len(fragment.payload) > MAX_TAGGED_PAYLOAD:
+            raise UsageError(
+                f"payload is {len(fragment.payload)} bytes; an authenticated fragment carries at most {MAX_TAGGED_PAYLOAD}"
+            )
+        return super().__new__(cls, fragment, _uint("epoch", epoch, 16), _uint("counter", counter, 32), _tag(tag))
+
+    @property
+    def wire_length(self) -> int:
+        """Bytes on the air, CRC included, without encoding."""
+        return _TAGGED_FIXED + len(self.fragment.payload)
+
+
+Frame = Probe | Fragment | Ack | Command | Reply | AuthFragment
 """Any frame representation."""

@@ -219,6 +219,12 @@ def check_limits() -> None:
         "MIN_FRAME_BYTES": (limits.MIN_FRAME_BYTES, size(formats.HEAD) + trailer_bytes(formats.FRAGMENT)),
         "MAX_ACK_RANGES": (limits.MAX_ACK_RANGES, (1 << count.width) - 1),
         "MESSAGE_CRC_BYTES": (limits.MESSAGE_CRC_BYTES, size(member(formats.SEALED_MESSAGE, "crc").checksumfield)),
+        "AUTH_TAG_BYTES": (limits.AUTH_TAG_BYTES, size(member(frame_fields(formats.TAGGED), "tag"))),
+        # what authenticating a fragment adds on the air: epoch, counter and tag (docs/keys.md)
+        "AUTH_EPOCH_BITS + AUTH_COUNTER_BITS + AUTH_TAG_BYTES": (
+            limits.AUTH_EPOCH_BITS // 8 + limits.AUTH_COUNTER_BITS // 8 + limits.AUTH_TAG_BYTES,
+            frame_bytes(formats.TAGGED, ("payload",)) - frame_bytes(formats.FRAGMENT, ("payload",)),
+        ),
     }
     for name, (value, declared) in stated.items():
         if value != declared:

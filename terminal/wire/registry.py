@@ -18,7 +18,7 @@ from construct import Container, Struct
 from ionotrail.terminal.errors import UsageError
 from ionotrail.terminal.wire import fastpath, formats, layout, values
 from ionotrail.terminal.wire.formats import FrameType
-from ionotrail.terminal.wire.frames import Ack, Command, Fragment, Frame, Probe, Reply
+from ionotrail.terminal.wire.frames import Ack, AuthFragment, Command, Fragment, Frame, Probe, Reply
 
 
 @dataclasses.dataclass(frozen=True, slots=True)
@@ -107,6 +107,15 @@ FRAME_KINDS: Mapping[FrameType, FrameKind] = {
             values.reply_from_fields,
             direction="terminal to master",
             purpose="the answer to a command",
+        ),
+        FrameKind(
+            FrameType.TAGGED,
+            AuthFragment,
+            formats.TAGGED,
+            values.tagged_fields,
+            values.tagged_from_fields,
+            direction="either (uplink in this stack)",
+            purpose="a fragment with key epoch, counter and tag (optional data authentication)",
         ),
     )
 }

@@ -11,7 +11,7 @@ from __future__ import annotations
 from typing import Any
 
 from construct import Container
-from ionotrail.terminal.wire.frames import Ack, AckBlock, Command, CommandBlock, Fragment, Probe, Reply
+from ionotrail.terminal.wire.frames import Ack, AckBlock, AuthFragment, Command, CommandBlock, Fragment, Probe, Reply
 
 FieldValues = dict[str, Any]
 """A value for construct's ``build``: field name to value, nested for blocks."""
@@ -115,3 +115,11 @@ def reply_fields(r: Reply) -> FieldValues:
 
 def reply_from_fields(c: Container) -> Reply:
     return Reply(c.terminal, c.master, c.command_id, c.status, c.result, c.epoch, c.counter, c.tag)
+
+
+def tagged_fields(a: AuthFragment) -> FieldValues:
+    return fragment_fields(a.fragment) | {"epoch": a.epoch, "counter": a.counter, "tag": a.tag}
+
+
+def tagged_from_fields(c: Container) -> AuthFragment:
+    return AuthFragment(fragment_from_fields(c), c.epoch, c.counter, c.tag)
