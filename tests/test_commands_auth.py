@@ -23,6 +23,7 @@ from ionotrail.terminal.limits import AUTH_REPLAY_WINDOW, FORMAT_VERSION
 from ionotrail.terminal.link.master import MasterEndpoint, ProbeChanged, ReplyArrived
 from ionotrail.terminal.link.policy import Fixed
 from ionotrail.terminal.link.terminal import Arrival, CommandArrived, Link, Transmit
+from ionotrail.terminal.outbox.store import Batch
 from ionotrail.terminal.stores.memory import MemoryStore
 from ionotrail.terminal.wire import Command, CommandBlock, Probe, Reply, ReplyStatus, decode, encode
 from ionotrail.terminal.wire.crc import crc16
@@ -196,13 +197,20 @@ def test_a_key_rotation_over_the_air_converges_through_a_power_cut(cut: str) -> 
     master = MasterEndpoint(MASTER, auth=MasterAuthenticator(SITE))
 
     def master_commit() -> None:
+        """What MasterStation does before a probe airs: key state and command ids, durable."""
         assert master.auth is not None
-        if master.auth.dirty:
-            m_store.commit(master.auth.batch())
-            master.auth.committed()
+        batch = master.auth.batch() if master.auth.dirty else Batch()
+        if master.command_ids_unsaved:
+            batch = batch.merged(master.command_id_batch())
+        if batch:
+            m_store.commit(batch)
+        master.auth.committed()
+        master.command_ids_committed()
 
     def master_reboot() -> MasterEndpoint:
-        rebooted = MasterEndpoint(MASTER, auth=MasterAuthenticator.restore(SITE, m_store.load()), first_command_id=100)
+        """A restart as MasterStation.start does it: no hint about ids or rotations but the store."""
+        rebooted = MasterEndpoint(MASTER, auth=MasterAuthenticator(SITE))
+        rebooted.restore(m_store.load(), t)
         return rebooted
 
     master.rotate_keys(TERMINAL, 0.0)
@@ -221,8 +229,7 @@ def test_a_key_rotation_over_the_air_converges_through_a_power_cut(cut: str) -> 
         effects = exchange(master, terminal, t)
         if any(isinstance(e, ReplyArrived) for e in effects):
             if cut in ("master-before-commit", "both") and step < 20:
-                master = master_reboot()  # switched in memory only
-                master.rotate_keys(TERMINAL, t)  # the operator, or the master's own restart, asks again
+                master = master_reboot()  # switched in memory only: the restart sends the rotate again
                 master_commit()
                 cut = "done"
                 continue
@@ -262,15 +269,77 @@ def test_serve_and_master_take_the_right_key_file_or_say_why(tmp_path: Path) -> 
     assert _ionotrail("keys", "new-site", str(site)).returncode == 0
     assert _ionotrail("keys", "provision", "--site", str(site), "--terminal", "0x0B00", str(root)).returncode == 0
     port = str(tmp_path / "no-modem")
+    outbox, state = ("--outbox", str(tmp_path / "o.db")), ("--state", str(tmp_path / "m.db"))
     cases = [
-        (("serve", "--keys", str(site)), "a site secret; a terminal takes its own root key"),
-        (("serve", "--keys", str(root)), "the key of terminal 0x0b00, and this terminal is 0x0a31"),
-        (("master", "--keys", str(root)), "a terminal's root key; the master takes the site secret"),
+        (("serve", "--keys", str(site), *outbox), "a site secret; a terminal takes its own root key"),
+        (("serve", "--keys", str(root), *outbox), "the key of terminal 0x0b00, and this terminal is 0x0a31"),
+        (("master", "--keys", str(root), *state), "a terminal's root key; the master takes the site secret"),
+        (("serve", "--keys", str(root)), "give --outbox FILE too"),  # a reboot would forget which commands ran
+        (("master", "--keys", str(site)), "give --state FILE too"),  # a restart would give out ids again
+        (("master", "--rotate-keys"), "--rotate-keys: the rotation is signed with the site secret"),
     ]
     for args, expected in cases:
         run = _ionotrail(*args, "--port", port)
         assert run.returncode == 2 and expected in run.stderr and len(run.stderr.strip().splitlines()) == 1, run.stderr
     os.chmod(site, 0o644)
-    run = _ionotrail("master", "--keys", str(site), "--port", port)
+    run = _ionotrail("master", "--keys", str(site), *state, "--port", port)
     assert run.returncode == 2 and "chmod 600" in run.stderr, run.stderr
     assert site.read_bytes().hex() not in run.stdout + run.stderr
+
+
+def test_a_command_answered_before_a_rotation_is_answered_again_after_it() -> None:
+    """Its reply lost in epoch 0, a command waits out the rotation; re-signed in
+    epoch 1 it is a repeat, and the kept reply is signed again in epoch 1 (the
+    master no longer accepts epoch 0)."""
+    terminal = Terminal(MemoryStore())
+    master = MasterEndpoint(MASTER, auth=MasterAuthenticator(SITE))
+    master.command(TERMINAL, 5, b"\x07", 0.0)
+    terminal.hear(master.probe, 0.0)  # run; its reply never reaches the master
+    assert [op for _, op, _ in terminal.ran] == [5]
+    t = 0.0
+    while master.poll is not None:  # its turn ends unanswered, and the master rests
+        assert master.timer is not None
+        t = master.timer.at
+        master.on_timer(t)
+    master.rotate_keys(TERMINAL, t)  # the rotate goes first; command 5 waits for the new epoch
+    answered: list[ReplyArrived] = []
+    t += 1.0
+    for _ in range(60):
+        effects = exchange(master, terminal, t)
+        answered += [e for e in effects if isinstance(e, ReplyArrived)]
+        if master.timer is not None:
+            master.on_timer(max(t, master.timer.at))
+        t += 1.0
+        if not master.pending_commands:
+            break
+    assert master.auth is not None and master.auth.epoch(TERMINAL) == 1
+    assert [r.status for r in answered if r.result == b"\x07"] == [int(ReplyStatus.OK)], "command 5 answered, once"
+    assert [op for _, op, _ in terminal.ran] == [5], "and run once"
+
+
+def test_a_restarted_master_goes_on_from_its_command_ids() -> None:
+    """Command ids given out before a restart are not given out again (the
+    terminal would take a new command for a repeat of one it ran)."""
+    store = MemoryStore()
+    master = MasterEndpoint(MASTER, auth=MasterAuthenticator(SITE))
+    first, _ = master.command(TERMINAL, 1, b"", 0.0)
+    assert master.auth is not None
+    store.commit(master.auth.batch().merged(master.command_id_batch()))
+    restarted = MasterEndpoint(MASTER, auth=MasterAuthenticator(SITE))
+    restarted.restore(store.load(), 1.0)
+    second, _ = restarted.command(TERMINAL, 2, b"", 1.0)
+    assert (first, second) == (0, 1)
+
+
+def test_the_same_block_long_after_its_turn_is_a_replay() -> None:
+    master = MasterAuthenticator(SITE)
+    terminal = Terminal(MemoryStore())
+    block = signed(master, 6)
+    probe = encode(Probe(MASTER, 1, poll=TERMINAL, command=block))
+    terminal.hear(probe, 0.0)
+    assert terminal.hear(probe, 1.0), "within the turn: answered from the kept reply"
+    auth = terminal.link.auth
+    assert auth is not None
+    before = terminal.state()
+    assert terminal.hear(probe, 1.0 + 10 * 3600.0) == [] and auth.counters.replayed == 1
+    assert terminal.state() == before

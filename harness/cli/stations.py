@@ -93,6 +93,12 @@ def add_parser(commands: Any) -> None:
         "--deliveries", metavar="FILE.jsonl", help="write every delivered message to FILE, one JSON object a line"
     )
     p.add_argument(
+        "--rotate-keys",
+        action="store_true",
+        help="move the scenario's terminal to its next key epoch over the air (needs --keys and --state; survives a "
+        "restart of either end mid-rotation; docs/keys.md)",
+    )
+    p.add_argument(
         "--state",
         metavar="FILE",
         help=(
@@ -236,10 +242,16 @@ async def _open(port: Any, url: str) -> None:
 def run_serve(args: argparse.Namespace) -> int:
     from ionotrail.harness.demo.gauge import REPORT_INTERVAL_S
     from ionotrail.harness.runners.stations import serial_port, terminal_station
+    from ionotrail.terminal.errors import DecodeError, UsageError
     from ionotrail.terminal.service import MessageAbandoned, MessageQueued, MessagesRestored
     from ionotrail.terminal.wire.crc import crc32c
 
     scenario = _check(args)
+    if args.keys and not args.outbox:
+        raise UserError(
+            f"--keys {args.keys}: give --outbox FILE too; without a durable store a reboot forgets which commands ran, "
+            "and a recorded command could be replayed"
+        )
     root = load_keys(args.keys, "terminal", scenario.terminal_address)
     store = open_store("--outbox", args.outbox)
     trace = open_output("--trace", args.trace)
@@ -287,8 +299,12 @@ def run_serve(args: argparse.Namespace) -> int:
             await _until(args.duration)
         finally:
             service.stop()
-            await run
-            await port.close()
+            try:
+                await run
+            except (DecodeError, UsageError) as exc:  # what the store kept cannot be taken up
+                raise UserError(f"--outbox {args.outbox}: {exc}") from None
+            finally:
+                await port.close()
         sender, c, o = service.link.sender.counters, port.counters, service.outbox.counters
         per_message = f"{service.store.writes / o.accepted:.2f}" if o.accepted else "-"
         return (
@@ -310,10 +326,18 @@ def run_serve(args: argparse.Namespace) -> int:
 def run_master(args: argparse.Namespace) -> int:
     from ionotrail.harness.emulators.master import json_lines_sink
     from ionotrail.harness.runners.stations import master_station, serial_port
+    from ionotrail.terminal.errors import DecodeError, UsageError
 
     scenario = _check(args)
+    if args.keys and not args.state:
+        raise UserError(
+            f"--keys {args.keys}: give --state FILE too; without it a restarted master would give out command ids "
+            "and counters again"
+        )
+    if args.rotate_keys and not args.keys:
+        raise UserError("--rotate-keys: the rotation is signed with the site secret; give --keys FILE and --state FILE")
     site = load_keys(args.keys, "master", scenario.terminal_address)
-    store = open_store("--state", args.state)
+    store = open_store("--state", args.state) if args.state else None
     out = open_output("--deliveries", args.deliveries, append=args.state is not None)
     trace = open_output("--trace", args.trace)
 
@@ -327,7 +351,16 @@ def run_master(args: argparse.Namespace) -> int:
         station = master_station(traced(port, trace, "master", origin), scenario, origin=origin, sink=sink, store=store, site=site)
         if out is not None and args.state is not None:
             catch_up(out, args.deliveries, store, station)
-        station.start()
+        try:
+            station.start()
+        except (DecodeError, UsageError) as exc:  # what the state file kept cannot be taken up
+            raise UserError(f"--state {args.state}: {exc}") from None
+        terminal = scenario.terminal_address
+        if args.rotate_keys:
+            auth = station.endpoint.auth
+            if not auth.rotating(terminal):  # (a rotation cut short by a restart is already on its way again)
+                station.rotate_keys(terminal)
+            print(f"rotating the keys of terminal {terminal:#06x} to epoch {auth.epoch(terminal) + 1}", file=sys.stderr)
         try:
             await _until(args.duration)
         finally:
@@ -339,8 +372,14 @@ def run_master(args: argparse.Namespace) -> int:
             if args.state
             else ""
         )
+        auth = station.endpoint.auth
+        keys = (
+            f"; keys of {terminal:#06x} at epoch {auth.epoch(terminal)}{' (rotation under way)' if auth.rotating(terminal) else ''}"
+            if auth is not None
+            else ""
+        )
         return (
-            f"master: {m.deliveries} messages delivered{kept}, {m.fragments} fragments, {m.crc_failed} CRC failures; "
+            f"master: {m.deliveries} messages delivered{kept}, {m.fragments} fragments, {m.crc_failed} CRC failures{keys}; "
             f"modem resets {c.resets}, reconnects {c.reconnects}, line errors {sum(c.line_errors.values())}"
         )
 

@@ -156,8 +156,7 @@ class MasterStation:
         if self.journal is not None and self.store is not None:
             stored = self.store.load()
             self.restored = self.journal.restore(stored, self._now())
-            if self.site is not None:
-                self.endpoint.auth = MasterAuthenticator.restore(self.site, stored)
+            self._carry_out(self.endpoint.restore(stored, self._now()))  # committed before the probe airs
             self._arm()
         self.port.attach(self._arrived)
         self.port.start_listening()
@@ -211,11 +210,14 @@ class MasterStation:
             # authenticated fragment kept, durably before the probe carrying either airs.
             if auth is not None and auth.dirty:
                 batch = batch.merged(auth.batch())
+            if self.endpoint.command_ids_unsaved:  # a restarted master must not give out an id again
+                batch = batch.merged(self.endpoint.command_id_batch())
             if batch:
                 self.store.commit(batch)
                 self.journal.committed(batch)
                 if auth is not None:
                     auth.committed()
+                self.endpoint.command_ids_committed()
         for effect in effects:
             if isinstance(effect, ProbeChanged):
                 self.port.start_probing(effect.frame, self.probe_interval)

@@ -915,7 +915,7 @@ def store_record_seeds() -> list[bytes]:
     from ionotrail.terminal.outbox.journal import MasterJournal
     from ionotrail.terminal.outbox.outbox import Outbox
     from ionotrail.terminal.stores.memory import MemoryStore
-    from ionotrail.terminal.wire import AckBlock
+    from ionotrail.terminal.wire import AckBlock, Reply, ReplyStatus, encode
 
     site = simulated_site(7)
     terminal_store, master_store = MemoryStore(), MemoryStore()
@@ -943,7 +943,7 @@ def store_record_seeds() -> list[bytes]:
         terminal_auth.receive_command(frame_version=FORMAT_VERSION, master=MASTER, command_id=command_id, opcode=1, arguments=b"",
                                       epoch=sig.epoch, counter=sig.counter, tag=sig.tag)  # fmt: skip
         memory.arrived(command_id)
-    memory.answered(1, b"\x15reply")
+    memory.answered(1, encode(Reply(TERMINAL, MASTER, 1, ReplyStatus.OK, b"done", 0, 1, bytes(8))))
     opcode, arguments = master_auth.begin_rotation(TERMINAL)
     sig = master_auth.sign_command(TERMINAL, frame_version=FORMAT_VERSION, master=MASTER, command_id=3, opcode=opcode, arguments=arguments)
     terminal_auth.receive_command(frame_version=FORMAT_VERSION, master=MASTER, command_id=3, opcode=opcode, arguments=arguments,

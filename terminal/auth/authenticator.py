@@ -569,6 +569,10 @@ class MasterAuthenticator:
         """The epoch commands to ``terminal`` are signed in."""
         return self._link(terminal).root.epoch
 
+    def rotating_terminals(self) -> list[int]:
+        """Terminals whose rotation is under way (after a restart: send their rotate again)."""
+        return sorted(t for t, link in self._links.items() if link.target is not None)
+
     def rotating(self, terminal: int) -> bool:
         """True from ``begin_rotation`` until the terminal's first reply in the new epoch."""
         return self._link(terminal).target is not None

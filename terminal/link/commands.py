@@ -29,7 +29,7 @@ import dataclasses
 import enum
 from collections import OrderedDict, deque
 
-from ionotrail.terminal.errors import BadField
+from ionotrail.terminal.errors import BadField, UsageError
 from ionotrail.terminal.limits import Limits
 from ionotrail.terminal.outbox import records
 from ionotrail.terminal.outbox.store import Batch
@@ -121,6 +121,17 @@ class CommandMemory:
         self._replies[command_id] = reply
         self._unsaved = True
         self._enqueue(reply)
+
+    def kept_reply(self, command_id: int) -> bytes | None:
+        """The reply frame kept for ``command_id`` (None: none kept, or not yet made)."""
+        return self._replies.get(command_id)
+
+    def keep_reply(self, command_id: int, reply: bytes) -> None:
+        """Replace the kept reply of a command run (a reply signed again); queued replies are left alone."""
+        if command_id not in self._replies or self._replies[command_id] is None:
+            raise UsageError(f"command {command_id} has no kept reply to replace")
+        self._replies[command_id] = reply
+        self._unsaved = True
 
     def next_reply(self) -> bytes | None:
         return self._queue.popleft() if self._queue else None

@@ -21,7 +21,9 @@ runner share one implementation:
   polled, so one silent terminal cannot keep the others quiet.  The ids are
   not kept across a restart of the master: a restarted master must be given
   a ``first_command_id`` past the ids it used, or a terminal's command window
-  takes its first new command for a repeat of an old one.
+  takes its first new command for a repeat of an old one; with a store, the
+  next id per terminal is a record (:meth:`MasterEndpoint.command_id_batch`)
+  and a restarted master goes on from it.
 * **authentication.**  Every command is signed (key epoch, counter, tag;
   docs/keys.md) by the :class:`~ionotrail.terminal.auth.authenticator.MasterAuthenticator`
   when its turn starts, with a fresh counter each turn, and every reply is
@@ -54,16 +56,21 @@ from __future__ import annotations
 
 import dataclasses
 from collections import OrderedDict, deque
+from collections.abc import Mapping
 from typing import NamedTuple
 
 from ionotrail.terminal.auth.authenticator import MasterAuthenticator, Outcome
 from ionotrail.terminal.delivery.reassembly import Delivery, Reassembler
-from ionotrail.terminal.errors import DecodeError, Reason, UsageError
+from ionotrail.terminal.errors import BadField, DecodeError, Reason, UsageError
 from ionotrail.terminal.limits import DEFAULT_LIMITS, FORMAT_VERSION, Limits
 from ionotrail.terminal.link.commands import ID_SPACE as COMMAND_ID_SPACE
 from ionotrail.terminal.link.timer import Purpose, Timer, due_at
+from ionotrail.terminal.outbox import records
+from ionotrail.terminal.outbox.store import Batch
 from ionotrail.terminal.wire import AckBlock, AuthFragment, CommandBlock, Fragment, Probe, Reply, decode
 from ionotrail.terminal.wire.fastpath import assemble_probe, pack_ack_block, pack_command_block
+
+NEXT_ID_PREFIX = "commands/next-id/"
 
 
 class ProbeChanged(NamedTuple):
@@ -161,6 +168,7 @@ class MasterEndpoint:
             raise UsageError(f"first_command_id={first_command_id!r} must be an integer from 0 to {COMMAND_ID_SPACE - 1}")
         self._first_command_id = first_command_id
         self._next_command_id: dict[int, int] = {}
+        self._ids_unsaved: set[int] = set()  # terminals whose next command id is not yet durable
         self._polling = False  # the head command is on the probes
         self._aired: set[tuple[int, int]] = set()  # (terminal, id) of queued commands that have had a turn
         self._turn_ends = float("inf")  # when the head command's turn ends, or the rest after one
@@ -195,6 +203,7 @@ class MasterEndpoint:
         block = CommandBlock(command_id, opcode, arguments)  # validates opcode and arguments
         Probe(self.address, 0, poll=terminal)  # validates the address
         self._next_command_id[terminal] = (command_id + 1) % COMMAND_ID_SPACE
+        self._ids_unsaved.add(terminal)
         self._commands.append(_Pending(terminal, block))
         effects: list[MasterEffect] = []
         if len(self._commands) == 1:
@@ -210,6 +219,49 @@ class MasterEndpoint:
             raise UsageError("commands are signed: this master holds no site key (ionotrail keys new-site)")
         opcode, arguments = self.auth.begin_rotation(terminal)
         return self.command(terminal, opcode, arguments, now)
+
+    # --- durable command ids -----------------------------------------------------------
+
+    @property
+    def command_ids_unsaved(self) -> bool:
+        """A command id was given out that a store does not hold yet (commit
+        :meth:`command_id_batch` before the probe carrying it goes out)."""
+        return bool(self._ids_unsaved)
+
+    def command_id_batch(self) -> Batch:
+        """The next command id of every terminal given one since the last commit."""
+        return Batch(
+            {
+                f"{NEXT_ID_PREFIX}{t:04x}": bytes(records.NEXT_COMMAND_ID.build({"terminal": t, "next": self._next_command_id[t]}))
+                for t in sorted(self._ids_unsaved)
+            }
+        )
+
+    def command_ids_committed(self) -> None:
+        self._ids_unsaved.clear()
+
+    def restore_command_ids(self, stored: Mapping[str, bytes]) -> None:
+        """Go on, after a restart, from the next command ids a store kept (other records are ignored)."""
+        for key, value in stored.items():
+            if key.startswith(NEXT_ID_PREFIX):
+                record = records.parse(records.NEXT_COMMAND_ID, key, value)
+                if key != f"{NEXT_ID_PREFIX}{record.terminal:04x}":
+                    raise BadField(f"record {key}: holds terminal 0x{record.terminal:04x}")
+                self._next_command_id[record.terminal] = record.next
+
+    def restore(self, stored: Mapping[str, bytes], now: float) -> list[MasterEffect]:
+        """Take up what a store kept, after a restart: the next command ids, and
+        the key state, whose rotations under way go out again (a rotation cut
+        short must finish before the terminal's other commands can be signed).
+        Returns the effects (a new probe); commit before it airs."""
+        self.restore_command_ids(stored)
+        effects: list[MasterEffect] = []
+        if self.auth is not None:
+            old = self.auth
+            self.auth = MasterAuthenticator.restore(old.site, stored, tag_bytes=old.tag_bytes, window=old.window_size)
+            for terminal in self.auth.rotating_terminals():
+                effects += self.rotate_keys(terminal, now)[1]
+        return effects
 
     # --- inputs ------------------------------------------------------------------------
 

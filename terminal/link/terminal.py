@@ -213,7 +213,8 @@ class Link:
         """Every fragment goes out as a tagged frame (docs/keys.md)."""
         if auth is not None and self.authenticate_data:
             auth.reserve_data()  # durable with the key state's first commit
-        self._last_command: CommandBlock | None = None  # the last signed block accepted
+        self._last_command: CommandBlock | None = None  # the last signed block accepted, and when
+        self._last_command_at = -float("inf")
         self.gate = gate
         self.duty = duty
         self._max_airtime = self._airtime(MAX_FRAME_BYTES)  # what the duty check reserves for the next frame
@@ -258,7 +259,7 @@ class Link:
             self._take_ack(frame.ack, arrival, effects)
             return effects
         if isinstance(frame, Command) and frame.master == self.master and frame.terminal == self.terminal:
-            self._take_command(frame.command, effects)
+            self._take_command(frame.command, arrival.time, effects)
             return effects
         if not isinstance(frame, Probe) or frame.master != self.master:
             self.counters.ignored_frames += 1
@@ -274,7 +275,7 @@ class Link:
             self._take_ack(frame.ack, arrival, effects)
         ours = frame.poll is None or frame.poll == self.terminal
         if frame.command is not None and frame.poll == self.terminal:
-            self._take_command(frame.command, effects)
+            self._take_command(frame.command, arrival.time, effects)
         self._last_probe = arrival.time
         self._last_probe_ours = ours
         if self.state is not _LISTENING:  # in a burst (a new one starts in START_BURST)
@@ -346,16 +347,18 @@ class Link:
     def restore_durable(self, records: dict[str, bytes]) -> None:
         """Take up, at boot, the key state and command memory a store kept
         (records of other kinds are ignored).  Kept keys replace the ones the
-        link was built with (they may have been rotated since provisioning)."""
+        link was built with (they may have been rotated since provisioning),
+        unless the key file is of a later epoch (the terminal was provisioned
+        again): then the file's keys start afresh.  A store holding another
+        terminal's keys is the wrong store (UsageError)."""
         from ionotrail.terminal.auth.authenticator import ROOT_KEY
 
         if ROOT_KEY in records and self.auth is not None:
             kept = TerminalAuthenticator.restore(records, tag_bytes=self.auth.tag_bytes, window=self.auth.window_size)
             if kept.terminal != self.terminal:
-                raise ProtocolError(f"the store keeps the keys of terminal 0x{kept.terminal:04x}, not 0x{self.terminal:04x}")
-            if kept.epoch < self.auth.epoch:
-                raise ProtocolError(f"the store keeps keys of epoch {kept.epoch}, older than the key file's {self.auth.epoch}")
-            self.auth = kept  # its anti-replay window and counters go on
+                raise UsageError(f"the store keeps the keys of terminal 0x{kept.terminal:04x}, not of 0x{self.terminal:04x}")
+            if kept.epoch >= self.auth.epoch:
+                self.auth = kept  # its anti-replay window and counters go on
         if self.auth is not None and self.authenticate_data:
             self.auth.reserve_data()  # past what was reserved before: durable with the next commit
         self.commands.restore(records)
@@ -552,15 +555,34 @@ class Link:
                 self._burst_confirmed += 1
             self.policy.fragment_settled(size, lost)
 
-    def _take_command(self, block: CommandBlock, effects: list[Effect]) -> None:
+    def _fresh_reply(self, command_id: int) -> None:
+        """Sign again, in the current epoch, a kept reply to ``command_id`` signed in an older one."""
+        kept = self.commands.kept_reply(command_id)
+        if kept is None or self.auth is None:
+            return
+        old = decode(kept)
+        if not isinstance(old, Reply) or old.epoch == self.auth.epoch:
+            return
+        signature = self.auth.sign_reply(
+            frame_version=FORMAT_VERSION, master=self.master, command_id=command_id, status=int(old.status), result=old.result
+        )
+        frame = encode(Reply(self.terminal, self.master, command_id, old.status, old.result, signature.epoch, signature.counter, signature.tag))
+        self.commands.keep_reply(command_id, frame)
+
+    def _take_command(self, block: CommandBlock, now: float, effects: list[Effect]) -> None:
         """A command block for us: authenticated first (tag, then anti-replay
         window; a rejection changes nothing and is counted), then run once.
         The master repeats a signed block on every probe of its turn; the same
         block again is a repeat of an accepted command, answered from the kept
         reply.  A new turn comes with a fresh counter, and an id already run
-        is answered, not run again."""
-        if block == self._last_command:
+        is answered, not run again.  The shortcut holds only for a command
+        turn after the block was accepted; later, the block is a replay and
+        the window refuses it.  A kept reply signed in an epoch the keys have
+        since left is signed again before it goes (the master checks replies
+        in its current epoch)."""
+        if block == self._last_command and now - self._last_command_at <= self.limits.command_turn:
             self.counters.command_repeats += 1
+            self._fresh_reply(block.command_id)
             self.commands.arrived(block.command_id)
             return
         auth = self.auth
@@ -573,7 +595,8 @@ class Link:
         )  # fmt: skip
         if not check.accepted:
             return
-        self._last_command = block
+        self._last_command, self._last_command_at = block, now
+        self._fresh_reply(block.command_id)
         verdict = self.commands.arrived(block.command_id)
         if verdict is Verdict.REPEAT and self.commands.result_lost(block.command_id):
             self.reply(block.command_id, ReplyStatus.RESULT_LOST)  # run before a power cut took its reply

@@ -105,6 +105,15 @@ COMMANDS = Struct(
 )
 """The terminal's memory of commands run (key ``commands/memory``)."""
 
+NEXT_COMMAND_ID = Struct(
+    VERSION,
+    "terminal" / Int16ub * "terminal address",
+    "next" / Int8ub * "the command id the master gives this terminal's next command",
+)
+"""The master's next command id for one terminal (key ``commands/next-id/<terminal>``):
+a restarted master goes on from it, so a new command never takes the id of
+one the terminal already ran."""
+
 DECLARATIONS: dict[str, Construct] = {
     "counter": COUNTER,
     "message": MESSAGE,
@@ -112,6 +121,7 @@ DECLARATIONS: dict[str, Construct] = {
     "partial": PARTIAL,
     "delivery": DELIVERY,
     "commands": COMMANDS,
+    "next-command-id": NEXT_COMMAND_ID,
 }
 
 
