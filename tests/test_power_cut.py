@@ -7,7 +7,10 @@
 * ``ionotrail serve --outbox`` and ``ionotrail master --state`` over the modem
   emulator (``ionotrail emulate``), each killed and restarted again and again
   while the other runs on: every message the terminal accepted is delivered
-  exactly once, and nothing is delivered twice.
+  exactly once, and nothing is delivered twice.  Both hold keys, and every
+  master life starts a key rotation over the air (``--rotate-keys``), so
+  rotations are cut at random moments too: at the end both ends agree on the
+  epoch.
 
 The default suite kills each side 10 times; the ``thorough``-marked cases
 (run with ``--hypothesis-profile=thorough``) 100 times.
@@ -27,6 +30,10 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from ionotrail.harness.cli.keys import write_key_file
+from ionotrail.terminal.auth.authenticator import MasterAuthenticator, TerminalAuthenticator
+from ionotrail.terminal.auth.keys import SiteSecret
+from ionotrail.terminal.errors import DecodeError
 from ionotrail.terminal.outbox.journal import parse_delivery
 from ionotrail.terminal.stores.sqlite import SqliteStore
 from ionotrail.terminal.wire.crc import crc32c
@@ -119,12 +126,12 @@ class Station:
         if role == "terminal":
             self.command = [
                 sys.executable, "-m", "ionotrail", "serve", "--port", port, "--outbox", str(work / "outbox.db"),
-                "--accepted", str(work / "accepted.jsonl"), "--every", "0.5", *SETS,
+                "--accepted", str(work / "accepted.jsonl"), "--every", "0.5", "--keys", str(work / "gauge.key"), *SETS,
             ]  # fmt: skip
         else:
             self.command = [
                 sys.executable, "-m", "ionotrail", "master", "--port", port, "--state", str(work / "master.db"),
-                "--deliveries", str(work / "deliveries.jsonl"), *SETS,
+                "--deliveries", str(work / "deliveries.jsonl"), "--keys", str(work / "site.key"), "--rotate-keys", *SETS,
             ]  # fmt: skip
         self.process: subprocess.Popen[bytes] | None = None
         self.lives = 0
@@ -160,11 +167,26 @@ def outbox_empty(path: Path) -> bool:
         db.close()
 
 
+def rotation_done(work: Path, site: SiteSecret) -> tuple[int, int] | None:
+    """(master's epoch, terminal's epoch) once both stores agree and no rotation is under way."""
+    try:
+        terminal = TerminalAuthenticator.restore(SqliteStore(work / "outbox.db").load())
+        master = MasterAuthenticator.restore(site, SqliteStore(work / "master.db").load())
+    except (DecodeError, sqlite3.Error):
+        return None
+    if master.rotating(0x0A31) or master.epoch(0x0A31) != terminal.epoch:
+        return None
+    return master.epoch(0x0A31), terminal.epoch
+
+
 @pytest.mark.parametrize("kills_each", KILLS)
 def test_killed_stations_lose_nothing_and_deliver_nothing_twice(kills_each: int, tmp_path: Path) -> None:
     rng = random.Random(1202)
     run_dir, work = tmp_path / "run", tmp_path / "work"
     work.mkdir()
+    site = SiteSecret(bytes(range(32)))
+    write_key_file(work / "site.key", site)
+    write_key_file(work / "gauge.key", site.root(0x0A31))
     with emulator(run_dir):
         terminal, master = Station("terminal", run_dir, work), Station("master", run_dir, work)
         master.start()
@@ -185,6 +207,10 @@ def test_killed_stations_lose_nothing_and_deliver_nothing_twice(kills_each: int,
         while not outbox_empty(work / "outbox.db"):
             assert time.monotonic() < deadline, "the outbox did not drain"
             time.sleep(1.0)
+        deadline = time.monotonic() + 120  # every master life began a key rotation: the last one completes
+        while not rotation_done(work, site):
+            assert time.monotonic() < deadline, "the last key rotation did not complete"
+            time.sleep(1.0)
         time.sleep(2.0)  # the master's last commits and probes
         terminal_out, master_out = terminal.stop(), master.stop()
     accepted = [json.loads(line) for line in (work / "accepted.jsonl").read_text().splitlines()]
@@ -196,8 +222,10 @@ def test_killed_stations_lose_nothing_and_deliver_nothing_twice(kills_each: int,
     assert not missing, f"accepted and never delivered: {sorted(missing)}"
     exported = [json.loads(line) for line in (work / "deliveries.jsonl").read_text().splitlines()]
     assert [(r["message_id"], int(r["crc32c"], 16)) for r in exported] == keys, "the deliveries file differs from the log"
+    epochs = rotation_done(work, site)
+    assert epochs is not None and epochs[0] >= 1, "keys rotated over the air through the kills, both ends agreeing"
     print(
-        f"\nkills: terminal {kills['terminal']}, master {kills['master']}; accepted {len(accepted)} (lines), "
+        f"\nkills: terminal {kills['terminal']}, master {kills['master']}; key epoch {epochs[0]} at both ends; accepted {len(accepted)} (lines), "
         f"delivered {len(delivered)}, lost 0, duplicated 0; {terminal_out.strip().splitlines()[-1]}; {master_out.strip().splitlines()[-1]}"
     )
     assert len(delivered) >= len(accepted) >= 2 * kills_each  # the runs carried traffic worth the name
