@@ -131,6 +131,10 @@ class Sender:
         self._downlink = bool(downlink)  # as the constructor stores it
         self.limits = limits
         self.counters = SenderCounters()
+        self.frame_overhead = FRAGMENT_OVERHEAD
+        """Bytes a frame adds to the payload it carries: what the airtimes, the
+        budget of :meth:`fill`, ``air_bytes`` and the outcomes reckon with.  A link
+        that sends tagged fragments sets the tagged frame's overhead."""
         self._next_seq = first_id
         self._queue: dict[int, _Outgoing] = {}  # by unwrapped id, in id order
         # The same messages by 16-bit id: unique, because queued ids span at most
@@ -346,12 +350,13 @@ class Sender:
         of the budget allows; there is no other selection.  Bytes never sent
         go first; once none remain, pieces sent before ``now`` and still
         unconfirmed are presumed lost (:meth:`presume_lost`) and go again.  A
-        budget of ``FRAGMENT_OVERHEAD`` bytes or less sends nothing.
+        budget of ``frame_overhead`` bytes or less sends nothing.
         """
         fragments: list[Fragment] = []
         presumed = False
-        while budget > FRAGMENT_OVERHEAD:
-            fragment = self.next_fragment(budget - FRAGMENT_OVERHEAD, now)
+        overhead = self.frame_overhead
+        while budget > overhead:
+            fragment = self.next_fragment(budget - overhead, now)
             if fragment is None:
                 if presumed:
                     break
@@ -359,7 +364,7 @@ class Sender:
                 presumed = True
                 continue
             fragments.append(fragment)
-            budget -= len(fragment.payload) + FRAGMENT_OVERHEAD
+            budget -= len(fragment.payload) + overhead
         return fragments
 
     def _changed(self) -> None:
@@ -372,7 +377,7 @@ class Sender:
         message.sent.add(start, start + take)
         self._changed()
         self.counters.payload_bytes += take
-        self.counters.air_bytes += take + FRAGMENT_OVERHEAD
+        self.counters.air_bytes += take + self.frame_overhead
         # Built without Fragment's checks, which every value here keeps: the addresses
         # passed them in __init__, the id is 16 bits, and 1 to max_fragment_payload bytes
         # (at most MAX_FRAGMENT_PAYLOAD) lie inside a sealed message of at most
@@ -411,7 +416,7 @@ class Sender:
         if choice is None:
             return None
         message, start, take = choice
-        fragment = self._track(message, start, take, now + (take + FRAGMENT_OVERHEAD) * seconds_per_byte)
+        fragment = self._track(message, start, take, now + (take + self.frame_overhead) * seconds_per_byte)
         if start + take == len(message.sealed) and message.acked.contains(start, start + take):
             # A solicitation: the byte is already acknowledged, so it is not "sent,
             # unconfirmed", or a later acknowledgement that forgets it would leave it
@@ -518,7 +523,7 @@ class Sender:
                     message.sent.discard(gap_start, gap_end)
                     lost += gap_end - gap_start
             self.counters.presumed_lost_bytes += lost
-            self.outcomes.append((end - start + FRAGMENT_OVERHEAD, lost > 0))
+            self.outcomes.append((end - start + self.frame_overhead, lost > 0))
 
     def count_stray_acks(self, count: int) -> None:
         """``count`` acknowledgements arrived for messages no longer held: what
@@ -545,7 +550,8 @@ class Sender:
             self.counters.stray_acks += 1
             return []
         if block.complete:
-            self.outcomes.extend((end - start + FRAGMENT_OVERHEAD, False) for _, start, end in message.in_flight)
+            overhead = self.frame_overhead
+            self.outcomes.extend((end - start + overhead, False) for _, start, end in message.in_flight)
             del self._queue[message.seq], self._by_wire_id[message.wire_id]
             self._flying.pop(message.seq, None)
             self._eligible_now = None

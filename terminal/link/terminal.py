@@ -36,7 +36,6 @@ from ionotrail.terminal.errors import DecodeError, ProtocolError, UsageError
 from ionotrail.terminal.limits import (
     DEFAULT_LIMITS,
     FORMAT_VERSION,
-    FRAGMENT_OVERHEAD_BYTES,
     MAX_COMMAND_BYTES,
     MAX_FRAME_BYTES,
     Limits,
@@ -213,6 +212,7 @@ class Link:
         """Every fragment goes out as a tagged frame (docs/keys.md)."""
         if auth is not None and self.authenticate_data:
             auth.reserve_data()  # durable with the key state's first commit
+            sender.frame_overhead = TAGGED_OVERHEAD_BYTES
         self._last_command: CommandBlock | None = None  # the last signed block accepted, and when
         self._last_command_at = -float("inf")
         self.gate = gate
@@ -462,10 +462,7 @@ class Link:
                 return None
             self.counters.fragments_sent += 1
             return encode(fragment)
-        # The sender reckons a fragment's airtime from a plain one's overhead:
-        # starting it the extra bytes' airtime later puts its end where it is.
-        extra = self._airtime(TAGGED_OVERHEAD_BYTES - FRAGMENT_OVERHEAD_BYTES)
-        fragment = self.sender.next_fragment(min(size, MAX_TAGGED_PAYLOAD), now + extra, 8 / self.bit_rate)
+        fragment = self.sender.next_fragment(min(size, MAX_TAGGED_PAYLOAD), now, 8 / self.bit_rate)
         if fragment is None:
             return None
         auth = self.auth
