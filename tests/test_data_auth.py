@@ -261,6 +261,29 @@ def test_the_master_keeps_its_data_window_across_a_restart() -> None:
     assert again.counters.authenticated_fragments == 1
 
 
+def test_a_left_over_target_window_never_stands_in_for_the_newer_window() -> None:
+    """A finished rotation's target window record, left in a store, must not
+    replace the newer window at a restart, whatever order the store gives the
+    records in (a memory store gives insertion order; before, the last one read
+    won, and counters between the two tops were accepted a second time)."""
+    terminal, master = _terminal_auth(), _master()
+    frames = [_signed(terminal, Fragment(TERMINAL, MASTER, i, 0, b"reading", final=False)) for i in range(5)]
+    for i, frame in enumerate(frames[:2]):
+        master.on_frame(frame, float(i))
+    auth = master.auth
+    assert auth is not None
+    older = auth.records()["auth/data-window/0a31"]
+    for i, frame in enumerate(frames[2:], start=2):
+        master.on_frame(frame, float(i))
+    records = auth.records() | {"auth/data-target/0a31": older}  # after the newer window
+    again = MasterEndpoint(MASTER, auth=MasterAuthenticator.restore(SITE, records), require_data_auth=True)
+    assert again.auth is not None and again.auth.data_windows(TERMINAL)[0].top == 5
+    again.on_frame(frames[3], 9.0)
+    assert again.counters.rejected_fragments == 1 and again.auth.counters.replayed == 1
+    # And a batch deletes the data records its state no longer has.
+    assert auth.batch().deletes == {"auth/data-target/0a31"}
+
+
 # --- the terminal's link, sans-I/O, against the master ---------------------------------------
 
 
@@ -419,6 +442,11 @@ def test_a_simulated_day_with_authenticated_data_delivers_everything_once() -> N
     }
     assert per_fragment == {False: FRAGMENT_OVERHEAD_BYTES, True: FRAGMENT_OVERHEAD_BYTES + FRAGMENT_AUTH_BYTES}
     assert per_fragment[True] - per_fragment[False] == 14
+    # The sender reckons with the frames the link sends: its air bytes are the
+    # link's bytes sent, and the sizes it learns losses by are tagged frames'.
+    for on, run in runs.items():
+        assert run.link.sender.counters.air_bytes == run.link.counters.bytes_sent
+        assert run.link.sender.frame_overhead == per_fragment[on]
 
 
 def test_the_scenario_option_is_off_by_default() -> None:

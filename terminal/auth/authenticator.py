@@ -714,13 +714,18 @@ class MasterAuthenticator:
         return out
 
     def batch(self) -> Batch:
-        """The records of every terminal whose state changed since the last commit."""
+        """The records of every terminal whose state changed since the last commit;
+        a data window record the state no longer has (a rotation's target window,
+        once the rotation is done) is deleted, so none is left to restore."""
         puts: dict[str, bytes] = {}
+        deletes: set[str] = set()
         for t in sorted(self._changed):
             link = self._links[t]
             puts[self.record_key(t)] = self._encode(t, link)
-            puts |= self._data_records(t, link)
-        return Batch(puts=puts)
+            data = self._data_records(t, link)
+            puts |= data
+            deletes |= {f"{prefix}{t:04x}" for prefix in (DATA_WINDOW_PREFIX, DATA_TARGET_PREFIX)} - set(data)
+        return Batch(puts=puts, deletes=frozenset(deletes))
 
     @property
     def dirty(self) -> bool:
@@ -755,16 +760,18 @@ class MasterAuthenticator:
             self._links[value.terminal] = _Link(
                 root, _window_from(value.window, key), SendCounter(value.reserved), target
             )
-        for key, data in records.items():
-            for prefix in (DATA_WINDOW_PREFIX, DATA_TARGET_PREFIX):
+        for prefix in (DATA_WINDOW_PREFIX, DATA_TARGET_PREFIX):  # (the outcome does not hang on the records' order)
+            for key, data in records.items():
                 if key.startswith(prefix):
                     self._restore_data(key, prefix, data)
         return self
 
     def _restore_data(self, key: str, prefix: str, data: bytes) -> None:
-        """A data window record: the window of the epoch it names, if that is the
-        terminal's epoch or its rotation's target; one of an earlier epoch is
-        left over from before a rotation (other keys, counters started again)."""
+        """A data window record: a ``data-window`` record is the window of the
+        terminal's epoch, a ``data-target`` record that of its rotation's target.
+        One of an earlier epoch, or a target record of the epoch a finished
+        rotation reached, is left over from before (a store written before target
+        records were deleted): ignored, never put in place of the newer window."""
         try:
             terminal = int(key[len(prefix):], 16)
         except ValueError:
@@ -778,12 +785,14 @@ class MasterAuthenticator:
             if value.epoch != 0:
                 raise RecordError(f"record {key}: epoch {value.epoch} for a terminal without a record {self.record_key(terminal)}")
             link = self._links[terminal] = self._link(terminal)
-        if value.epoch == link.root.epoch:
+        newest = link.root.epoch if prefix == DATA_WINDOW_PREFIX else (link.target or link.root).epoch
+        if prefix == DATA_WINDOW_PREFIX and value.epoch == newest:
             link.data_window = window
-        elif link.target is not None and value.epoch == link.target.epoch:
+        elif prefix == DATA_TARGET_PREFIX and link.target is not None and value.epoch == newest:
             link.target_data_window = window
-        elif value.epoch > (link.target or link.root).epoch:
-            raise RecordError(f"record {key}: epoch {value.epoch}, after the terminal's {(link.target or link.root).epoch}")
+        elif value.epoch > newest:
+            holder = "terminal" if prefix == DATA_WINDOW_PREFIX else "rotation"
+            raise RecordError(f"record {key}: epoch {value.epoch}, after the {holder}'s {newest}")
 
     def __repr__(self) -> str:
         return f"MasterAuthenticator(site={self.site.fingerprint}, terminals={len(self._links)})"
