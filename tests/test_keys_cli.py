@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import base64
 import os
+import signal
 import stat
 import subprocess
 import sys
@@ -125,7 +126,7 @@ def test_a_key_file_open_to_others_is_refused(site: Path, capsys: pytest.Capture
 def test_a_damaged_or_foreign_file_is_one_line(tmp_path: Path, site: Path, capsys: pytest.CaptureFixture[str]) -> None:
     data = site.read_bytes()
     cases = {
-        "flipped.key": (data[:20] + bytes([data[20] ^ 1]) + data[21:], "damaged: CRC-32C"),
+        "flipped.key": (data[:20] + bytes([data[20] ^ 1]) + data[21:], "damaged: its CRC-32C does not match"),
         "short.key": (data[:30], "truncated: 30 bytes of 50"),
         "long.key": (data + b"\n", "too long"),
         "text.key": (b"not a key\n", "not an ionotrail key file"),
@@ -140,8 +141,26 @@ def test_a_damaged_or_foreign_file_is_one_line(tmp_path: Path, site: Path, capsy
         assert out == ""
         assert code == 2 and err.count("\n") == 1 and message in err and str(path) in err, (name, err)
         assert "Traceback" not in err
+        assert "0x" not in err  # no CRC value: one over the key bytes tells 32 bits about the key
     code, _out, err = keys(capsys, "inspect", tmp_path / "missing.key")
     assert code == 2 and err == f"ionotrail keys: error: key file {tmp_path / 'missing.key'} not found\n"
+
+
+def test_a_fifo_is_refused_without_waiting_for_a_writer(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    fifo = tmp_path / "fifo.key"
+    os.mkfifo(fifo, 0o600)
+
+    def waited(_signum: int, _frame: object) -> None:
+        raise AssertionError("the open waited for a writer")
+
+    previous = signal.signal(signal.SIGALRM, waited)
+    signal.alarm(5)
+    try:
+        code, out, err = keys(capsys, "inspect", fifo)
+    finally:
+        signal.alarm(0)
+        signal.signal(signal.SIGALRM, previous)
+    assert (code, out) == (2, "") and err == f"ionotrail keys: error: key file {fifo} is not a regular file\n"
 
 
 def test_a_symlink_is_not_followed(site: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

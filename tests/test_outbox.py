@@ -9,8 +9,10 @@ at arbitrary moments, and checks a torn transaction on disk."""
 from __future__ import annotations
 
 import asyncio
+import os
 import random
 import sqlite3
+import stat
 from pathlib import Path
 
 import pytest
@@ -205,12 +207,23 @@ def test_partly_acknowledged_ranges_survive_and_are_not_sent_again() -> None:
 
 
 def test_acceptance_is_refused_as_a_whole_when_the_commit_fails(tmp_path: Path) -> None:
-    store = SqliteStore(tmp_path / "outbox.db")
+    path = tmp_path / "outbox.db"
+    store = SqliteStore(path, busy_timeout=0.0)
     terminal = Terminal(store, Limits(), 0.0)
     batch = terminal.outbox.accept(b"reading", Priority.ROUTINE, 0.0)
-    terminal.outbox.abandon()  # the shell's commit failed: the message is not accepted
-    assert terminal.sender.pending == 0 and store.load() == {}
+    other = sqlite3.connect(path, isolation_level=None)
+    other.execute("BEGIN IMMEDIATE")  # another process holds the write lock: a real refusal
+    with pytest.raises(StoreError, match="locked"):
+        store.commit(batch)
+    other.execute("ROLLBACK")
+    terminal.outbox.abandon()  # what the shell does when its commit failed: the message is not accepted
+    assert terminal.sender.pending == 0 and store.load() == {} and store.writes == 0
+    again = terminal.outbox.accept(b"reading", Priority.ROUTINE, 0.0)
+    store.commit(again)
+    assert terminal.outbox.committed(again) == 0  # the refused acceptance used no id
+    assert sorted(store.load()) == sorted([COUNTER_KEY, message_key(0)])
     with pytest.raises(UsageError, match="sender changed"):
+        batch = terminal.outbox.accept(b"later", Priority.ROUTINE, 0.0)
         terminal.sender.queue(b"x", 0.0)  # touching the sender between a batch and its commit
         terminal.outbox.committed(batch)
 
@@ -228,6 +241,49 @@ def test_sqlite_store_round_trip_and_log(tmp_path: Path) -> None:
     assert again.log_after(1, 10) == [(2, b"y"), (3, b"z")]
     modes = sqlite3.connect(path).execute("PRAGMA journal_mode").fetchone()
     assert modes == ("wal",)
+    # synchronous is a setting of the connection, not of the file: read it on the store's own.
+    assert again._db.execute("PRAGMA synchronous").fetchone() == (2,)  # FULL (sqlite.org, "PRAGMA synchronous")
+
+
+def test_a_new_store_is_its_owners_alone(tmp_path: Path) -> None:
+    old = os.umask(0o022)
+    try:
+        path = tmp_path / "outbox.db"
+        store = SqliteStore(path)
+        store.commit(Batch({"auth/root": bytes(32)}))
+        files = [path, Path(f"{path}-wal"), Path(f"{path}-shm")]  # the log files exist while it is open
+        assert {f.name: stat.S_IMODE(f.stat().st_mode) for f in files} == {f.name: 0o600 for f in files}
+        store.close()
+        loose = tmp_path / "loose.db"
+        SqliteStore(loose).close()
+        loose.chmod(0o644)
+        SqliteStore(loose).close()  # a store without keys in it may be read by others
+        with pytest.raises(UsageError, match=r"others may read it \(mode 0644\); run: chmod 600 .*loose.db"):
+            SqliteStore(loose, private=True)
+    finally:
+        os.umask(old)
+
+
+def test_a_damaged_store_is_a_decode_error_naming_the_file(tmp_path: Path) -> None:
+    path = tmp_path / "outbox.db"
+    store = SqliteStore(path)
+    for i in range(50):
+        store.commit(Batch({f"message/{i}": bytes(300)}, appends=(bytes(200),)))
+    store.close()  # the last connection folds the WAL into the file
+    page = 4096
+    pages = path.stat().st_size // page
+    assert pages > 4
+    for number in range(1, pages):  # every page but the header's: its b-tree page type made nonsense
+        damaged = tmp_path / f"damaged-{number}.db"
+        data = bytearray(path.read_bytes())
+        data[number * page] = 0x77
+        damaged.write_bytes(bytes(data))
+        damaged.chmod(0o600)
+        opened = SqliteStore(damaged)
+        with pytest.raises(DecodeError, match=f"{damaged.name}: the (records|log) cannot be read"):
+            opened.load()
+            opened.log_after(0, 1000)
+        opened.close()
 
 
 def test_sqlite_store_refuses_a_file_that_is_not_one(tmp_path: Path) -> None:

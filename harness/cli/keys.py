@@ -1,14 +1,16 @@
 """``ionotrail keys``: make a site secret, provision a terminal's key file, inspect a key file.
 
-The key files are the only place a secret touches the disk, so this module
-keeps three rules (docs/keys.md): a key file is created with mode 0600 and
-never silently replaced (O_CREAT | O_EXCL; ``--force`` replaces it through a
-new file renamed over the old, so a crash leaves one or the other whole); a
-key file that group or others may read or write is refused before a byte of
-it is read (the key may already be exposed: the fix is chmod 600, and a new
-key if others could have read it); and no key is ever printed: only its
-fingerprint.  :func:`load_key_file` applies the same checks for the rest of
-the harness (a master loading its site secret, a terminal its root).
+A secret touches the disk in key files, and in a terminal's store once it
+runs (docs/keys.md; the store is created 0600 and ``serve --keys`` refuses
+one others may read).  For key files this module keeps three rules: a key
+file is created with mode 0600 and never silently replaced (O_CREAT |
+O_EXCL; ``--force`` replaces it through a new file renamed over the old, so
+a crash leaves one or the other whole); a key file that group or others may
+read or write is refused before a byte of it is read (the key may already be
+exposed: the fix is chmod 600, and a new key if others could have read it);
+and no key is ever printed: only its fingerprint.  :func:`load_key_file`
+applies the same checks for the rest of the harness (a master loading its
+site secret, a terminal its root).
 """
 
 from __future__ import annotations
@@ -108,7 +110,8 @@ def load_key_file(path: str | os.PathLike[str]) -> SiteSecret | TerminalRoot:
     """
     name = os.fspath(path)
     try:
-        fd = os.open(name, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0))
+        # O_NONBLOCK: a FIFO given as the key file must not hang the open (it is refused below).
+        fd = os.open(name, os.O_RDONLY | os.O_NONBLOCK | getattr(os, "O_NOFOLLOW", 0))
     except FileNotFoundError:
         raise UserError(f"key file {name} not found") from None
     except OSError as exc:

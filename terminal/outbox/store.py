@@ -27,9 +27,10 @@ MAX_KEY_CHARS = 64
 """Record keys are short ASCII names (``message/12``, ``counter/message-id``)."""
 
 
-@dataclasses.dataclass(frozen=True, slots=True)
+@dataclasses.dataclass(frozen=True, slots=True, repr=False)
 class Batch:
-    """One atomic change to a store."""
+    """One atomic change to a store.  Its repr names keys and sizes, never
+    values: a terminal's key state travels in batches (docs/keys.md)."""
 
     puts: Mapping[str, bytes] = dataclasses.field(default_factory=dict)
     """Records to create or replace, by key."""
@@ -50,6 +51,10 @@ class Batch:
 
     def __bool__(self) -> bool:
         return bool(self.puts or self.deletes or self.appends)
+
+    def __repr__(self) -> str:
+        puts = ", ".join(f"{key}: {len(value)} bytes" for key, value in sorted(self.puts.items()))
+        return f"Batch(puts={{{puts}}}, deletes={sorted(self.deletes)}, appends={len(self.appends)} entries)"
 
     def merged(self, later: Batch) -> Batch:
         """This batch followed by ``later``, as one."""

@@ -8,14 +8,23 @@ transaction (``BEGIN IMMEDIATE`` ... ``COMMIT``): its records are all there
 after a crash or none is.  Records live in ``records(key, value)``, the log
 in ``log(position, entry)``; the file carries ``user_version`` 1 and an
 ``application_id`` so that a file of anything else is refused.
+
+A new file is created readable and writable by its owner only (SQLite gives
+its ``-wal`` and ``-shm`` files the database file's permissions): a terminal's
+store holds its keys (docs/keys.md).  ``private=True`` (a station given keys)
+refuses a file that others may read, as a key file is refused.  A damaged file
+(a page that does not parse) is a decode error naming the file, raised when it
+is read, never a traceback.
 """
 
 from __future__ import annotations
 
 import os
 import sqlite3
+import stat
 
 from ionotrail.terminal.errors import BadField, UsageError
+from ionotrail.terminal.limits import STORE_BUSY_TIMEOUT_S
 from ionotrail.terminal.outbox.store import Batch, StoreError
 
 APPLICATION_ID = 0x696F6E74  # "iont"
@@ -23,13 +32,34 @@ SCHEMA_VERSION = 1
 
 
 class SqliteStore:
-    """Records and log in one SQLite file, opened (and created if absent) at ``path``."""
+    """Records and log in one SQLite file, opened (and created if absent) at ``path``.
 
-    def __init__(self, path: str | os.PathLike[str]) -> None:
+    ``busy_timeout`` is how long a commit waits for a lock another process holds."""
+
+    def __init__(
+        self, path: str | os.PathLike[str], *, private: bool = False, busy_timeout: float = STORE_BUSY_TIMEOUT_S
+    ) -> None:
         self.path = os.fspath(path)
         self._writes = 0
         try:
-            self._db = sqlite3.connect(self.path, isolation_level=None)  # transactions are explicit
+            # An empty file, which SQLite takes for a new database: the mode is set here.
+            fd = os.open(self.path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+        except FileExistsError:
+            pass
+        except OSError as exc:
+            raise UsageError(f"{self.path}: cannot create the store ({exc.strerror})") from None
+        else:
+            os.close(fd)
+        if private:
+            mode = os.stat(self.path).st_mode
+            if mode & (stat.S_IRWXG | stat.S_IRWXO):
+                raise UsageError(
+                    f"{self.path}: the store holds key material and others may read it (mode {stat.S_IMODE(mode):04o}); "
+                    f"run: chmod 600 {self.path}"
+                )
+        try:
+            # isolation_level=None: the transactions are explicit.
+            self._db = sqlite3.connect(self.path, isolation_level=None, timeout=busy_timeout)
             self._prepare()
         except sqlite3.DatabaseError as exc:
             raise UsageError(f"{self.path}: not a store this program can use ({exc})") from None
@@ -64,7 +94,11 @@ class SqliteStore:
         """Every record; a row that is not a text key with a blob value (the file
         was written by something else) is a :class:`~ionotrail.terminal.errors.BadField`."""
         out: dict[str, bytes] = {}
-        for key, value in self._db.execute("SELECT key, value FROM records"):
+        try:
+            rows = self._db.execute("SELECT key, value FROM records").fetchall()
+        except sqlite3.DatabaseError as exc:
+            raise BadField(f"{self.path}: the records cannot be read ({exc})") from None
+        for key, value in rows:
             if not isinstance(key, str) or not isinstance(value, bytes):
                 raise BadField(f"{self.path}: a record row of types {type(key).__name__} and {type(value).__name__}, not text and blob")
             out[key] = value
@@ -90,7 +124,12 @@ class SqliteStore:
         self._writes += 1
 
     def log_after(self, position: int, limit: int) -> list[tuple[int, bytes]]:
-        rows = self._db.execute("SELECT position, entry FROM log WHERE position > ? ORDER BY position LIMIT ?", (position, limit))
+        try:
+            rows = self._db.execute(
+                "SELECT position, entry FROM log WHERE position > ? ORDER BY position LIMIT ?", (position, limit)
+            ).fetchall()
+        except sqlite3.DatabaseError as exc:
+            raise BadField(f"{self.path}: the log cannot be read ({exc})") from None
         out: list[tuple[int, bytes]] = []
         for p, e in rows:
             if not isinstance(p, int) or not isinstance(e, bytes):
