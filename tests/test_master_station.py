@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import asyncio
+import sqlite3
+from pathlib import Path
 
 from ionotrail.harness.channel import scenario as scenarios
 from ionotrail.harness.channel.model import Channel, TrailSet, with_openings
@@ -53,3 +55,43 @@ def test_the_adapter_timer_never_spins_at_one_instant_when_the_origin_is_not_zer
     with asyncio.Runner(loop_factory=lambda: VirtualTimeLoop(ORIGIN)) as runner:
         fires = runner.run(main())
     assert 1 <= fires < 10
+
+
+def test_a_master_whose_store_refuses_goes_quiet_and_loses_nothing(tmp_path: Path) -> None:
+    """The store refuses commits for 15 minutes (another process holds its write
+    lock, a real SQLite refusal): the master stops probing and listening, tries
+    again with growing pauses, and then goes on; every message is delivered once,
+    and the sink is the store's log.  (Before, the refusal escaped from a loop
+    callback, and the master went on with state its store did not have.)"""
+    from ionotrail.harness.runners.simulate import simulate
+    from ionotrail.terminal.outbox.journal import parse_delivery
+    from ionotrail.terminal.stores.sqlite import SqliteStore
+    from ionotrail.terminal.wire.crc import crc32c
+
+    path = tmp_path / "master.db"
+    store = SqliteStore(path, busy_timeout=0.0)
+    other = sqlite3.connect(path, isolation_level=None)
+    lock: dict[str, float] = {}
+
+    def delivered(record: object) -> None:
+        if not lock:  # the first delivery: lock the store for 900 s of the run
+            loop = asyncio.get_running_loop()
+            other.execute("BEGIN IMMEDIATE")
+            lock["from"] = loop.time()
+            loop.call_later(900.0, lambda: other.execute("ROLLBACK"))
+
+    run = simulate(scenarios.load(None), seconds=6 * 3600.0, master_store=store, on_delivery=delivered, bounds=False)
+    master, report = run.master, run.report
+    assert master.store_failures >= 8  # 1, 2, 4, ... 60 s pauses in 900 s: about a dozen tries
+    assert not master.quiet
+    log = [parse_delivery(p, e) for p, e in store.log_after(0, 1 << 20)]
+    keys = [(d.terminal, d.message_id, crc32c(d.payload)) for d in log]
+    assert len(keys) == len(set(keys)), "a message was delivered twice"
+    assert [(r.terminal, r.message_id, r.crc32c) for r in run.deliveries] == keys  # the sink is the log
+    messages = report["messages"]
+    assert messages["duplicates_delivered"] == 0
+    assert messages["delivered"] + messages["pending"] == messages["offered"] and messages["delivered"] == len(log)
+    print(
+        f"\nrefused {master.store_failures}, unheard {master.frames_unheard}, delivered {len(log)}, offered {messages['offered']}"
+    )
+    assert len(log) > 10  # the run went on after the store came back

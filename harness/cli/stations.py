@@ -174,8 +174,9 @@ def load_keys(name: str | None, role: str, terminal: int) -> Any:
     return key
 
 
-def open_store(option: str, name: str | None) -> Any:
-    """The SQLite store named by ``option``, or one in memory."""
+def open_store(option: str, name: str | None, *, private: bool = False) -> Any:
+    """The SQLite store named by ``option``, or one in memory; ``private``: it
+    will hold key material, so others must not be able to read it."""
     from ionotrail.terminal.errors import UsageError
     from ionotrail.terminal.stores.memory import MemoryStore
     from ionotrail.terminal.stores.sqlite import SqliteStore
@@ -183,7 +184,7 @@ def open_store(option: str, name: str | None) -> Any:
     if name is None:
         return MemoryStore()
     try:
-        return SqliteStore(name)
+        return SqliteStore(name, private=private)
     except UsageError as exc:
         raise UserError(f"{option} {name}: {exc}".replace(f"{name}: {name}: ", f"{name}: ")) from None
     except OSError as exc:
@@ -208,17 +209,17 @@ def catch_up(out: IO[str], name: str, store: Any, station: Any) -> None:
             raw.truncate(complete)
         exported = data[:complete].count(b"\n")
     out.seek(0, 2)
-    while True:
-        entries = store.log_after(exported, MAX_DELIVERY_EXPORT)
-        if not entries:
-            return
-        for position, entry in entries:
-            try:
+    try:
+        while True:
+            entries = store.log_after(exported, MAX_DELIVERY_EXPORT)
+            if not entries:
+                return
+            for position, entry in entries:
                 station.export(parse_delivery(position, entry))
-            except DecodeError as exc:
-                raise UserError(f"--state: {exc}") from None
-            exported = position
-        out.flush()
+                exported = position
+            out.flush()
+    except DecodeError as exc:
+        raise UserError(f"--state: {exc}") from None
 
 
 def traced(port: Any, trace: IO[str] | None, station: str, origin: float) -> Any:
@@ -253,7 +254,7 @@ def run_serve(args: argparse.Namespace) -> int:
             "and a recorded command could be replayed"
         )
     root = load_keys(args.keys, "terminal", scenario.terminal_address)
-    store = open_store("--outbox", args.outbox)
+    store = open_store("--outbox", args.outbox, private=bool(args.keys))
     trace = open_output("--trace", args.trace)
     accepted = open_output("--accepted", args.accepted, append=True)
     counts = {"queued": 0, "abandoned": 0, "restored": 0}
@@ -310,7 +311,7 @@ def run_serve(args: argparse.Namespace) -> int:
         return (
             f"terminal: {counts['queued']} messages queued ({counts['restored']} kept from before), {sender.acknowledged} acknowledged, "
             f"{service.link.sender.pending} pending, {counts['abandoned']} abandoned; {service.link.counters.bursts} bursts, "
-            f"{service.link.counters.fragments_sent} fragments; outbox writes {service.store.writes} ({per_message} per message); "
+            f"{service.link.counters.fragments_sent} fragments; outbox writes {service.store.writes} (every commit, key state too; {per_message} per message accepted); "
             f"modem resets {c.resets}, reconnects {c.reconnects}, line errors {sum(c.line_errors.values())}"
         )
 
@@ -348,7 +349,10 @@ def run_master(args: argparse.Namespace) -> int:
         print(f"master {scenario.master_address} on {args.port} ({args.dialect}); Ctrl-C to stop", file=sys.stderr)
         sink = json_lines_sink(out) if out is not None else None
         origin = loop.time()
-        station = master_station(traced(port, trace, "master", origin), scenario, origin=origin, sink=sink, store=store, site=site)
+        station = master_station(
+            traced(port, trace, "master", origin), scenario, origin=origin, sink=sink, store=store, site=site,
+            on_store_trouble=lambda line: print(f"master: --state {args.state}: {line}", file=sys.stderr, flush=True),
+        )  # fmt: skip
         if out is not None and args.state is not None:
             catch_up(out, args.deliveries, store, station)
         try:
@@ -378,8 +382,9 @@ def run_master(args: argparse.Namespace) -> int:
             if auth is not None
             else ""
         )
+        refused = f"; {station.store_failures} commits refused by the store" if station.store_failures else ""
         return (
-            f"master: {m.deliveries} messages delivered{kept}, {m.fragments} fragments, {m.crc_failed} CRC failures{keys}; "
+            f"master: {m.deliveries} messages delivered{kept}, {m.fragments} fragments, {m.crc_failed} CRC failures{keys}{refused}; "
             f"modem resets {c.resets}, reconnects {c.reconnects}, line errors {sum(c.line_errors.values())}"
         )
 

@@ -19,6 +19,12 @@ With a store (``ionotrail master --state FILE``) the station keeps a
 or timer, what the reassembler changed and the messages delivered are
 committed together *before* any new probe (which may carry the "complete"
 acknowledgement) goes to the port, and the sink is fed only after the commit.
+A commit the store refuses (a full disk, a lock held too long) sends the
+station quiet: it stops probing and listening, holds what the endpoint gave,
+and tries the commit again after STORE_RETRY_FIRST_S, doubling up to
+STORE_RETRY_MAX_S; the first commit that works releases what was held and
+starts the probes again.  Nothing the store has not kept is acknowledged, and
+while quiet nothing new arrives, so what is held cannot grow.
 """
 
 from __future__ import annotations
@@ -33,7 +39,7 @@ from ionotrail.harness.demo.gauge import report_created
 from ionotrail.terminal.auth.authenticator import MasterAuthenticator
 from ionotrail.terminal.auth.keys import SiteSecret
 from ionotrail.terminal.delivery.reassembly import Delivery, Reassembler
-from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
+from ionotrail.terminal.limits import DEFAULT_LIMITS, STORE_RETRY_FIRST_S, STORE_RETRY_MAX_S, Limits
 from ionotrail.terminal.link.master import (
     Delivered,
     MasterCounters,
@@ -44,7 +50,7 @@ from ionotrail.terminal.link.master import (
 )
 from ionotrail.terminal.link.terminal import Arrival
 from ionotrail.terminal.outbox.journal import MasterJournal
-from ionotrail.terminal.outbox.store import Store
+from ionotrail.terminal.outbox.store import Store, StoreError
 from ionotrail.terminal.ports import Port
 from ionotrail.terminal.wire.crc import crc32c
 
@@ -107,10 +113,13 @@ class MasterStation:
         store: Store | None = None,
         site: SiteSecret | None = None,
         require_data_auth: bool | frozenset[int] = False,
+        on_store_trouble: Callable[[str], None] | None = None,
     ) -> None:
         """``site`` is the site secret that signs commands (none: no commands);
         ``require_data_auth`` (True, or terminal addresses) refuses plain fragments
-        from those terminals: their data must come authenticated (docs/keys.md)."""
+        from those terminals: their data must come authenticated (docs/keys.md);
+        ``on_store_trouble`` hears one line when the store refuses a commit and
+        the station goes quiet, and one when it works again."""
         if probe_interval is not None:
             limits = dataclasses.replace(limits, probe_interval=probe_interval)
         self.port = port
@@ -137,6 +146,15 @@ class MasterStation:
         self._loop: asyncio.AbstractEventLoop | None = None
         self._timer: asyncio.TimerHandle | None = None
         self._armed_for: float | None = None  # the endpoint deadline the loop timer stands for
+        self.on_store_trouble = on_store_trouble
+        self.store_failures = 0
+        """Commits the store refused."""
+        self.frames_unheard = 0
+        """Frames the port delivered while the station was quiet, dropped unread."""
+        self._held: list[MasterEffect] = []  # what the endpoint gave while its commit waits
+        self._quiet_since: float | None = None  # loop time the store first refused, while quiet
+        self._retry: asyncio.TimerHandle | None = None
+        self._retry_delay = STORE_RETRY_FIRST_S
 
     @property
     def counters(self) -> MasterCounters:
@@ -159,15 +177,26 @@ class MasterStation:
             self._carry_out(self.endpoint.restore(stored, self._now()))  # committed before the probe airs
             self._arm()
         self.port.attach(self._arrived)
-        self.port.start_listening()
-        self.port.start_probing(self.endpoint.probe, self.probe_interval)
+        if not self.quiet:  # else the first commit that works starts them
+            self.port.start_listening()
+            self.port.start_probing(self.endpoint.probe, self.probe_interval)
 
     async def stop(self) -> None:
+        """Stop probing and listening.  What a quiet station held is not kept:
+        it was never acknowledged, so the terminals send it again to the next life."""
         if self._timer is not None:
             self._timer.cancel()
             self._timer, self._armed_for = None, None
+        if self._retry is not None:
+            self._retry.cancel()
+            self._retry = None
         self.port.stop_probing()
         self.port.stop_listening()
+
+    @property
+    def quiet(self) -> bool:
+        """The store refused the last commit: no probes, no listening, until one works."""
+        return self._quiet_since is not None
 
     # --- what the operator asks ------------------------------------------------------
 
@@ -189,6 +218,9 @@ class MasterStation:
         return (self._loop.time() if self._loop is not None else self.origin) - self.origin
 
     def _arrived(self, arrival: Arrival) -> None:
+        if self.quiet:  # (a frame the modem had in hand as the receiver went off)
+            self.frames_unheard += 1
+            return
         if self.on_arrival is not None:
             self.on_arrival(arrival)
         self._carry_out(self.endpoint.on_frame(arrival.frame, arrival.time - self.origin))
@@ -202,8 +234,12 @@ class MasterStation:
         self._carry_out(self.endpoint.on_timer(now if armed_for is None else max(now, armed_for)))
 
     def _carry_out(self, effects: list[MasterEffect]) -> None:
+        if self._held:  # a refused commit's effects go first, in order
+            effects, self._held = self._held + effects, []
         if self.journal is not None and self.store is not None:
             # Durable first: no acknowledgement leaves, and no delivery reaches the sink, before this commit.
+            # A refused commit leaves the journal's, the keys' and the command ids' changes marked
+            # unsaved, so the next batch built here holds them again.
             batch = self.journal.changes([e.delivery for e in effects if isinstance(e, Delivered)])
             auth = self.endpoint.auth
             # A newly signed command's counter is reserved, and a data window moved by an
@@ -213,7 +249,12 @@ class MasterStation:
             if self.endpoint.command_ids_unsaved:  # a restarted master must not give out an id again
                 batch = batch.merged(self.endpoint.command_id_batch())
             if batch:
-                self.store.commit(batch)
+                try:
+                    self.store.commit(batch)
+                except StoreError as exc:
+                    self._held = effects
+                    self._refused(exc)
+                    return
                 self.journal.committed(batch)
                 if auth is not None:
                     auth.committed()
@@ -225,12 +266,54 @@ class MasterStation:
                 self.export(effect.delivery)
             elif isinstance(effect, ReplyArrived):
                 self.replies.append(ReplyRecord(effect.terminal, effect.command_id, effect.status, effect.result, effect.time))
+        if self.quiet:
+            self._resume()
         self._arm()
+
+    def _refused(self, error: StoreError) -> None:
+        """The store refused a commit: go quiet (or stay so) and try again later."""
+        loop = self._loop
+        if loop is None:  # not started: the caller hears it
+            raise error
+        self.store_failures += 1
+        if self._quiet_since is None:
+            self._quiet_since, self._retry_delay = loop.time(), STORE_RETRY_FIRST_S
+            if self._timer is not None:
+                self._timer.cancel()
+                self._timer, self._armed_for = None, None
+            self.port.stop_probing()
+            self.port.stop_listening()
+            if self.on_store_trouble is not None:
+                self.on_store_trouble(
+                    f"{error}; quiet (no probes, not listening) until a commit works, trying again in {self._retry_delay:g} s"
+                )
+        else:
+            self._retry_delay = min(2 * self._retry_delay, STORE_RETRY_MAX_S)
+        if self._retry is None:
+            self._retry = loop.call_later(self._retry_delay, self._try_again)
+
+    def _try_again(self) -> None:
+        self._retry = None
+        self._carry_out([])
+
+    def _resume(self) -> None:
+        """A commit worked after the store refused one: probe and listen again."""
+        assert self._loop is not None and self._quiet_since is not None
+        quiet_s, self._quiet_since = self._loop.time() - self._quiet_since, None
+        if self._retry is not None:  # (an operator's command committed first)
+            self._retry.cancel()
+            self._retry = None
+        self.port.start_listening()
+        self.port.start_probing(self.endpoint.probe, self.probe_interval)
+        if self.on_store_trouble is not None:
+            self.on_store_trouble(
+                f"the store works again; quiet for {quiet_s:.1f} s, {self.store_failures} commits refused so far"
+            )
 
     def _arm(self) -> None:
         """Keep one loop timer at the endpoint's deadline (re-armed only when it moves earlier)."""
         deadline = self.endpoint.deadline
-        if self._loop is None or deadline is None:
+        if self._loop is None or deadline is None or self.quiet:
             return
         when = self.origin + deadline
         if self._timer is not None:

@@ -36,6 +36,7 @@ from ionotrail.terminal.limits import DEFAULT_LIMITS, Limits
 from ionotrail.terminal.link.gate import UplinkGate
 from ionotrail.terminal.link.policy import Adaptive, by_name
 from ionotrail.terminal.link.terminal import BurstEnded, BurstStarted, Duplex, Link
+from ionotrail.terminal.outbox.store import Store
 from ionotrail.terminal.ports import Port
 from ionotrail.terminal.power.duty import DutyCycle
 from ionotrail.terminal.power.loads import LOAD_NAMES
@@ -186,6 +187,7 @@ def simulate(
     power_policy: str | None = None,
     uplink_backoff: bool | None = None,
     bounds: bool = True,
+    master_store: Store | None = None,
 ) -> Simulation:
     """Run ``scenario`` for its whole period (or ``seconds``); ``trails`` may be
     passed to reuse a realisation (the benchmark runs every policy on the same
@@ -200,7 +202,8 @@ def simulate(
     ``power_policy`` and ``uplink_backoff`` override the scenario's power settings;
     ``bounds=False`` skips the pass that computes the channel's bounds after the
     run (the report's trail count, capacity and oracle bounds and utilisation
-    are then None: for comparisons that do not use them).
+    are then None: for comparisons that do not use them);
+    ``master_store`` gives the master a durable store, as ``ionotrail master --state`` does.
 
     Energy is part of every run: the terminal's receiver is switched by its
     power scheduler, its battery integrated by an
@@ -259,6 +262,7 @@ def simulate(
             sink=delivered,
             site=simulated_site(scenario.seed),
             require_data_auth=scenario.authenticate_data,
+            store=master_store,
         )
         app = make_source(source, scenario, backlog_size, origin) if isinstance(source, str) else source
 

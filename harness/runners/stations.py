@@ -94,6 +94,7 @@ def master_station(
     on_arrival: Callable[[Arrival], None] | None = None,
     store: Store | None = None,
     site: SiteSecret | None = None,
+    on_store_trouble: Callable[[str], None] | None = None,
 ) -> MasterStation:
     """The master on ``port``; ``origin`` is the loop time at which it starts."""
     epoch = time.time() - (asyncio.get_running_loop().time() - origin)  # Unix time at origin
@@ -108,4 +109,5 @@ def master_station(
         store=store,
         site=site,
         require_data_auth=scenario.authenticate_data,
+        on_store_trouble=on_store_trouble,
     )
