@@ -196,11 +196,12 @@ MAX_DELIVERY_EXPORT = 256
 """Log entries read from a store at a time when catching up an export."""
 
 STORE_RETRY_FIRST_S = 1.0
-STORE_RETRY_MAX_S = 60.0
 """A master whose store refuses a commit goes quiet (no probes, no listening,
 so nothing it has not kept is acknowledged and nothing new piles up in memory)
-and tries the commit again after 1 s, doubling to at most 60 s between tries
-(common practice, no source)."""
+and tries the commit again this many seconds later (common practice, no source)."""
+
+STORE_RETRY_MAX_S = 60.0
+"""The pause between a quiet master's tries doubles up to this (common practice, no source)."""
 
 STORE_BUSY_TIMEOUT_S = 5.0
 """Seconds an SQLite store waits for a lock another process holds before the

@@ -71,14 +71,14 @@ def test_a_master_whose_store_refuses_goes_quiet_and_loses_nothing(tmp_path: Pat
     path = tmp_path / "master.db"
     store = SqliteStore(path, busy_timeout=0.0)
     other = sqlite3.connect(path, isolation_level=None)
-    lock: dict[str, float] = {}
+    locked = False
 
     def delivered(record: object) -> None:
-        if not lock:  # the first delivery: lock the store for 900 s of the run
-            loop = asyncio.get_running_loop()
+        nonlocal locked
+        if not locked:  # the first delivery: lock the store for 900 s of the run
+            locked = True
             other.execute("BEGIN IMMEDIATE")
-            lock["from"] = loop.time()
-            loop.call_later(900.0, lambda: other.execute("ROLLBACK"))
+            asyncio.get_running_loop().call_later(900.0, lambda: other.execute("ROLLBACK"))
 
     run = simulate(scenarios.load(None), seconds=6 * 3600.0, master_store=store, on_delivery=delivered, bounds=False)
     master, report = run.master, run.report

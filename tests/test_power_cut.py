@@ -34,7 +34,7 @@ from ionotrail.harness.cli.keys import write_key_file
 from ionotrail.terminal.auth.authenticator import MasterAuthenticator, TerminalAuthenticator
 from ionotrail.terminal.auth.keys import SiteSecret
 from ionotrail.terminal.errors import DecodeError
-from ionotrail.terminal.limits import MESSAGE_CRC_BYTES
+from ionotrail.terminal.limits import MESSAGE_CRC_BYTES, MESSAGE_ID_BITS
 from ionotrail.terminal.outbox import records
 from ionotrail.terminal.outbox.journal import parse_delivery
 from ionotrail.terminal.stores.sqlite import SqliteStore
@@ -184,7 +184,8 @@ def kept_messages(path: Path) -> set[tuple[int, int]]:
     kept = set()
     for (value,) in rows:
         message = records.MESSAGE.parse(value)
-        kept.add((message.seq & 0xFFFF, crc32c(message.sealed[:-MESSAGE_CRC_BYTES])))
+        wire_id = message.seq & ((1 << MESSAGE_ID_BITS) - 1)
+        kept.add((wire_id, crc32c(message.sealed[:-MESSAGE_CRC_BYTES])))
     return kept
 
 
